@@ -1,0 +1,65 @@
+"""Plain value types that cross module boundaries: what comes in (Reading) and what the engine
+says about it (Outcome, StreamSignal). Kept free of behaviour so every layer can share them."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Literal
+
+from limitwatch.stats.signal import Chart, Side
+
+Phase = Literal["learning", "monitoring"]
+
+
+@dataclass(frozen=True, slots=True)
+class Reading:
+    """One individual value of one stream. ``time`` is epoch seconds (UTC) and always supplied by
+    the caller: the engine never reads a clock. ``seq`` is an optional sender sequence number,
+    the preferred key for refusing redelivered readings."""
+
+    stream: str
+    time: float
+    value: float
+    seq: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class StreamSignal:
+    """A detector's :class:`~limitwatch.stats.signal.Signal` placed in its stream: raw value,
+    time and the limits in force, so an alert text can be written without looking anything up."""
+
+    stream: str
+    rule: str
+    chart: Chart
+    side: Side | None
+    index: int
+    time: float
+    value: float
+    involved: tuple[int, ...]
+    center: float
+    sigma: float
+    ucl: float | None
+    lcl: float | None
+    mr: float | None
+    mr_ucl: float
+    baseline_version: int
+    statistic: float | None = None
+    limit: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Outcome:
+    """What one reading did. A refused reading has ``accepted=False`` and a ``reason`` naming why
+    (``duplicate``, ``out-of-order``, ``not-finite``, ``below-lower-bound``, ``above-upper-bound``);
+    it changed no state."""
+
+    reading: Reading
+    accepted: bool
+    reason: str | None = None
+    index: int | None = None
+    phase: Phase = "learning"
+    z: float | None = None
+    mr: float | None = None
+    signals: tuple[StreamSignal, ...] = field(default_factory=tuple)
+    baseline_fitted: bool = False
+    """True on the reading that completed the learning phase and locked a new baseline."""
