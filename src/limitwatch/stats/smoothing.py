@@ -1,0 +1,274 @@
+"""EWMA and tabular CUSUM detectors for the individuals chart, in standardized units.
+
+Why these beside the run tests: a Shewhart chart with run tests reacts fast to large shifts but
+is slow to notice a sustained shift of one sigma or less. The EWMA and the CUSUM accumulate
+evidence over many readings and are the standard remedy for small persistent shifts.
+
+Both detectors follow the conventions of :mod:`limitwatch.stats.rules`:
+
+* ``update(index, z)`` takes ``z = (x - center) / sigma`` and the reading's 0-based position;
+  positions must increase by exactly one per call (``reset()`` lifts that until the next call).
+  A non-finite ``z`` raises :class:`ValueError` and leaves the state untouched.
+* Start-up: the EWMA starts at ``w = 0`` and the CUSUM sums at the head start (0 by default).
+* Restart: a detector that signals starts again from its start-up state, forgetting every
+  reading up to and including the one that completed the signal. The EWMA goes back to
+  ``w = 0`` and its start-up limit clock to zero; the CUSUM sums go back to the head start
+  (0 unless a fast-initial-response head start was chosen; Lucas & Crosier use the head start
+  again after a signal, which is its purpose: a shift that persists is flagged again quickly).
+
+References
+----------
+Roberts, S. W. (1959). Control chart tests based on geometric moving averages.
+*Technometrics* 1(3), 239-250.
+Lucas, J. M. & Saccucci, M. S. (1990). Exponentially weighted moving average control schemes:
+properties and enhancements. *Technometrics* 32(1), 1-12.
+Page, E. S. (1954). Continuous inspection schemes. *Biometrika* 41(1/2), 100-115.
+Lucas, J. M. & Crosier, R. B. (1982). Fast initial response for CUSUM quality-control schemes:
+give your CUSUM a head start. *Technometrics* 24(3), 199-205.
+Montgomery, D. C. *Introduction to Statistical Quality Control*, chapter on CUSUM and EWMA
+control charts.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any, ClassVar
+
+from limitwatch.stats.signal import Chart, Signal
+
+_isfinite = math.isfinite
+_EWMA_WEIGHT_SHARE = 0.99
+"""Share of the EWMA statistic's weight that the readings in a signal's ``involved`` carry."""
+
+
+def _number(name: str, value: Any, low: float, high: float, *, open_low: bool) -> float:
+    x = float(value)
+    if not (_isfinite(x) and (x > low if open_low else x >= low) and x <= high):
+        bound = "(" if open_low else "["
+        raise ValueError(f"{name} must be a number in {bound}{low}, {high}], got {value!r}")
+    return x
+
+
+def _check(rule: str, last: int | None, index: int, value: float) -> None:
+    if not _isfinite(value):
+        raise ValueError(f"{rule}: reading {index} is not a finite number ({value!r})")
+    if last is not None and index != last + 1:
+        raise ValueError(f"{rule}: expected reading position {last + 1}, got {index}")
+
+
+def _load(cls: Any, data: dict[str, Any], state_keys: tuple[str, ...]) -> Any:
+    if data.get("rule") != cls.rule:
+        raise ValueError(f"snapshot is for {data.get('rule')!r}, not {cls.rule!r}")
+    state = data["state"]
+    if set(state) != set(state_keys):
+        raise ValueError(f"{cls.rule} snapshot state needs keys {sorted(state_keys)}")
+    return cls(**data["params"]), state
+
+
+def _weight_span(keep: float) -> int:
+    """Fewest most recent readings whose EWMA weights ``1 - keep^m`` reach the share above."""
+    rest = 1.0 - _EWMA_WEIGHT_SHARE
+    if keep <= rest:
+        return 1
+    m = max(1, math.ceil(math.log(rest) / math.log(keep)))
+    while m > 1 and keep ** (m - 1) <= rest:  # guard the logarithms' rounding
+        m -= 1
+    while keep**m > rest:
+        m += 1
+    return m
+
+
+class Ewma:
+    """Exponentially weighted moving average of the standardized readings.
+
+    ``w_i = lam * z_i + (1 - lam) * w_(i-1)``, ``w_0 = 0``; a signal when ``|w_i|`` exceeds
+    ``L * sqrt(lam / (2 - lam) * (1 - (1 - lam)^(2 n)))``, where ``n`` counts readings since the
+    start or the last restart. With ``exact_startup=False`` the asymptotic limit
+    ``L * sqrt(lam / (2 - lam))`` is used from the first reading (as in Lucas & Saccucci's
+    tables); exact start-up limits are narrower at first and so catch a shift present from the
+    start sooner, at the price of a slightly shorter in-control ARL.
+
+    Defaults ``lam=0.2, L=2.962`` give an in-control ARL of about 500 with asymptotic limits
+    (Lucas & Saccucci 1990, as tabled by Montgomery; from memory).
+
+    ``involved`` lists the most recent readings since the last restart that together carry 99%
+    of the statistic's weight (``ceil(log 0.01 / log(1 - lam))`` readings: 21 for ``lam=0.2``),
+    so that a signal after months without one does not list millions of positions.
+
+    >>> det = Ewma(lam=0.5, L=2.0)
+    >>> [det.update(i, z) for i, z in enumerate([0.5, 1.0])]
+    [None, None]
+    >>> s = det.update(2, 3.0)
+    >>> s.side, s.statistic, round(s.limit, 3), s.involved  # w = 1.5 + 0.5 * (0.5 + 0.5 * 0.25)
+    ('upper', 1.8125, 1.146, (0, 1, 2))
+
+    References
+    ----------
+    Roberts (1959), *Technometrics* 1(3); Lucas & Saccucci (1990), *Technometrics* 32(1);
+    Montgomery, *Introduction to Statistical Quality Control*, EWMA control chart.
+    """
+
+    __slots__ = (
+        "L",
+        "_asymptotic",
+        "_keep",
+        "_last",
+        "_n",
+        "_span",
+        "_var",
+        "_w",
+        "exact_startup",
+        "lam",
+    )
+    rule: ClassVar[str] = "ewma"
+    chart: ClassVar[Chart] = "x"
+
+    def __init__(self, lam: float = 0.2, L: float = 2.962, exact_startup: bool = True) -> None:
+        self.lam = _number("lam", lam, 0.0, 1.0, open_low=True)
+        self.L = _number("L", L, 0.0, math.inf, open_low=True)
+        if not isinstance(exact_startup, bool):
+            raise ValueError(f"exact_startup must be true or false, got {exact_startup!r}")
+        self.exact_startup = exact_startup
+        self._keep = 1.0 - self.lam
+        self._var = self.lam / (2.0 - self.lam)
+        self._asymptotic = self.L * math.sqrt(self._var)
+        self._span = _weight_span(self._keep)
+        self.reset()
+
+    def limit(self, n: int) -> float:
+        """Control limit (in sigma units) for the ``n``-th reading since start or restart."""
+        if not self.exact_startup:
+            return self._asymptotic
+        return self.L * math.sqrt(self._var * (1.0 - self._keep ** (2 * n)))
+
+    def update(self, index: int, value: float) -> Signal | None:
+        _check(self.rule, self._last, index, value)
+        self._last = index
+        w = self.lam * value + self._keep * self._w
+        n = self._n + 1
+        if self.exact_startup:
+            limit = self.L * math.sqrt(self._var * (1.0 - self._keep ** (2 * n)))
+        else:
+            limit = self._asymptotic
+        if w > limit or w < -limit:
+            self._w, self._n = 0.0, 0
+            side, bound = ("upper", limit) if w > 0 else ("lower", -limit)
+            first = index - min(n, self._span) + 1
+            return Signal(self.rule, "x", side, index, tuple(range(first, index + 1)), w, bound)
+        self._w, self._n = w, n
+        return None
+
+    def reset(self) -> None:
+        self._w, self._n, self._last = 0.0, 0, None
+
+    def snapshot(self) -> dict[str, Any]:
+        params = {"lam": self.lam, "L": self.L, "exact_startup": self.exact_startup}
+        return {
+            "rule": self.rule,
+            "params": params,
+            "state": {"w": self._w, "n": self._n, "last": self._last},
+        }
+
+    @classmethod
+    def from_snapshot(cls, data: dict[str, Any]) -> Ewma:
+        det, state = _load(cls, data, ("w", "n", "last"))
+        det._w, det._n, det._last = float(state["w"]), int(state["n"]), state["last"]
+        return det
+
+    def __repr__(self) -> str:
+        return f"Ewma(lam={self.lam!r}, L={self.L!r}, exact_startup={self.exact_startup!r})"
+
+
+class Cusum:
+    """Two-sided tabular CUSUM of the standardized readings.
+
+    ``C+ = max(0, C+ + z - k)`` and ``C- = max(0, C- - z - k)``; a signal when either exceeds
+    ``h`` (side ``upper`` for ``C+``, ``lower`` for ``C-``; ``statistic`` is that sum, ``limit``
+    is ``h``). ``k`` is half the shift to detect, in sigma; ``k=0.5, h=5`` (defaults) gives an
+    in-control ARL of about 465 and an ARL of about 10.4 for a one-sigma shift (Montgomery's
+    table; from memory). ``headstart`` (fast initial response, Lucas & Crosier 1982; ``h/2`` is
+    their usual choice) is where both sums start, at the beginning and after every signal.
+
+    ``involved`` lists the readings since the signalling sum last left zero (or since the start
+    or last restart, when a head start kept it above zero).
+
+    >>> det = Cusum(k=0.5, h=2.0)
+    >>> [det.update(i, z) for i, z in enumerate([-1.0, 1.5, 1.0])]
+    [None, None, None]
+    >>> s = det.update(3, 1.2)
+    >>> s.side, round(s.statistic, 2), s.limit, s.involved
+    ('upper', 2.2, 2.0, (1, 2, 3))
+
+    References
+    ----------
+    Page (1954), *Biometrika* 41; Lucas & Crosier (1982), *Technometrics* 24(3);
+    Montgomery, *Introduction to Statistical Quality Control*, tabular CUSUM.
+    """
+
+    __slots__ = ("_down", "_down_len", "_last", "_up", "_up_len", "h", "headstart", "k")
+    rule: ClassVar[str] = "cusum"
+    chart: ClassVar[Chart] = "x"
+
+    def __init__(self, k: float = 0.5, h: float = 5.0, headstart: float = 0.0) -> None:
+        self.k = _number("k", k, 0.0, math.inf, open_low=False)
+        self.h = _number("h", h, 0.0, math.inf, open_low=True)
+        self.headstart = _number("headstart", headstart, 0.0, self.h, open_low=False)
+        if self.headstart == self.h:
+            raise ValueError(f"headstart must be below h={self.h}, got {headstart!r}")
+        self.reset()
+
+    def update(self, index: int, value: float) -> Signal | None:
+        _check(self.rule, self._last, index, value)
+        self._last = index
+        up = self._up + value - self.k
+        down = self._down - value - self.k
+        if up > 0.0:
+            up_len = self._up_len + 1
+        else:
+            up, up_len = 0.0, 0
+        if down > 0.0:
+            down_len = self._down_len + 1
+        else:
+            down, down_len = 0.0, 0
+        if up > self.h or down > self.h:
+            self._restart()
+            side, stat, n = ("upper", up, up_len) if up > self.h else ("lower", down, down_len)
+            return Signal(
+                self.rule, "x", side, index, tuple(range(index - n + 1, index + 1)), stat, self.h
+            )
+        self._up, self._down, self._up_len, self._down_len = up, down, up_len, down_len
+        return None
+
+    def _restart(self) -> None:
+        self._up = self._down = self.headstart
+        self._up_len = self._down_len = 0
+
+    def reset(self) -> None:
+        self._restart()
+        self._last = None
+
+    def snapshot(self) -> dict[str, Any]:
+        params = {"k": self.k, "h": self.h, "headstart": self.headstart}
+        state = {
+            "up": self._up,
+            "down": self._down,
+            "up_len": self._up_len,
+            "down_len": self._down_len,
+            "last": self._last,
+        }
+        return {"rule": self.rule, "params": params, "state": state}
+
+    @classmethod
+    def from_snapshot(cls, data: dict[str, Any]) -> Cusum:
+        det, state = _load(cls, data, ("up", "down", "up_len", "down_len", "last"))
+        det._up, det._down = float(state["up"]), float(state["down"])
+        det._up_len, det._down_len = int(state["up_len"]), int(state["down_len"])
+        det._last = state["last"]
+        return det
+
+    def __repr__(self) -> str:
+        return f"Cusum(k={self.k!r}, h={self.h!r}, headstart={self.headstart!r})"
+
+
+SMOOTHERS: dict[str, type[Ewma] | type[Cusum]] = {Ewma.rule: Ewma, Cusum.rule: Cusum}
+"""The accumulating detectors by id (the run tests are in :data:`limitwatch.stats.rules.RULES`)."""
