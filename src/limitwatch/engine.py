@@ -1,0 +1,325 @@
+"""The per-stream state machine: readings in, signals out.
+
+A :class:`StreamMonitor` owns everything one stream needs: the learning buffer (phase I), the
+locked baseline, the previous reading (for the moving range and for refusing redeliveries) and
+one fresh instance of every configured detector. It does no I/O and reads no clock -- the time
+arrives on the :class:`~limitwatch.model.Reading` -- so the live service, ``limitwatch replay``
+and the tests all run exactly the same code.
+
+Conventions worth knowing:
+
+* Readings must arrive in time order. A reading at or before the previous one is refused with a
+  reason and changes nothing: ``duplicate`` when it repeats the previous reading (same time and
+  value, or a sequence number already seen), ``out-of-order`` otherwise. A monitoring aid that
+  silently re-sorted readings would compute moving ranges nobody can reproduce.
+* The moving range of a reading that arrives more than ``max_gap`` seconds after the previous one
+  is skipped (``mr`` is None), because a range across a shutdown measures the shutdown, not the
+  process. Run tests on the X chart carry on across the gap.
+* Learning: the first ``learn_count`` accepted readings fit the baseline, which is then locked.
+  If they cannot (for instance a stuck sensor gives only zero moving ranges) the oldest reading
+  is dropped and the fit is retried on the next one, so memory stays bounded.
+* Index: every accepted reading gets the next 0-based position in its stream, learning readings
+  included, so a signal's ``index`` points at the row that completed it.
+
+>>> from limitwatch.model import Reading
+>>> monitor = StreamMonitor("line-1", MonitorSettings(learn_count=20, rules="limits"))
+>>> for i, v in enumerate([5, 6, 5, 7, 6, 5, 6, 6, 5, 7, 6, 5, 6, 5, 7, 6, 5, 6, 6, 5]):
+...     _ = monitor.update(Reading("line-1", float(i), float(v)))
+>>> monitor.phase
+'monitoring'
+>>> outcome = monitor.update(Reading("line-1", 20.0, 12.0))
+>>> [s.rule for s in outcome.signals]
+['beyond-limits', 'mr-beyond-limit']
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+from limitwatch.model import Outcome, Phase, Reading, StreamSignal
+from limitwatch.stats.baseline import Baseline, BaselineError, fit_baseline
+from limitwatch.stats.rules import RuleSpec, build_detectors, parse_rules
+from limitwatch.stats.signal import Detector
+
+SNAPSHOT_FORMAT = 1
+
+
+@dataclass(frozen=True)
+class MonitorSettings:
+    """How one stream is watched. Plain data so a config file, a CLI flag set and a test can all
+    build one."""
+
+    rules: str | tuple[RuleSpec, ...] = "western-electric"
+    learn_count: int = 25
+    method: Literal["mean", "median"] = "mean"
+    exclude_beyond: bool = False
+    max_iterations: int = 5
+    min_points: int = 10
+    warn_points: int = 20
+    autocorrelation_threshold: float = 0.5
+    lower_bound: float | None = None
+    upper_bound: float | None = None
+    spec_lower: float | None = None
+    spec_upper: float | None = None
+    max_gap: float | None = None
+    rule_specs: tuple[RuleSpec, ...] = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        specs = parse_rules(self.rules) if isinstance(self.rules, str) else tuple(self.rules)
+        object.__setattr__(self, "rule_specs", tuple(specs))
+        if self.learn_count < self.min_points:
+            raise ValueError(
+                f"learn_count ({self.learn_count}) is below min_points ({self.min_points}): "
+                "the learning phase could never fit a baseline"
+            )
+        if self.max_gap is not None and self.max_gap <= 0:
+            raise ValueError(f"max_gap must be positive seconds, got {self.max_gap}")
+
+    def fit(self, values: list[float]) -> Baseline:
+        """Fit a baseline with these settings (phase I)."""
+        return fit_baseline(
+            values,
+            method=self.method,
+            lower_bound=self.lower_bound,
+            upper_bound=self.upper_bound,
+            exclude_beyond=self.exclude_beyond,
+            max_iterations=self.max_iterations,
+            min_points=self.min_points,
+            warn_points=self.warn_points,
+            autocorrelation_threshold=self.autocorrelation_threshold,
+            spec_lower=self.spec_lower,
+            spec_upper=self.spec_upper,
+        )
+
+
+class StreamMonitor:
+    """XmR monitoring of one stream, one reading at a time, in O(1) per reading once the
+    baseline is locked."""
+
+    __slots__ = (
+        "_center",
+        "_last_seq",
+        "_last_time",
+        "_last_value",
+        "_learning",
+        "_mr_detectors",
+        "_sigma",
+        "_x_detectors",
+        "baseline",
+        "baseline_version",
+        "count",
+        "last_fit_error",
+        "settings",
+        "stream",
+    )
+
+    def __init__(
+        self,
+        stream: str,
+        settings: MonitorSettings | None = None,
+        baseline: Baseline | None = None,
+        baseline_version: int = 1,
+    ) -> None:
+        self.stream = stream
+        self.settings = settings or MonitorSettings()
+        self.count = 0
+        self._last_time: float | None = None
+        self._last_value: float | None = None
+        self._last_seq: int | None = None
+        self._learning: list[float] = []
+        self.last_fit_error: str | None = None
+        self.baseline: Baseline | None = None
+        self.baseline_version = 0
+        self._x_detectors: list[Detector] = []
+        self._mr_detectors: list[Detector] = []
+        self._center = 0.0
+        self._sigma = 1.0
+        if baseline is not None:
+            self.set_baseline(baseline, version=baseline_version)
+
+    @property
+    def phase(self) -> Phase:
+        return "learning" if self.baseline is None else "monitoring"
+
+    def set_baseline(self, baseline: Baseline, version: int | None = None) -> None:
+        """Lock a baseline (fitted, stored or refitted) and start every detector afresh: run
+        tests counted against old limits mean nothing against new ones."""
+        if not (baseline.sigma > 0 and math.isfinite(baseline.sigma)):
+            raise BaselineError(
+                f"stream {self.stream!r}: baseline sigma must be positive, got {baseline.sigma}"
+            )
+        self.baseline = baseline
+        self.baseline_version = self.baseline_version + 1 if version is None else version
+        self._center = baseline.center
+        self._sigma = baseline.sigma
+        self._learning = []
+        detectors = build_detectors(self.settings.rule_specs)
+        self._x_detectors = [d for d in detectors if d.chart == "x"]
+        self._mr_detectors = [d for d in detectors if d.chart == "mr"]
+
+    # -- the hot path ---------------------------------------------------------------------------
+
+    def _refusal(self, reading: Reading) -> str | None:
+        value = reading.value
+        if not math.isfinite(value) or not math.isfinite(reading.time):
+            return "not-finite"
+        settings = self.settings
+        if settings.lower_bound is not None and value < settings.lower_bound:
+            return "below-lower-bound"
+        if settings.upper_bound is not None and value > settings.upper_bound:
+            return "above-upper-bound"
+        if self._last_time is None:
+            return None
+        if reading.seq is not None and self._last_seq is not None and reading.seq <= self._last_seq:
+            return "duplicate"
+        if reading.time > self._last_time:
+            return None
+        if reading.time == self._last_time and value == self._last_value:
+            return "duplicate"
+        return "out-of-order"
+
+    def update(self, reading: Reading) -> Outcome:
+        """Apply one reading; a refused reading leaves the monitor exactly as it was."""
+        reason = self._refusal(reading)
+        if reason is not None:
+            return Outcome(reading, accepted=False, reason=reason, phase=self.phase)
+
+        value = reading.value
+        index = self.count
+        mr: float | None = None
+        if self._last_value is not None:
+            gap = self.settings.max_gap
+            if gap is None or reading.time - self._last_time <= gap:  # type: ignore[operator]
+                mr = abs(value - self._last_value)
+        self.count = index + 1
+        self._last_time = reading.time
+        self._last_value = value
+        if reading.seq is not None:
+            self._last_seq = reading.seq
+
+        if self.baseline is None:
+            return self._learn(reading, index, mr)
+
+        z = (value - self._center) / self._sigma
+        signals: list[StreamSignal] = []
+        for detector in self._x_detectors:
+            hit = detector.update(index, z)
+            if hit is not None:
+                signals.append(self._place(hit, reading, mr))
+        if mr is not None:
+            mr_sigma = mr / self._sigma
+            for detector in self._mr_detectors:
+                hit = detector.update(index, mr_sigma)
+                if hit is not None:
+                    signals.append(self._place(hit, reading, mr))
+        return Outcome(
+            reading,
+            accepted=True,
+            index=index,
+            phase="monitoring",
+            z=z,
+            mr=mr,
+            signals=tuple(signals),
+        )
+
+    def _learn(self, reading: Reading, index: int, mr: float | None) -> Outcome:
+        learning = self._learning
+        learning.append(reading.value)
+        settings = self.settings
+        if len(learning) < settings.learn_count:
+            return Outcome(reading, accepted=True, index=index, phase="learning", mr=mr)
+        try:
+            baseline = settings.fit(learning)
+        except BaselineError as exc:
+            # Keep the window sliding so memory stays bounded while the stream cannot be fitted.
+            self.last_fit_error = str(exc)
+            del learning[0]
+            return Outcome(reading, accepted=True, index=index, phase="learning", mr=mr)
+        self.last_fit_error = None
+        self.set_baseline(baseline)
+        return Outcome(
+            reading, accepted=True, index=index, phase="learning", mr=mr, baseline_fitted=True
+        )
+
+    def _place(self, hit: Any, reading: Reading, mr: float | None) -> StreamSignal:
+        baseline = self.baseline
+        assert baseline is not None
+        sigma = self._sigma
+        statistic = hit.statistic
+        limit = hit.limit
+        if hit.chart == "mr" and statistic is not None:
+            # MR detectors work in sigma units; report the moving range in the reading's units.
+            statistic = statistic * sigma
+            limit = None if limit is None else limit * sigma
+        return StreamSignal(
+            stream=self.stream,
+            rule=hit.rule,
+            chart=hit.chart,
+            side=hit.side,
+            index=hit.index,
+            time=reading.time,
+            value=reading.value,
+            involved=hit.involved,
+            center=baseline.center,
+            sigma=sigma,
+            ucl=baseline.ucl,
+            lcl=baseline.lcl,
+            mr=mr,
+            mr_ucl=baseline.mr_ucl,
+            baseline_version=self.baseline_version,
+            statistic=statistic,
+            limit=limit,
+        )
+
+    # -- checkpoints ----------------------------------------------------------------------------
+
+    def snapshot(self) -> dict[str, Any]:
+        """Plain JSON-ready state; :meth:`restore` continues exactly where this one stopped."""
+        return {
+            "format": SNAPSHOT_FORMAT,
+            "stream": self.stream,
+            "count": self.count,
+            "last_time": self._last_time,
+            "last_value": self._last_value,
+            "last_seq": self._last_seq,
+            "learning": list(self._learning),
+            "baseline": None if self.baseline is None else self.baseline.to_dict(),
+            "baseline_version": self.baseline_version,
+            "detectors": [d.snapshot() for d in (*self._x_detectors, *self._mr_detectors)],
+        }
+
+    @classmethod
+    def restore(cls, data: dict[str, Any], settings: MonitorSettings) -> StreamMonitor:
+        """Rebuild a monitor from :meth:`snapshot`. ``settings`` come from the current config;
+        when their rules differ from the snapshot's detectors, detectors restart (and say so by
+        their fresh state) rather than mixing counts from different rules."""
+        if data.get("format") != SNAPSHOT_FORMAT:
+            raise ValueError(
+                f"checkpoint for stream {data.get('stream')!r} has format {data.get('format')!r}, "
+                f"this version reads format {SNAPSHOT_FORMAT}"
+            )
+        monitor = cls(data["stream"], settings)
+        monitor.count = data["count"]
+        monitor._last_time = data["last_time"]
+        monitor._last_value = data["last_value"]
+        monitor._last_seq = data["last_seq"]
+        if data["baseline"] is not None:
+            monitor.set_baseline(Baseline.from_dict(data["baseline"]), data["baseline_version"])
+            saved = data["detectors"]
+            fresh = [*monitor._x_detectors, *monitor._mr_detectors]
+            if [s.get("rule") for s in saved] == [d.rule for d in fresh] and all(
+                _same_params(s, d.snapshot()) for s, d in zip(saved, fresh, strict=True)
+            ):
+                restored = [type(d).from_snapshot(s) for d, s in zip(fresh, saved, strict=True)]
+                monitor._x_detectors = [d for d in restored if d.chart == "x"]
+                monitor._mr_detectors = [d for d in restored if d.chart == "mr"]
+        monitor._learning = list(data["learning"])
+        return monitor
+
+
+def _same_params(saved: dict[str, Any], fresh: dict[str, Any]) -> bool:
+    """Detectors match when every non-state field (their parameters) is equal."""
+    params = saved.get("params")
+    return params is None or params == fresh.get("params")

@@ -1,0 +1,1 @@
+"""Turning outside data (files, MQTT payloads) into :class:`~limitwatch.model.Reading` values."""
