@@ -1,0 +1,665 @@
+"""The alert lifecycle, driven by explicit times against a real SQLite file.
+
+Signals and outcomes are built by hand, so each test states exactly which readings arrive when.
+The shelving behaviour follows the idea of shelving in ANSI/ISA-18.2-2016 (cited from memory): a
+shelved alarm is still tracked, and if it is still active when the shelf ends it is announced.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import math
+import tempfile
+from dataclasses import replace
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from limitwatch import SAFETY_CAUTION
+from limitwatch.alerts.lifecycle import (
+    RULE_WORDS,
+    AlertBook,
+    AlertPolicy,
+    Notice,
+    SeverityRule,
+    covering_shelf,
+    hold_is_new,
+    judge_signal,
+    notices_due,
+)
+from limitwatch.model import Outcome, Reading, StreamSignal
+from limitwatch.store import Alert, Shelf, Store
+
+T0 = 1_700_000_000.0
+STREAM = "line-2/gearbox-temp"
+POLICY = AlertPolicy(clear_after=3, repeat_every_s=600.0, escalate_after_s=1800.0)
+
+
+def sig(
+    rule: str = "beyond-limits",
+    t: float = T0,
+    value: float = 91.0,
+    *,
+    stream: str = STREAM,
+    chart: str = "x",
+) -> StreamSignal:
+    return StreamSignal(
+        stream=stream,
+        rule=rule,
+        chart=chart,  # type: ignore[arg-type]
+        side="upper",
+        index=int(t - T0),
+        time=t,
+        value=value,
+        involved=(int(t - T0),),
+        center=80.0,
+        sigma=3.0,
+        ucl=89.0,
+        lcl=71.0,
+        mr=value - 80.0,
+        mr_ucl=11.06,
+        baseline_version=2,
+    )
+
+
+def reading(
+    t: float,
+    *signals: StreamSignal,
+    value: float = 80.0,
+    stream: str = STREAM,
+    phase: str = "monitoring",
+    accepted: bool = True,
+) -> Outcome:
+    return Outcome(
+        reading=Reading(stream, t, signals[0].value if signals else value),
+        accepted=accepted,
+        reason=None if accepted else "out-of-order",
+        index=int(t - T0),
+        phase=phase,  # type: ignore[arg-type]
+        signals=signals,
+    )
+
+
+def hit(t: float, rule: str = "beyond-limits", stream: str = STREAM) -> Outcome:
+    """A monitoring reading at ``t`` on which ``rule`` fired."""
+    return reading(t, sig(rule, t, stream=stream), stream=stream)
+
+
+def quiet(t: float, stream: str = STREAM) -> Outcome:
+    return reading(t, stream=stream)
+
+
+def rows(store: Store) -> list[tuple[str, str]]:
+    """(idempotency key, route) of every outbox row, oldest first."""
+    return [(n.idempotency_key, n.route) for n in store.notifications()]
+
+
+def kinds(store: Store, alert_id: int) -> list[str]:
+    return [e.kind for e in store.alert_events(alert_id)]
+
+
+@pytest.fixture
+def book(fresh_db: Store) -> AlertBook:
+    return AlertBook(fresh_db, POLICY)
+
+
+# --------------------------------------------------------------------------- opening, debounce
+
+
+def test_a_first_signal_opens_an_alert_and_queues_one_notification(book: AlertBook):
+    report = book.apply([quiet(T0 - 60), hit(T0)], now=T0 + 1)
+    (alert,) = book.store.alerts()
+    assert (alert.state, alert.signal_count, alert.severity) == ("open", 1, "warning")
+    assert (alert.first_time, alert.last_value, alert.opened_at) == (T0, 91.0, T0 + 1)
+    assert rows(book.store) == [(f"{alert.id}:opened:0:default", "default")]
+    assert kinds(book.store, alert.id) == ["opened", "notified"]
+    assert (report.opened, report.queued) == (1, 1)
+
+
+def test_the_payload_carries_reading_limits_rule_in_words_and_the_caution(book: AlertBook):
+    book.apply([hit(T0)], now=T0 + 1)
+    (note,) = book.store.notifications()
+    p = note.payload
+    assert p["event_id"] == f"{note.alert_id}:opened:0"
+    assert (p["kind"], p["stream"], p["rule"], p["severity"]) == (
+        "opened",
+        STREAM,
+        "beyond-limits",
+        "warning",
+    )
+    assert (p["value"], p["time"], p["center"], p["lcl"], p["ucl"]) == (91.0, T0, 80.0, 71.0, 89.0)
+    assert p["rule_words"] == RULE_WORDS["beyond-limits"]
+    assert p["caution"] == SAFETY_CAUTION
+    for fragment in ("91", "80", "71 to 89", RULE_WORDS["beyond-limits"], SAFETY_CAUTION):
+        assert fragment in p["text"]
+    json.dumps(p, allow_nan=False)  # strict JSON: what a webhook receiver can parse
+
+
+def test_further_signals_count_but_do_not_notify_again(book: AlertBook):
+    book.apply([hit(T0)], now=T0 + 1)
+    report = book.apply([hit(T0 + 60), quiet(T0 + 120), hit(T0 + 180)], now=T0 + 181)
+    (alert,) = book.store.alerts()
+    assert (alert.signal_count, alert.last_time, alert.quiet_count) == (3, T0 + 180, 0)
+    assert len(rows(book.store)) == 1
+    assert kinds(book.store, alert.id) == ["opened", "notified"]
+    assert (report.opened, report.repeated) == (0, 2)
+
+
+def test_one_reading_counts_once_per_rule(book: AlertBook):
+    twice = reading(T0, sig("beyond-limits", T0), sig("beyond-limits", T0))
+    book.apply([twice], now=T0)
+    (alert,) = book.store.alerts()
+    assert alert.signal_count == 1
+
+
+def test_different_rules_on_one_stream_are_different_alerts(book: AlertBook):
+    book.apply([reading(T0, sig("beyond-limits", T0), sig("mr-beyond-limit", T0, chart="mr"))], T0)
+    assert sorted(a.rule for a in book.store.alerts()) == ["beyond-limits", "mr-beyond-limit"]
+    assert len(rows(book.store)) == 2
+
+
+def test_an_acknowledged_alert_keeps_counting_signals(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    book.store.acknowledge(alert.id, by="m.chen", note="on it", now=T0 + 30)
+    book.apply([hit(T0 + 60)], now=T0 + 60)
+    (again,) = book.store.alerts()
+    assert (again.id, again.state, again.signal_count) == (alert.id, "acknowledged", 2)
+    assert len(rows(book.store)) == 1
+
+
+# --------------------------------------------------------------------------- hysteresis
+
+
+def test_an_alert_clears_after_n_consecutive_quiet_monitoring_readings(book: AlertBook):
+    book.apply([hit(T0), quiet(T0 + 60), quiet(T0 + 120)], now=T0 + 120)
+    (alert,) = book.store.alerts()
+    assert (alert.state, alert.quiet_count) == ("open", 2)
+    report = book.apply([quiet(T0 + 180)], now=T0 + 180)
+    cleared = book.store.alert(alert.id)
+    assert (cleared.state, cleared.cleared_at, cleared.quiet_count) == ("cleared", T0 + 180, 3)
+    assert kinds(book.store, alert.id)[-1] == "cleared"
+    assert report.cleared == 1
+
+
+def test_a_signal_restarts_the_quiet_count(book: AlertBook):
+    book.apply([hit(T0), quiet(T0 + 1), quiet(T0 + 2), hit(T0 + 3)], now=T0 + 3)
+    book.apply([quiet(T0 + 4), quiet(T0 + 5)], now=T0 + 5)
+    (alert,) = book.store.alerts()
+    assert (alert.state, alert.quiet_count) == ("open", 2)
+
+
+def test_learning_phase_and_refused_readings_do_not_count_as_quiet(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    book.apply(
+        [
+            reading(T0 + 1, phase="learning"),
+            reading(T0 + 2, accepted=False),
+            reading(T0 + 3, phase="learning"),
+            quiet(T0 + 10, stream="another/stream"),
+        ],
+        now=T0 + 10,
+    )
+    (alert,) = book.store.alerts()
+    assert (alert.state, alert.quiet_count) == ("open", 0)
+
+
+def test_another_rule_firing_is_quiet_for_this_rule(book: AlertBook):
+    book.apply([hit(T0, "trend")], now=T0)
+    book.apply([hit(T0 + t, "beyond-limits") for t in (1, 2, 3)], now=T0 + 3)
+    states = {a.rule: a.state for a in book.store.alerts()}
+    assert states == {"trend": "cleared", "beyond-limits": "open"}
+
+
+def test_a_signal_after_clearing_opens_a_new_alert_and_notifies(book: AlertBook):
+    book.apply([hit(T0), quiet(T0 + 1), quiet(T0 + 2), quiet(T0 + 3)], now=T0 + 3)
+    book.apply([hit(T0 + 4)], now=T0 + 4)
+    newer, older = book.store.alerts()
+    assert (older.state, newer.state, newer.signal_count) == ("cleared", "open", 1)
+    assert newer.id != older.id
+    assert rows(book.store) == [
+        (f"{older.id}:opened:0:default", "default"),
+        (f"{newer.id}:opened:0:default", "default"),
+    ]
+
+
+def test_a_flapping_stream_stays_one_alert(book: AlertBook):
+    # Signal on every other reading: never three quiet readings in a row, so one alert only.
+    batch = [hit(T0 + t) if t % 2 == 0 else quiet(T0 + t) for t in range(40)]
+    book.apply(batch, now=T0 + 40)
+    (alert,) = book.store.alerts()
+    assert (alert.state, alert.signal_count) == ("open", 20)
+    assert len(rows(book.store)) == 1
+
+
+# --------------------------------------------------------------------------- reminders, escalation
+
+
+def test_reminders_come_at_the_repeat_interval(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    assert book.tick(T0 + 599).queued == 0
+    assert book.tick(T0 + 600).queued == 1
+    assert book.tick(T0 + 600).queued == 0  # the same tick again owes nothing
+    assert book.tick(T0 + 1199).queued == 0
+    assert book.tick(T0 + 1200).queued == 1
+    assert rows(book.store) == [
+        (f"{alert.id}:opened:0:default", "default"),
+        (f"{alert.id}:reminder:1:default", "default"),
+        (f"{alert.id}:reminder:2:default", "default"),
+    ]
+    reminder = book.store.notifications()[2].payload
+    assert (reminder["kind"], reminder["number"]) == ("reminder", 2)
+    assert reminder["text"].startswith("Reminder 2, not yet acknowledged")
+    assert kinds(book.store, alert.id) == ["opened", "notified", "reminded", "reminded"]
+
+
+def test_a_late_tick_sends_one_reminder_not_a_backlog(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    book = AlertBook(book.store, AlertPolicy(repeat_every_s=600.0))
+    assert book.tick(T0 + 10 * 600).queued == 1
+    assert book.tick(T0 + 10 * 600 + 599).queued == 0
+
+
+def test_no_reminders_when_the_repeat_interval_is_off(fresh_db: Store):
+    book = AlertBook(fresh_db, AlertPolicy(repeat_every_s=None))
+    book.apply([hit(T0)], now=T0)
+    assert book.tick(T0 + 86400 * 7).queued == 0
+    assert len(rows(fresh_db)) == 1
+
+
+def test_escalation_goes_once_to_the_second_route(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    book.tick(T0 + 1799)
+    assert all(route == "default" for _, route in rows(book.store))
+    book.tick(T0 + 1800)
+    book.tick(T0 + 1800 + 600)
+    book.tick(T0 + 1800 + 6000)
+    escalations = [k for k, route in rows(book.store) if route == "escalation"]
+    assert escalations == [f"{alert.id}:escalation:1:escalation"]
+    assert kinds(book.store, alert.id).count("escalated") == 1
+    payload = next(n.payload for n in book.store.notifications() if n.route == "escalation")
+    assert payload["text"].startswith("Escalation, not acknowledged after 30 min")
+
+
+def test_acknowledging_stops_reminders_and_escalation(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    book.tick(T0 + 600)
+    book.store.acknowledge(alert.id, by="m.chen", now=T0 + 700)
+    for t in (1200, 1800, 3600, 86400):
+        assert book.tick(T0 + t).queued == 0
+    assert [k.split(":")[1] for k, _ in rows(book.store)] == ["opened", "reminder"]
+
+
+# --------------------------------------------------------------------------- shelving
+
+
+def test_a_shelf_holds_notifications_but_the_alert_is_recorded(book: AlertBook):
+    book.store.shelve(STREAM, until=T0 + 3600, reason="bearing swap", by="r.diaz", now=T0 - 10)
+    report = book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    assert alert.state == "open"
+    assert rows(book.store) == []
+    assert kinds(book.store, alert.id) == ["opened", "suppressed"]
+    held = book.store.alert_events(alert.id)[-1]
+    assert "bearing swap" in (held.note or "") and held.data == {
+        "shelf_id": 1,
+        "held": [f"{alert.id}:opened:0"],
+    }
+    assert (report.opened, report.suppressed, report.queued) == (1, 1, 0)
+    # While shelved, reminders and the escalation are held too, without a new event per tick.
+    for t in (600, 1200, 1800, 3599):
+        assert book.tick(T0 + t).queued == 0
+    assert kinds(book.store, alert.id) == ["opened", "suppressed"]
+
+
+def test_when_the_shelf_expires_what_is_still_owed_goes_out_once(book: AlertBook):
+    book.store.shelve(STREAM, until=T0 + 3600, reason="bearing swap", by="r.diaz", now=T0 - 10)
+    book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    book.tick(T0 + 1800)
+    assert book.tick(T0 + 3600).queued == 2
+    assert rows(book.store) == [
+        (f"{alert.id}:opened:0:default", "default"),
+        (f"{alert.id}:escalation:1:escalation", "escalation"),
+    ]
+    assert book.tick(T0 + 3601).queued == 0
+    assert book.tick(T0 + 4200).queued == 1  # reminders resume from the late notification
+
+
+def test_an_alert_that_clears_during_the_shelf_never_notifies(book: AlertBook):
+    book.store.shelve(STREAM, until=T0 + 3600, reason="bearing swap", by="r.diaz", now=T0 - 10)
+    book.apply([hit(T0), quiet(T0 + 60), quiet(T0 + 120), quiet(T0 + 180)], now=T0 + 180)
+    assert book.tick(T0 + 7200).queued == 0
+    assert rows(book.store) == []
+
+
+def test_a_rule_shelf_covers_only_that_rule(book: AlertBook):
+    book.store.shelve(STREAM, "trend", until=T0 + 3600, reason="ramp-up", by="x", now=T0 - 1)
+    book.apply([reading(T0, sig("trend", T0), sig("beyond-limits", T0))], now=T0)
+    notified = {book.store.alert(int(k.split(":")[0])).rule for k, _ in rows(book.store)}
+    assert notified == {"beyond-limits"}
+    assert len(book.store.alerts()) == 2
+
+
+def test_a_shelf_on_another_stream_changes_nothing(book: AlertBook):
+    book.store.shelve("line-9/other", until=T0 + 3600, reason="stop", by="x", now=T0 - 1)
+    book.apply([hit(T0)], now=T0)
+    assert len(rows(book.store)) == 1
+
+
+def test_unshelving_early_releases_the_held_notification(book: AlertBook):
+    book.store.shelve(STREAM, until=T0 + 3600, reason="bearing swap", by="r.diaz", now=T0 - 10)
+    book.apply([hit(T0)], now=T0)
+    book.store.unshelve(STREAM, by="r.diaz", now=T0 + 300)
+    assert book.tick(T0 + 301).queued == 1
+    (alert,) = book.store.alerts()
+    assert kinds(book.store, alert.id) == ["opened", "suppressed", "unshelved", "notified"]
+
+
+def test_a_longer_shelf_is_recorded_once_more(book: AlertBook):
+    book.store.shelve(STREAM, until=T0 + 600, reason="first", by="x", now=T0 - 1)
+    book.apply([hit(T0)], now=T0)
+    book.store.shelve(STREAM, until=T0 + 7200, reason="extended", by="x", now=T0 + 500)
+    book.tick(T0 + 700)
+    book.tick(T0 + 800)
+    (alert,) = book.store.alerts()
+    assert kinds(book.store, alert.id) == ["opened", "suppressed", "shelved", "suppressed"]
+    assert rows(book.store) == []
+
+
+def test_an_acknowledged_alert_is_not_announced_when_its_shelf_ends(book: AlertBook):
+    book.store.shelve(STREAM, until=T0 + 600, reason="swap", by="x", now=T0 - 1)
+    book.apply([hit(T0)], now=T0)
+    (alert,) = book.store.alerts()
+    book.store.acknowledge(alert.id, by="y", now=T0 + 100)
+    assert book.tick(T0 + 7200).queued == 0
+
+
+# --------------------------------------------------------------------------- replay, atomicity
+
+
+def test_a_replayed_batch_changes_nothing_and_enqueues_nothing_twice(book: AlertBook):
+    batch = [hit(T0), hit(T0 + 60), quiet(T0 + 120)]
+    book.apply(batch, now=T0 + 120)
+    before = book.store.alerts()
+    events = kinds(book.store, before[0].id)
+    report = book.apply(batch, now=T0 + 500)
+    assert book.store.alerts() == before
+    assert kinds(book.store, before[0].id) == events
+    assert len(rows(book.store)) == 1
+    assert (report.opened, report.repeated, report.replayed) == (0, 0, 2)
+
+
+def test_a_replay_after_clearing_does_not_reopen(book: AlertBook):
+    batch = [hit(T0), quiet(T0 + 1), quiet(T0 + 2), quiet(T0 + 3)]
+    book.apply(batch, now=T0 + 3)
+    book.apply(batch, now=T0 + 10)
+    (alert,) = book.store.alerts()
+    assert alert.state == "cleared"
+    assert len(rows(book.store)) == 1
+
+
+def test_a_rolled_back_batch_leaves_no_alert_and_the_retry_enqueues_once(book: AlertBook):
+    with pytest.raises(RuntimeError), book.store.transaction():
+        book.store.record_batch([hit(T0)], now=T0)
+        book.apply([hit(T0)], now=T0)
+        raise RuntimeError("process killed before commit")
+    assert book.store.alerts() == [] and rows(book.store) == []
+    with book.store.transaction():
+        book.store.record_batch([hit(T0)], now=T0 + 5)
+        book.apply([hit(T0)], now=T0 + 5)
+    (alert,) = book.store.alerts()
+    assert rows(book.store) == [(f"{alert.id}:opened:0:default", "default")]
+
+
+def test_a_tick_rolled_back_then_retried_enqueues_once(book: AlertBook):
+    book.apply([hit(T0)], now=T0)
+    with pytest.raises(RuntimeError), book.store.transaction():
+        book.tick(T0 + 600)
+        raise RuntimeError("crash")
+    book.tick(T0 + 600)
+    book.tick(T0 + 601)
+    assert [k.split(":")[1] for k, _ in rows(book.store)] == ["opened", "reminder"]
+
+
+def _final_state(batches: list[list[Outcome]], replay: bool) -> tuple[list, list]:
+    """Apply ``batches`` (each twice when ``replay``) to a new file; return what is left."""
+    with tempfile.TemporaryDirectory() as tmp, Store.open(Path(tmp) / "p.db") as store:
+        book = AlertBook(store, POLICY)
+        for batch in batches:
+            now = batch[-1].reading.time
+            book.apply(batch, now=now)
+            if replay:
+                book.apply(batch, now=now + 1)
+        alerts = [
+            (a.stream, a.rule, a.state, a.signal_count, a.quiet_count, a.first_time, a.last_time)
+            for a in reversed(store.alerts())
+        ]
+        return alerts, rows(store)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    steps=st.lists(
+        st.tuples(
+            st.sampled_from(["line-1/a", "line-1/b"]),
+            st.sets(st.sampled_from(["beyond-limits", "trend"]), max_size=2),
+            st.booleans(),  # monitoring (True) or learning
+        ),
+        min_size=1,
+        max_size=40,
+    ),
+    cuts=st.sets(st.integers(1, 39), max_size=6),
+    replay=st.booleans(),
+)
+def test_batch_boundaries_and_replays_do_not_change_the_result(steps, cuts, replay):
+    outcomes = [
+        reading(
+            T0 + i,
+            *(sig(rule, T0 + i, stream=stream) for rule in sorted(rules)),
+            stream=stream,
+            phase="monitoring" if monitoring else "learning",
+        )
+        for i, (stream, rules, monitoring) in enumerate(steps)
+    ]
+    bounds = [0, *sorted(c for c in cuts if c < len(outcomes)), len(outcomes)]
+    pieces = [outcomes[a:b] for a, b in itertools.pairwise(bounds) if b > a]
+    assert _final_state(pieces, replay) == _final_state([outcomes], replay=False)
+
+
+# --------------------------------------------------------------------------- policy, routing
+
+
+def test_severity_comes_from_the_first_matching_rule_or_the_default(fresh_db: Store):
+    policy = AlertPolicy(
+        default_severity="info",
+        severities=(
+            SeverityRule("line-2/*", "beyond-limits", "critical"),
+            SeverityRule("line-2/*", None, "warning"),
+        ),
+    )
+    book = AlertBook(fresh_db, policy)
+    book.apply(
+        [
+            reading(T0, sig("beyond-limits", T0), sig("trend", T0)),
+            hit(T0, "beyond-limits", stream="line-3/gearbox-temp"),
+        ],
+        now=T0,
+    )
+    found = {(a.stream, a.rule): a.severity for a in fresh_db.alerts()}
+    assert found == {
+        (STREAM, "beyond-limits"): "critical",
+        (STREAM, "trend"): "warning",
+        ("line-3/gearbox-temp", "beyond-limits"): "info",
+    }
+
+
+@pytest.mark.parametrize(
+    "kwargs",
+    [
+        {"clear_after": 0},
+        {"repeat_every_s": 0.0},
+        {"escalate_after_s": -1.0},
+        {"default_severity": "urgent"},
+        {"severities": (SeverityRule("*", None, "loud"),)},
+    ],
+)
+def test_a_bad_policy_is_refused(kwargs: dict):
+    with pytest.raises(ValueError):
+        AlertPolicy(**kwargs)
+
+
+def test_a_router_can_send_one_event_to_several_notifiers(fresh_db: Store):
+    def targets(stream: str, rule: str, severity: str, kind: str) -> list[str]:
+        return ["pager", "log"] if severity == "critical" else ["log"]
+
+    policy = AlertPolicy(
+        severities=(SeverityRule("*", "beyond-limits", "critical"),), targets=targets
+    )
+    book = AlertBook(fresh_db, policy)
+    book.apply([reading(T0, sig("beyond-limits", T0), sig("trend", T0))], now=T0)
+    by_route = {
+        (n.route, n.payload["rule"]): n.payload["event_id"] for n in fresh_db.notifications()
+    }
+    assert set(by_route) == {("pager", "beyond-limits"), ("log", "beyond-limits"), ("log", "trend")}
+    assert by_route["pager", "beyond-limits"] == by_route["log", "beyond-limits"]
+
+
+def test_no_matching_route_is_recorded_not_retried(fresh_db: Store):
+    book = AlertBook(fresh_db, AlertPolicy(targets=lambda *_: []))
+    book.apply([hit(T0)], now=T0)
+    (alert,) = fresh_db.alerts()
+    (event,) = [e for e in fresh_db.alert_events(alert.id) if e.kind == "notified"]
+    assert event.note == "no route matches"
+    assert book.tick(T0 + 1).queued == 0 and rows(fresh_db) == []
+
+
+def test_notifications_expire_after_the_ttl(fresh_db: Store):
+    AlertBook(fresh_db, AlertPolicy(notification_ttl_s=3600.0)).apply([hit(T0)], now=T0 + 5)
+    (note,) = fresh_db.notifications()
+    assert note.expires_at == T0 + 5 + 3600.0
+
+
+def test_a_signal_without_a_reading_opens_an_alert(book: AlertBook):
+    stale = sig("stale", T0 + 900, value=math.nan)
+    book.apply_signals([stale], now=T0 + 900)
+    (alert,) = book.store.alerts()
+    assert (alert.rule, alert.last_value) == ("stale", None)
+    payload = book.store.notifications()[0].payload
+    assert payload["value"] is None and "No reading has arrived" in payload["text"]
+    json.dumps(payload, allow_nan=False)
+
+
+def test_every_rule_id_has_words():
+    ids = {
+        "beyond-limits",
+        "two-of-three-zone-a",
+        "four-of-five-zone-b",
+        "run-one-side",
+        "trend",
+        "alternating",
+        "hugging-center",
+        "avoiding-center",
+        "mr-beyond-limit",
+        "ewma",
+        "cusum",
+        "stale",
+    }
+    assert set(RULE_WORDS) == ids
+    assert all(words.endswith(".") and len(words) > 30 for words in RULE_WORDS.values())
+
+
+def test_the_moving_range_text_names_the_moving_range_limit(book: AlertBook):
+    book.apply([reading(T0, sig("mr-beyond-limit", T0, value=95.0, chart="mr"))], now=T0)
+    text = book.store.notifications()[0].payload["text"]
+    assert "Moving range 15 against an upper limit of 11.06" in text
+    assert "Statistic" not in text and "natural process limits" not in text
+
+
+def test_an_ewma_text_names_its_statistic_and_limit(book: AlertBook):
+    ewma = replace(sig("ewma", T0), statistic=0.84, limit=0.79)
+    book.apply([reading(T0, ewma)], now=T0)
+    text = book.store.notifications()[0].payload["text"]
+    assert "Statistic 0.84 against limit 0.79" in text and "71 to 89" in text
+
+
+# --------------------------------------------------------------------------- pure decisions
+
+
+def _alert(**fields) -> Alert:
+    base = dict(
+        id=5,
+        stream=STREAM,
+        rule="trend",
+        state="open",
+        severity="warning",
+        opened_at=T0,
+        first_time=T0,
+        first_index=0,
+        first_value=1.0,
+        last_time=T0,
+        last_index=0,
+        last_value=1.0,
+        signal_count=1,
+        quiet_count=0,
+        seen_time=T0,
+        signal={},
+        notified_at=T0,
+        last_notice_at=T0,
+    )
+    base.update(fields)
+    return Alert(**base)  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize(
+    ("fields", "now", "expected"),
+    [
+        ({}, T0 + 599, ()),
+        ({}, T0 + 600, (Notice("reminder", 1),)),
+        (
+            {"reminders": 3, "last_notice_at": T0 + 1800, "escalated_at": T0 + 1800},
+            T0 + 2400,
+            (Notice("reminder", 4),),
+        ),
+        ({"notified_at": None, "last_notice_at": None}, T0 + 1, (Notice("opened", 0),)),
+        ({"last_notice_at": T0 + 1500}, T0 + 1800, (Notice("escalation", 1),)),
+        ({}, T0 + 1800, (Notice("reminder", 1), Notice("escalation", 1))),
+        ({"escalated_at": T0 + 1800, "last_notice_at": T0 + 1800}, T0 + 2000, ()),
+        ({"state": "acknowledged"}, T0 + 9999, ()),
+        ({"state": "cleared"}, T0 + 9999, ()),
+    ],
+)
+def test_notices_due(fields: dict, now: float, expected: tuple):
+    assert notices_due(_alert(**fields), POLICY, now) == expected
+
+
+def test_judge_signal():
+    assert judge_signal(None, sig(t=T0)) == "open"
+    assert judge_signal(_alert(seen_time=T0), sig(t=T0 + 1)) == "repeat"
+    assert judge_signal(_alert(seen_time=T0), sig(t=T0)) == "replayed"
+    assert judge_signal(_alert(state="cleared", seen_time=T0), sig(t=T0 + 1)) == "open"
+    assert judge_signal(_alert(state="cleared", seen_time=T0), sig(t=T0 - 5)) == "replayed"
+
+
+def test_covering_shelf_and_hold_is_new():
+    def shelf(id: int, rule: str | None, until: float, ended_at: float | None = None) -> Shelf:
+        return Shelf(id, STREAM, rule, T0, until, "r", "x", ended_at)
+
+    shelves = [
+        shelf(1, None, T0 + 100),
+        shelf(2, "trend", T0 + 500),
+        shelf(3, "trend", T0 + 900, ended_at=T0 + 10),
+        Shelf(4, "other", None, T0, T0 + 9999, "r", "x"),
+    ]
+    assert covering_shelf(shelves, STREAM, "trend", T0 + 50).id == 2  # type: ignore[union-attr]
+    assert covering_shelf(shelves, STREAM, "beyond-limits", T0 + 50).id == 1  # type: ignore[union-attr]
+    assert covering_shelf(shelves, STREAM, "beyond-limits", T0 + 100) is None
+    assert hold_is_new(_alert(), shelves[0])
+    assert not hold_is_new(_alert(suppressed_until=T0 + 100), shelves[0])
+    assert hold_is_new(_alert(suppressed_until=T0 + 100), shelves[1])
