@@ -20,3 +20,21 @@ def fresh_db(tmp_path: Path) -> Iterator[Store]:
         yield store
     finally:
         store.close()
+
+
+# -- a real Mosquitto broker on loopback -------------------------------------------------------
+
+from tests.broker import Broker, mosquitto_path  # noqa: E402
+
+
+@pytest.fixture
+def broker(tmp_path: Path) -> Iterator[Broker]:
+    """A fresh Mosquitto on a free 127.0.0.1 port, persistence on; stopped after the test.
+    Skips only when mosquitto is not installed (scripts/test.sh installs it)."""
+    if mosquitto_path() is None:
+        pytest.skip("mosquitto is not installed")
+    instance = Broker(tmp_path / "broker").start()
+    try:
+        yield instance
+    finally:
+        instance.stop()
