@@ -81,8 +81,10 @@ class Broker:
         if exe is None:
             raise RuntimeError("mosquitto is not installed (apt-get install mosquitto)")
         self.write_config()
-        log = self.log_path.open("ab")
-        self.process = subprocess.Popen([exe, "-c", str(self.config_path)], stdout=log, stderr=log)
+        with self.log_path.open("ab") as log:  # the child keeps its own copy of the handle
+            self.process = subprocess.Popen(
+                [exe, "-c", str(self.config_path)], stdout=log, stderr=log
+            )
         try:
             wait_for_port(self.port)
         except TimeoutError:
