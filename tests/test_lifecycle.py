@@ -663,3 +663,37 @@ def test_covering_shelf_and_hold_is_new():
     assert hold_is_new(_alert(), shelves[0])
     assert not hold_is_new(_alert(suppressed_until=T0 + 100), shelves[0])
     assert hold_is_new(_alert(suppressed_until=T0 + 100), shelves[1])
+
+
+def test_signals_for_two_streams_with_the_same_rule_open_two_alerts(fresh_db):
+    """Regression: repeats were keyed by rule alone, so a stale check covering several
+    streams in one call opened an alert for the first stream only."""
+    from limitwatch.alerts.lifecycle import AlertBook
+    from limitwatch.model import StreamSignal
+
+    def stale(stream: str) -> StreamSignal:
+        return StreamSignal(
+            stream=stream,
+            rule="stale",
+            chart="x",
+            side=None,
+            index=3,
+            time=100.0,
+            value=1.0,
+            involved=(),
+            center=1.0,
+            sigma=0.1,
+            ucl=1.3,
+            lcl=0.7,
+            mr=None,
+            mr_ucl=0.37,
+            baseline_version=1,
+        )
+
+    book = AlertBook(fresh_db)
+    report = book.apply_signals([stale("pack-1/downtime"), stale("pack-2/downtime")], now=100.0)
+    assert report.opened == 2
+    assert {a.stream for a in fresh_db.alerts(state="open")} == {
+        "pack-1/downtime",
+        "pack-2/downtime",
+    }

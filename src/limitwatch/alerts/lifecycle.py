@@ -529,9 +529,12 @@ class _Batch:
     def take_signals(self, signals: Iterable[StreamSignal]) -> set[str]:
         """Apply signals; return the rules that fired (replays included: not quiet either)."""
         fired: set[str] = set()
+        seen: set[tuple[str, str]] = set()
         for signal in signals:
-            if signal.rule in fired:
+            key = (signal.stream, signal.rule)
+            if key in seen:
                 continue  # one reading counts once per rule, however many detectors agree
+            seen.add(key)
             fired.add(signal.rule)
             live = self.live.setdefault(signal.stream, {})
             alert = live.get(signal.rule)
