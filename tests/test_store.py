@@ -601,3 +601,21 @@ def test_marking_an_unknown_notification_raises(fresh_db: Store):
         fresh_db.mark_delivered(12, now=T0)
     with pytest.raises(NotificationNotFound):
         fresh_db.mark_failed(12, "boom", T0)
+
+
+def test_file_offsets_upsert_per_source(fresh_db):
+    fresh_db.save_file_offsets("exports", {"1:10": 120, "1:11": 0}, now=1.0)
+    fresh_db.save_file_offsets("exports", {"1:10": 480}, now=2.0)
+    fresh_db.save_file_offsets("other", {"1:10": 5}, now=2.0)
+    assert fresh_db.file_offsets("exports") == {"1:10": 480, "1:11": 0}
+    assert fresh_db.file_offsets("other") == {"1:10": 5}
+    assert fresh_db.file_offsets("none") == {}
+
+
+def test_baseline_versions_reports_the_newest_per_stream(fresh_db):
+    for stream, versions in {"a": 3, "b": 1}.items():
+        for _ in range(versions):
+            fresh_db.add_baseline(
+                stream, {"center": 1.0}, now=0.0, by="t", reason="r", method="mean"
+            )
+    assert fresh_db.baseline_versions() == {"a": 3, "b": 1}

@@ -899,6 +899,31 @@ class Store:
         rows = self._all("SELECT * FROM baselines WHERE stream = ? ORDER BY version", (stream,))
         return [Baseline._from_row(r) for r in rows]
 
+    # ---- file offsets
+
+    def file_offsets(self, source: str) -> dict[str, int]:
+        """Committed byte offsets of a file source, by file identity."""
+        rows = self._all(
+            "SELECT file_id, byte_offset FROM file_offsets WHERE source = ?", (source,)
+        )
+        return {r["file_id"]: int(r["byte_offset"]) for r in rows}
+
+    def save_file_offsets(self, source: str, offsets: Mapping[str, int], *, now: float) -> None:
+        """Upsert offsets; call inside the batch transaction that used the lines before them."""
+        with self.transaction():
+            self.db.conn.executemany(
+                """INSERT INTO file_offsets (source, file_id, byte_offset, updated_at)
+                VALUES (?, ?, ?, ?)
+                ON CONFLICT (source, file_id) DO UPDATE SET
+                    byte_offset = excluded.byte_offset, updated_at = excluded.updated_at""",
+                [(source, fid, int(off), now) for fid, off in offsets.items()],
+            )
+
+    def baseline_versions(self) -> dict[str, int]:
+        """The newest baseline version of every stream, in one query (for noticing refits)."""
+        rows = self._all("SELECT stream, max(version) AS v FROM baselines GROUP BY stream")
+        return {r["stream"]: int(r["v"]) for r in rows}
+
     # ---- dead letters
 
     def add_dead_letter(
