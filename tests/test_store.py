@@ -619,3 +619,24 @@ def test_baseline_versions_reports_the_newest_per_stream(fresh_db):
                 stream, {"center": 1.0}, now=0.0, by="t", reason="r", method="mean"
             )
     assert fresh_db.baseline_versions() == {"a": 3, "b": 1}
+
+
+def test_a_single_write_outside_a_transaction_is_committed_at_once(tmp_path):
+    """Regression: a bare write (mark_delivered) used to leave an implicit transaction open, so
+    it -- and every later transaction, reduced to a savepoint -- never reached the file."""
+    import sqlite3
+
+    from limitwatch.store import Store
+
+    path = tmp_path / "limitwatch.db"
+    store = Store.open(path, now=0.0)
+    row = store.enqueue_notification("k:1", alert_id=None, route="r", payload={"a": 1}, now=1.0)
+    store.mark_delivered(row, now=2.0)
+    store.save_checkpoint("s", {"n": 1}, now=3.0)
+    other = sqlite3.connect(path)  # a second process's view, before the first one closes
+    try:
+        assert other.execute("SELECT delivered_at FROM outbox").fetchall() == [(2.0,)]
+        assert other.execute("SELECT count(*) FROM checkpoints").fetchone() == (1,)
+    finally:
+        other.close()
+        store.close()

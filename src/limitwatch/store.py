@@ -629,6 +629,11 @@ class Store:
         if path != ":memory:":
             Path(path).parent.mkdir(parents=True, exist_ok=True)
         db = sqlite_utils.Database(path, execute_plugins=False)
+        # Autocommit: Python's sqlite3 would otherwise open a transaction implicitly before any
+        # write and keep it open until someone commits -- a bare UPDATE would then turn every
+        # later transaction() into a savepoint that never commits. Transactions here are always
+        # explicit (BEGIN IMMEDIATE ... COMMIT in transaction()).
+        db.conn.isolation_level = None
         try:
             db.execute(f"PRAGMA busy_timeout = {int(busy_timeout_s * 1000)}")
             db.enable_wal()
