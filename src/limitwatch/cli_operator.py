@@ -1,0 +1,1063 @@
+"""The operator's commands: list, acknowledge, shelve and trace alerts; inspect streams; show,
+list and refit baselines. All of them work on the service's SQLite file.
+
+Why a module of its own: these commands share one concern -- finding the database, opening it
+safely next to a running service, and turning the store's named errors into one clear line --
+that the data commands in :mod:`limitwatch.cli` do not have.
+
+Conventions:
+
+* The database is ``--db PATH``, else ``store.path`` of ``--config FILE``, else the environment
+  variable ``LIMITWATCH_DB``, else ``./limitwatch.db``. A missing file is an error: a typo must
+  never create an empty database that then shows "no alerts".
+* Commands that only read open the file read-only (SQLite ``mode=ro``), so a look at the alerts
+  cannot change anything the service depends on, nor upgrade its schema behind its back.
+* "Now" is read once per command, here at the edge (:func:`clock`), and passed to the store.
+* Problems the operator can fix exit with status 1 and one line starting ``Error:``; option
+  mistakes exit with status 2 (click's convention).
+
+>>> span_text(5400), span_text(3 * 86400 + 7200), ago_text(0.0, 600.0)
+('1h30m', '3d02h', '10m ago')
+
+References
+----------
+ANSI/ISA-18.2-2016, *Management of Alarm Systems for the Process Industries* (cited from memory):
+shelving as a temporary, operator-initiated suppression that ends by itself, and the record of who
+acknowledged or shelved what, when and why.
+Montgomery, D. C., *Introduction to Statistical Quality Control*, on revising control limits from
+recent in-control data (phase I), which ``baseline refit`` does with a stored provenance.
+"""
+
+from __future__ import annotations
+
+import getpass
+import glob
+import json
+import math
+import os
+import re
+import sqlite3
+import textwrap
+import time
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from fnmatch import fnmatchcase
+from pathlib import Path
+from typing import Any
+
+import click
+import sqlite_utils
+
+from limitwatch import SAFETY_CAUTION
+from limitwatch.alerts.lifecycle import covering_shelf, rule_words
+from limitwatch.cli import FORMATS, InputProblem, baseline, main
+from limitwatch.config import ConfigError, load_config
+from limitwatch.durations import DurationError, format_duration, parse_duration
+from limitwatch.ingest.timeparse import format_time
+from limitwatch.stats.baseline import Baseline as Limits
+from limitwatch.stats.baseline import BaselineError, fit_baseline
+from limitwatch.stats.rules import DETECTORS
+from limitwatch.store import (
+    ALERT_STATES,
+    MIGRATIONS,
+    Alert,
+    AlertEvent,
+    NotShelved,
+    Shelf,
+    Store,
+    StoreError,
+    StreamRow,
+)
+from limitwatch.store import Baseline as StoredBaseline
+from limitwatch.textout import num, table
+
+DB_ENV = "LIMITWATCH_DB"
+DEFAULT_DB = "limitwatch.db"
+WIDTH = 80
+RULE_IDS: tuple[str, ...] = tuple(sorted({*DETECTORS, "stale"}))
+"""Rule ids an operator may shelve: every detector plus the stale-stream check."""
+
+_SCHEMA = MIGRATIONS[-1].version
+_STATE_SHORT = {"open": "open", "acknowledged": "acked", "cleared": "cleared"}
+
+
+def clock() -> float:
+    """The one place the operator commands read the time (epoch seconds, UTC)."""
+    return time.time()
+
+
+# -- small text helpers ----------------------------------------------------------------------
+
+
+def span_text(seconds: float, parts: int = 2) -> str:
+    """A duration in its largest unit or two (rounded down), compact enough for a table cell.
+
+    >>> [span_text(s) for s in (42, 600, 3 * 3600, 3 * 3600 + 300, 50 * 3600)]
+    ['42s', '10m', '3h', '3h05m', '2d02h']
+    >>> span_text(3 * 3600 + 300, parts=1)
+    '3h'
+    """
+    s = max(0, round(seconds))
+    if s < 60:
+        return f"{s}s"
+    m = s // 60
+    if m < 60:
+        return f"{m}m"
+    h, m = divmod(m, 60)
+    if h < 48:
+        return f"{h}h{m:02d}m" if m and parts > 1 else f"{h}h"
+    d, h = divmod(h, 24)
+    return f"{d}d{h:02d}h" if h and parts > 1 else f"{d}d"
+
+
+def ago_text(then: float | None, now: float) -> str:
+    """How long ago, for the past week; a short UTC date otherwise (or for a time ahead).
+
+    >>> ago_text(1000.0, 1000.0 + 7500), ago_text(0.0, 30 * 86400.0)
+    ('2h ago', '1970-01-01')
+    """
+    if then is None:
+        return "-"
+    d = now - then
+    if -60 < d < 0:
+        return "just now"
+    if 0 <= d < 7 * 86400:
+        return f"{span_text(d, parts=1)} ago"
+    return format_time(math.floor(then))[:10]
+
+
+def iso(t: float | None) -> str | None:
+    """UTC ISO 8601 for JSON (full precision), None stays None."""
+    return None if t is None else format_time(t)
+
+
+def iso_s(t: float | None) -> str:
+    """UTC ISO 8601 to the second, for tables."""
+    return "-" if t is None else format_time(math.floor(t))
+
+
+class _Duration(click.ParamType):
+    name = "duration"
+
+    def convert(
+        self, value: Any, param: click.Parameter | None, ctx: click.Context | None
+    ) -> float:
+        """Seconds from e.g. ``90m``, ``8h``, ``2d`` or ``1h30m``; a bare number is refused
+        here (is ``8`` hours or seconds?), and so is zero."""
+        if isinstance(value, float):
+            return value
+        text = str(value).strip()
+        try:
+            seconds = parse_duration(text)
+        except DurationError as exc:
+            self.fail(str(exc), param, ctx)
+        if not re.search(r"[a-z]", text):
+            self.fail(f"{text!r} has no unit; write e.g. 90m, 8h or 2d", param, ctx)
+        if seconds <= 0:
+            self.fail(f"{text!r} is no time at all; give a positive duration", param, ctx)
+        return seconds
+
+
+def _cut(text: str, width: int) -> str:
+    return text if len(text) <= width else text[: max(width - 1, 0)] + "…"
+
+
+def fit_table(
+    headers: Sequence[str], rows: Sequence[Sequence[str]], cuttable: Sequence[int]
+) -> str:
+    """:func:`limitwatch.textout.table` within 80 columns, shortening the ``cuttable`` columns
+    (names) in turn, the widest first, so that no one of them loses everything.
+
+    >>> out = fit_table(["a", "b"], [["x" * 50, "y" * 50]], cuttable=[0, 1])
+    >>> max(len(line) for line in out.splitlines()), out.splitlines()[2][:5]
+    (80, 'xxxxx')
+    """
+    widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
+    over = sum(widths) + 2 * (len(widths) - 1) - WIDTH
+    while over > 0:
+        i = max(cuttable, key=lambda j: widths[j])
+        if widths[i] <= max(len(headers[i]), 8):
+            break
+        widths[i] -= 1
+        over -= 1
+    cut_rows = [
+        [_cut(cell, widths[i]) if i in cuttable else cell for i, cell in enumerate(row)]
+        for row in rows
+    ]
+    text = table(headers, cut_rows, max_width=WIDTH)
+    if any(len(row[i]) > widths[i] for row in rows for i in cuttable):
+        text += "\n(… marks a name shortened to fit 80 columns; --format json shows it whole)"
+    return text
+
+
+def _wrap(text: str, indent: str = "") -> str:
+    return textwrap.fill(
+        text, WIDTH, initial_indent=indent, subsequent_indent=indent, break_on_hyphens=False
+    )
+
+
+def _g(x: float | None) -> str:
+    """Numbers in tables: five significant figures."""
+    return num(x, 5)
+
+
+def _emit_json(data: Any) -> None:
+    click.echo(json.dumps(data, indent=2, allow_nan=False))
+
+
+# -- finding and opening the database ----------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class Target:
+    """The database file a command works on, and where that choice came from (for messages)."""
+
+    path: Path
+    origin: str
+
+
+def _db_options(func: Callable[..., Any]) -> Callable[..., Any]:
+    func = click.option(
+        "--config",
+        "config_file",
+        metavar="FILE",
+        type=click.Path(dir_okay=False),
+        help="Use the database named by store.path in this TOML config file.",
+    )(func)
+    return click.option(
+        "--db",
+        "db_path",
+        metavar="PATH",
+        help=f"The limitwatch database file [default: ${DB_ENV}, else ./{DEFAULT_DB}].",
+    )(func)
+
+
+def locate(db_path: str | None, config_file: str | None) -> Target:
+    """Which file to open: ``--db``, else the config's ``store.path``, else ``$LIMITWATCH_DB``,
+    else ``./limitwatch.db``."""
+    if db_path is not None and config_file is not None:
+        raise click.UsageError("give --db or --config, not both")
+    if db_path is not None:
+        return Target(Path(db_path), "--db")
+    if config_file is not None:
+        return Target(_config_store_path(config_file), f"store.path in {config_file}")
+    env = os.environ.get(DB_ENV)
+    if env:
+        return Target(Path(env), f"${DB_ENV}")
+    return Target(Path(DEFAULT_DB), "the default location")
+
+
+def _config_store_path(config_file: str) -> Path:
+    """``store.path`` of the config (relative paths are taken from the config file's folder).
+    Only the file's structure is checked: reading the alerts needs none of its secrets."""
+    try:
+        return Path(load_config(config_file).store.path)
+    except ConfigError as exc:
+        raise InputProblem(str(exc)) from None
+
+
+def _connect_read_only(target: Target) -> tuple[sqlite3.Connection, int]:
+    """Open the file read-only and check it is a limitwatch database this code can read."""
+    path = target.path
+    if not path.exists():
+        raise InputProblem(
+            f"no database at {path} (from {target.origin}). Check the path; the service "
+            "creates the file when it first starts."
+        )
+    if not path.is_file():
+        raise InputProblem(f"{path} (from {target.origin}) is not a file")
+    conn = sqlite3.connect(path.resolve().as_uri() + "?mode=ro", uri=True)
+    try:
+        conn.execute("PRAGMA busy_timeout = 5000")
+        row = conn.execute("SELECT max(version) FROM schema_migrations").fetchone()
+    except sqlite3.DatabaseError as exc:
+        conn.close()
+        what = "a limitwatch database" if "no such table" in str(exc) else "an SQLite database"
+        raise InputProblem(
+            f"{path} (from {target.origin}) is not {what} ({exc}); check the path"
+        ) from None
+    version = int(row[0] or 0)
+    if version > _SCHEMA:
+        conn.close()
+        raise InputProblem(
+            f"{path} has schema version {version}, newer than this limitwatch knows "
+            f"({_SCHEMA}); upgrade limitwatch"
+        )
+    return conn, version
+
+
+def _open(target: Target, *, write: bool, now: float) -> Store:
+    conn, version = _connect_read_only(target)
+    if write:
+        conn.close()
+        # Store.open upgrades an older schema in place, as the service would.
+        return Store.open(target.path, now=now)
+    if version < _SCHEMA:
+        conn.close()
+        raise InputProblem(
+            f"{target.path} has schema version {version}, older than this limitwatch "
+            f"reads ({_SCHEMA}); the service upgrades it when it starts, and so does any "
+            "command that changes something (ack, shelve, unshelve, baseline refit)"
+        )
+    db = sqlite_utils.Database(conn, execute_plugins=False)
+    db.register_function(fnmatchcase, deterministic=True, name="glob_match")
+    return Store(db, str(target.path))
+
+
+@contextmanager
+def opened(
+    db_path: str | None, config_file: str | None, *, write: bool = False, now: float
+) -> Iterator[Store]:
+    """The store for one command; the store's named errors become one ``Error:`` line."""
+    target = locate(db_path, config_file)
+    with _explained(target):
+        store = _open(target, write=write, now=now)
+    try:
+        with _explained(target):
+            yield store
+    finally:
+        store.close()
+
+
+@contextmanager
+def _explained(target: Target) -> Iterator[None]:
+    try:
+        yield
+    except StoreError as exc:
+        raise InputProblem(str(exc)) from None
+    except sqlite3.OperationalError as exc:
+        raise InputProblem(
+            f"{target.path}: {exc}; if the service is busy writing, try again"
+        ) from None
+
+
+def _actor(by: str | None) -> str:
+    if by is not None:
+        if not by.strip():
+            raise click.BadParameter("must name someone", param_hint="--by")
+        return by.strip()
+    try:
+        name = getpass.getuser()
+    except (KeyError, OSError, ImportError):
+        name = ""
+    if not name:
+        raise InputProblem("cannot tell who you are from the system; pass --by NAME")
+    return name
+
+
+def _stream_row(store: Store, stream: str) -> StreamRow | None:
+    return next((s for s in store.streams(glob=glob.escape(stream)) if s.id == stream), None)
+
+
+def _unknown_stream(stream: str) -> InputProblem:
+    return InputProblem(
+        f"no stream {stream!r} has reported to this database; "
+        "'limitwatch streams' lists the known ones"
+    )
+
+
+# -- alerts --------------------------------------------------------------------------------------
+
+
+def alert_record(alert: Alert, shelved_until: float | None) -> dict[str, Any]:
+    """The JSON object for one alert (``limitwatch alerts --format json``)."""
+    sig = alert.signal
+    return {
+        "id": alert.id,
+        "stream": alert.stream,
+        "rule": alert.rule,
+        "rule_words": rule_words(alert.rule),
+        "state": alert.state,
+        "severity": alert.severity,
+        "count": alert.signal_count,
+        "opened_at": iso(alert.opened_at),
+        "first_time": iso(alert.first_time),
+        "first_value": alert.first_value,
+        "last_time": iso(alert.last_time),
+        "last_value": alert.last_value,
+        "center": sig.get("center"),
+        "lcl": sig.get("lcl"),
+        "ucl": sig.get("ucl"),
+        "baseline_version": sig.get("baseline_version"),
+        "acknowledged_at": iso(alert.acknowledged_at),
+        "acknowledged_by": alert.acknowledged_by,
+        "ack_note": alert.ack_note,
+        "cleared_at": iso(alert.cleared_at),
+        "shelved_until": iso(shelved_until),
+    }
+
+
+def _held_until(alert: Alert, shelves: Sequence[Shelf], now: float) -> float | None:
+    if alert.state == "cleared":
+        return None
+    shelf = covering_shelf(shelves, alert.stream, alert.rule, now)
+    return None if shelf is None else shelf.until
+
+
+@main.command("alerts")
+@click.option(
+    "--state",
+    type=click.Choice([*ALERT_STATES, "all"]),
+    help="Only alerts in this state  [default: open and acknowledged].",
+)
+@click.option(
+    "--stream",
+    "stream_glob",
+    metavar="GLOB",
+    help="Only streams whose id matches GLOB (shell-style, case-sensitive), e.g. 'pack-*'.",
+)
+@click.option(
+    "--format",
+    "fmt",
+    type=FORMATS,
+    default="table",
+    show_default=True,
+    help="A table for people, or JSON for scripts.",
+)
+@_db_options
+def alerts_cmd(
+    state: str | None,
+    stream_glob: str | None,
+    fmt: str,
+    db_path: str | None,
+    config_file: str | None,
+) -> None:
+    """List alerts, newest first: by default those still open or acknowledged.
+
+    In the table, 'acked' means acknowledged, 'count' the signals since the alert opened and
+    'value' the last reading that signalled. With --format json the output is a list of
+    objects with the keys id, stream, rule, rule_words, state, severity, count, opened_at,
+    first_time, first_value, last_time, last_value, center, lcl, ucl, baseline_version,
+    acknowledged_at, acknowledged_by, ack_note, cleared_at and shelved_until. Times are UTC
+    ISO 8601 strings; a key without a value holds null.
+
+    \b
+    Examples:
+      limitwatch alerts
+      limitwatch alerts --state all --stream 'pack-*' --format json
+    """
+    now = clock()
+    states = ALERT_STATES if state == "all" else (state,) if state else ("open", "acknowledged")
+    with opened(db_path, config_file, now=now) as store:
+        found = store.alerts(state=list(states), stream_glob=stream_glob)
+        shelves = store.active_shelves(now)
+    held = {a.id: _held_until(a, shelves, now) for a in found}
+    if fmt == "json":
+        _emit_json([alert_record(a, held[a.id]) for a in found])
+        return
+    if not found:
+        where = f" for streams matching {stream_glob!r}" if stream_glob else ""
+        which = "" if state == "all" else f"{' or '.join(states)} "
+        click.echo(f"No {which}alerts{where}.")
+        return
+    rows = [
+        [
+            str(a.id),
+            _STATE_SHORT[a.state],
+            a.severity,
+            a.stream,
+            a.rule,
+            str(a.signal_count),
+            ago_text(a.opened_at, now),
+            _g(a.last_value),
+        ]
+        for a in found
+    ]
+    headers = ["id", "state", "severity", "stream", "rule", "count", "opened", "value"]
+    click.echo(fit_table(headers, rows, cuttable=[3, 4]))
+    click.echo(f"{len(found)} alert(s).")
+    shelved = [str(a.id) for a in found if held[a.id] is not None]
+    if shelved:
+        click.echo(
+            _wrap(f"Notifications held by a shelf for: {', '.join(shelved)} (see 'streams').")
+        )
+
+
+@main.command("ack")
+@click.argument("alert_id", type=int)
+@click.option("--note", help="What you are doing about it, kept in the alert's log.")
+@click.option("--by", help="Who acknowledges  [default: your login name].")
+@_db_options
+def ack_cmd(
+    alert_id: int,
+    note: str | None,
+    by: str | None,
+    db_path: str | None,
+    config_file: str | None,
+) -> None:
+    """Acknowledge alert ALERT_ID: you have seen it and are acting on it.
+
+    Reminders and escalation for the alert stop; it still clears by itself once its stream is
+    quiet. An unknown, already acknowledged or cleared alert is an error (exit status 1).
+
+    \b
+    Example:
+      limitwatch ack 42 --note "checking the sealing jaw on line 2"
+    """
+    now = clock()
+    actor = _actor(by)
+    note = note.strip() if note and note.strip() else None
+    with opened(db_path, config_file, write=True, now=now) as store:
+        alert = store.acknowledge(alert_id, by=actor, note=note, now=now)
+    click.echo(
+        _wrap(
+            f"Acknowledged alert {alert.id} ({alert.stream}, {alert.rule}) as {actor} at "
+            f"{iso_s(now)}; reminders and escalation for it stop."
+        )
+    )
+
+
+def event_record(event: AlertEvent) -> dict[str, Any]:
+    """The JSON object for one event (``limitwatch log --format json``)."""
+    return {
+        "time": iso(event.time),
+        "kind": event.kind,
+        "actor": event.actor,
+        "note": event.note,
+        "data": event.data,
+    }
+
+
+@main.command("log")
+@click.argument("alert_id", type=int)
+@click.option(
+    "--format",
+    "fmt",
+    type=FORMATS,
+    default="table",
+    show_default=True,
+    help="A table for people, or JSON for scripts.",
+)
+@_db_options
+def log_cmd(alert_id: int, fmt: str, db_path: str | None, config_file: str | None) -> None:
+    """Show the history of alert ALERT_ID, oldest first: when it opened, every notification,
+    reminder, escalation, shelf and acknowledgement (with who and why), and when it cleared.
+
+    With --format json the output is an object with the keys alert (as in 'limitwatch alerts')
+    and events, a list of objects with the keys time, kind, actor, note and data.
+
+    \b
+    Example:
+      limitwatch log 42
+    """
+    now = clock()
+    with opened(db_path, config_file, now=now) as store:
+        alert = store.alert(alert_id)
+        events = store.alert_events(alert_id)
+        held = _held_until(alert, store.active_shelves(now), now)
+    if fmt == "json":
+        _emit_json(
+            {"alert": alert_record(alert, held), "events": [event_record(e) for e in events]}
+        )
+        return
+    click.echo(
+        _wrap(
+            f"Alert {alert.id}: {alert.stream}, {alert.rule}, {alert.severity}, now "
+            f"{alert.state}; {alert.signal_count} signal(s), last reading "
+            f"{_g(alert.last_value)} at {iso_s(alert.last_time)}."
+        )
+    )
+    click.echo(_wrap(rule_words(alert.rule), "  "))
+    click.echo()
+    click.echo(_event_table(events))
+
+
+def _event_table(events: Sequence[AlertEvent]) -> str:
+    """Events with their notes wrapped onto continuation rows, so nothing is cut off."""
+    headers = ["time (UTC)", "event", "by", "note"]
+    fixed = [
+        max(len(headers[0]), 20),
+        max([len(headers[1])] + [len(e.kind) for e in events]),
+        min(20, max([len(headers[2])] + [len(e.actor) for e in events])),
+    ]
+    room = max(24, WIDTH - sum(fixed) - 2 * len(fixed))
+    rows: list[list[str]] = []
+    for e in events:
+        lines = textwrap.wrap(e.note or "", room, break_on_hyphens=False) or [""]
+        rows.append([iso_s(e.time), e.kind, _cut(e.actor, fixed[2]), lines[0]])
+        rows.extend(["", "", "", more] for more in lines[1:])
+    return fit_table(headers, rows, cuttable=[2])
+
+
+# -- shelves -----------------------------------------------------------------------------------
+
+
+_rule_option = click.option(
+    "--rule",
+    type=click.Choice(RULE_IDS),
+    metavar="RULE",
+    help="Only this rule of the stream  [default: every rule]. Rule ids: "
+    + ", ".join(RULE_IDS)
+    + ".",
+)
+
+
+@main.command("shelve")
+@click.argument("stream")
+@_rule_option
+@click.option(
+    "--for",
+    "duration",
+    required=True,
+    type=_Duration(),
+    help="How long to hold notifications, e.g. 90m, 8h, 2d or 1h30m.",
+)
+@click.option("--reason", required=True, help="Why, for the audit trail.")
+@click.option("--by", help="Who shelves  [default: your login name].")
+@_db_options
+def shelve_cmd(
+    stream: str,
+    rule: str | None,
+    duration: float,
+    reason: str,
+    by: str | None,
+    db_path: str | None,
+    config_file: str | None,
+) -> None:
+    """Hold notifications for STREAM (or one rule of it) for a while, e.g. during planned
+    maintenance.
+
+    Alerts are still opened, counted and cleared, and their logs say that a shelf held their
+    notifications; when the shelf ends, anything still owed is sent once. The shelf ends by
+    itself; 'limitwatch unshelve' ends it early.
+
+    \b
+    Example:
+      limitwatch shelve pack-2/downtime --for 8h --reason "sealing jaw replacement"
+    """
+    now = clock()
+    actor = _actor(by)
+    with opened(db_path, config_file, write=True, now=now) as store:
+        if _stream_row(store, stream) is None:
+            raise _unknown_stream(stream)
+        shelf = store.shelve(stream, rule, until=now + duration, reason=reason, by=actor, now=now)
+        covered = [a.id for a in store.live_alerts([stream]) if shelf.covers(stream, a.rule)]
+    what = "every rule" if rule is None else f"rule {rule}"
+    click.echo(
+        _wrap(
+            f"Shelved notifications for {stream} ({what}) until {iso_s(shelf.until)} "
+            f"({format_duration(duration)} from now), by {actor}: {reason}"
+        )
+    )
+    if covered:
+        click.echo(f"Live alerts covered: {', '.join(map(str, covered))}.")
+    click.echo(_wrap(f"Alerts are still recorded while shelved. {SAFETY_CAUTION}"))
+
+
+@main.command("unshelve")
+@click.argument("stream")
+@_rule_option
+@click.option("--by", help="Who ends the shelf  [default: your login name].")
+@_db_options
+def unshelve_cmd(
+    stream: str,
+    rule: str | None,
+    by: str | None,
+    db_path: str | None,
+    config_file: str | None,
+) -> None:
+    """End the shelves of STREAM now, so its notifications flow again.
+
+    Without --rule every shelf of the stream ends (those for single rules too); with --rule only
+    the shelves for that rule. Notifications a shelf held are sent once if still owed.
+
+    \b
+    Example:
+      limitwatch unshelve pack-2/downtime
+    """
+    now = clock()
+    actor = _actor(by)
+    with opened(db_path, config_file, write=True, now=now) as store:
+        try:
+            ended = store.unshelve(stream, rule, by=actor, now=now)
+        except NotShelved as exc:
+            raise InputProblem(f"{exc} ('limitwatch streams' shows the shelves in force)") from None
+    for shelf in ended:
+        what = "every rule" if shelf.rule is None else f"rule {shelf.rule}"
+        click.echo(
+            _wrap(
+                f"Ended the shelf on {stream} ({what}) set by {shelf.shelved_by} "
+                f"({shelf.reason}); it had {span_text(shelf.until - now)} left."
+            )
+        )
+
+
+# -- streams -------------------------------------------------------------------------------------
+
+
+def limits_of(numbers: dict[str, Any]) -> Limits | None:
+    """The stored baseline's numbers as a :class:`~limitwatch.stats.baseline.Baseline`: the full
+    fit when stored whole (``Baseline.to_dict()``), else from its center and sigma, else None."""
+    try:
+        return Limits.from_dict(numbers)
+    except (BaselineError, KeyError, TypeError, ValueError):
+        pass
+    try:
+        return Limits.from_limits(center=numbers["center"], sigma=numbers["sigma"])
+    except (BaselineError, KeyError, TypeError, ValueError):
+        return None
+
+
+def _zone(limits: Limits | None, value: float | None) -> str | None:
+    if limits is None or value is None or not math.isfinite(value):
+        return None
+    return limits.zone(value)
+
+
+def stream_record(
+    row: StreamRow,
+    current: StoredBaseline | None,
+    live: Sequence[Alert],
+    shelves: Sequence[Shelf],
+) -> dict[str, Any]:
+    """The JSON object for one stream (``limitwatch streams --format json``)."""
+    limits = limits_of(current.numbers) if current is not None else None
+    whole = [s.until for s in shelves if s.rule is None]
+    return {
+        "stream": row.id,
+        "last_value": row.last_value,
+        "last_time": iso(row.last_time),
+        "zone": _zone(limits, row.last_value),
+        "phase": row.phase,
+        "baseline_version": None if current is None else current.version,
+        "center": None if limits is None else limits.center,
+        "lcl": None if limits is None else limits.lcl,
+        "ucl": None if limits is None else limits.ucl,
+        "open_alerts": sum(a.state == "open" for a in live),
+        "acknowledged_alerts": sum(a.state == "acknowledged" for a in live),
+        "shelved_until": iso(max(whole)) if whole else None,
+        "shelves": [
+            {"rule": s.rule, "until": iso(s.until), "reason": s.reason, "by": s.shelved_by}
+            for s in shelves
+        ],
+    }
+
+
+def _shelf_cell(shelves: Sequence[Shelf], now: float) -> str:
+    if not shelves:
+        return "-"
+    until = max(s.until for s in shelves)
+    rules = {s.rule for s in shelves}
+    if None in rules:
+        return f"all {span_text(until - now)}"
+    label = "1 rule" if len(rules) == 1 else f"{len(rules)} rules"
+    return f"{label} {span_text(until - now)}"
+
+
+@main.command("streams")
+@click.option(
+    "--stream",
+    "stream_glob",
+    metavar="GLOB",
+    help="Only streams whose id matches GLOB (shell-style, case-sensitive), e.g. 'oven-*'.",
+)
+@click.option(
+    "--format",
+    "fmt",
+    type=FORMATS,
+    default="table",
+    show_default=True,
+    help="A table for people, or JSON for scripts.",
+)
+@_db_options
+def streams_cmd(
+    stream_glob: str | None, fmt: str, db_path: str | None, config_file: str | None
+) -> None:
+    """List the streams with their last reading, where it falls against the current baseline,
+    and their alerts and shelves.
+
+    In the table, 'zone' is the last reading's place against the current baseline (zone-c is
+    within one sigma of the center line, zone-b within two, zone-a within three; above-ucl and
+    below-lcl are beyond the limits), 'open' counts unacknowledged open alerts and 'shelved'
+    what is shelved (all rules or which) and for how much longer. With --format json the
+    output is a list of objects with the keys stream, last_value, last_time, zone, phase,
+    baseline_version, center, lcl, ucl, open_alerts, acknowledged_alerts, shelved_until (a
+    shelf of every rule) and shelves (each with rule, until, reason, by).
+
+    \b
+    Examples:
+      limitwatch streams
+      limitwatch streams --stream 'pack-*' --format json
+    """
+    now = clock()
+    with opened(db_path, config_file, now=now) as store:
+        rows = store.streams(glob=stream_glob)
+        live = store.live_alerts([r.id for r in rows])
+        shelves = store.active_shelves(now)
+        current = {r.id: store.current_baseline(r.id) for r in rows}
+    by_stream: dict[str, list[Alert]] = {}
+    for alert in live:
+        by_stream.setdefault(alert.stream, []).append(alert)
+    shelves_of: dict[str, list[Shelf]] = {}
+    for shelf in shelves:
+        shelves_of.setdefault(shelf.stream, []).append(shelf)
+    records = [
+        stream_record(r, current[r.id], by_stream.get(r.id, []), shelves_of.get(r.id, []))
+        for r in rows
+    ]
+    if fmt == "json":
+        _emit_json(records)
+        return
+    if not records:
+        where = f" matching {stream_glob!r}" if stream_glob else ""
+        click.echo(f"No streams{where} have reported to this database yet.")
+        return
+    table_rows = [
+        [
+            rec["stream"],
+            _g(rec["last_value"]),
+            rec["zone"] or "-",
+            rec["phase"] or "-",
+            "-" if rec["baseline_version"] is None else f"v{rec['baseline_version']}",
+            str(rec["open_alerts"]),
+            _shelf_cell(shelves_of.get(rec["stream"], []), now),
+        ]
+        for rec in records
+    ]
+    headers = ["stream", "last", "zone", "phase", "baseline", "open", "shelved"]
+    click.echo(fit_table(headers, table_rows, cuttable=[0, 6]))
+
+
+# -- baselines -----------------------------------------------------------------------------------
+
+
+def baseline_record(stored: StoredBaseline) -> dict[str, Any]:
+    """The JSON object for one stored baseline version, provenance first."""
+    return {
+        "stream": stored.stream,
+        "version": stored.version,
+        "created_at": iso(stored.created_at),
+        "created_by": stored.created_by,
+        "reason": stored.reason,
+        "method": stored.method,
+        "first_index": stored.first_index,
+        "last_index": stored.last_index,
+        "first_time": iso(stored.first_time),
+        "last_time": iso(stored.last_time),
+        "excluded": list(stored.excluded),
+        "numbers": stored.numbers,
+    }
+
+
+def _baseline_lines(stored: StoredBaseline) -> list[str]:
+    """One stored version for people: who, why, from which readings, and its limits."""
+    lines = [f"Baseline version {stored.version} of {stored.stream}"]
+
+    def add(label: str, text: str) -> None:
+        lines.extend(
+            textwrap.wrap(
+                text,
+                WIDTH,
+                initial_indent=f"  {label:<14}",
+                subsequent_indent=" " * 16,
+                break_on_hyphens=False,
+            )
+            or [f"  {label}"]
+        )
+
+    add("created", f"{iso_s(stored.created_at)} by {stored.created_by}")
+    add("reason", stored.reason)
+    method = {"mean": "average moving range", "median": "median moving range"}
+    add("method", f"sigma from the {method.get(stored.method, stored.method)}")
+    if stored.first_index is not None or stored.first_time is not None:
+        span = f"index {_idx(stored.first_index)} to {_idx(stored.last_index)}"
+        add("readings", f"{span}, {iso_s(stored.first_time)} to {iso_s(stored.last_time)}")
+    add("excluded", ", ".join(map(str, stored.excluded)) or "none")
+    limits = limits_of(stored.numbers)
+    if limits is None:
+        add("numbers", json.dumps(stored.numbers))
+        return lines
+    if limits.n:
+        add("used", f"{limits.n_used} of {limits.n} readings")
+    add("center line", _g(limits.center))
+    add("sigma", _g(limits.sigma))
+    add("limits", f"LCL {_limit(limits.lcl, limits.lower_bound)}, UCL {_limit(limits.ucl, None)}")
+    add("MR limit", _g(limits.mr_ucl))
+    for warning in limits.warnings:
+        add("warning", warning)
+    return lines
+
+
+def _index_of(index: int | None, position: int, indexed: bool) -> int:
+    """Exclusions are recorded as stream indices (as the service records them), or as positions
+    in the window when some stored reading lacks an index."""
+    return int(index) if indexed and index is not None else position
+
+
+def _idx(i: int | None) -> str:
+    return "?" if i is None else str(i)
+
+
+def _limit(value: float | None, bound: float | None) -> str:
+    if value is not None:
+        return _g(value)
+    return "none (beyond the natural bound)" if bound is not None else "none"
+
+
+def _no_baseline(store: Store, stream: str) -> InputProblem:
+    if _stream_row(store, stream) is None:
+        return _unknown_stream(stream)
+    return InputProblem(
+        f"stream {stream!r} has no stored baseline yet (it may still be learning); "
+        "'limitwatch baseline refit' can fit one from its stored readings"
+    )
+
+
+@baseline.command("show")
+@click.argument("stream")
+@click.option(
+    "--format",
+    "fmt",
+    type=FORMATS,
+    default="table",
+    show_default=True,
+    help="Text for people, or JSON for scripts.",
+)
+@_db_options
+def baseline_show(stream: str, fmt: str, db_path: str | None, config_file: str | None) -> None:
+    """Show the current baseline of STREAM: its limits and where they came from.
+
+    With --format json the output is an object with the keys stream, version, created_at,
+    created_by, reason, method, first_index, last_index, first_time, last_time, excluded
+    (stream indices left out of the fit) and numbers (the fitted values).
+
+    \b
+    Example:
+      limitwatch baseline show oven-1/energy
+    """
+    now = clock()
+    with opened(db_path, config_file, now=now) as store:
+        current = store.current_baseline(stream)
+        if current is None:
+            raise _no_baseline(store, stream)
+    if fmt == "json":
+        _emit_json(baseline_record(current))
+        return
+    click.echo("\n".join(_baseline_lines(current)))
+
+
+@baseline.command("history")
+@click.argument("stream")
+@click.option(
+    "--format",
+    "fmt",
+    type=FORMATS,
+    default="table",
+    show_default=True,
+    help="Text for people, or JSON (a list, oldest version first) for scripts.",
+)
+@_db_options
+def baseline_history(stream: str, fmt: str, db_path: str | None, config_file: str | None) -> None:
+    """List every baseline version of STREAM, oldest first, each with who made it, why, from
+    which readings, what was left out, and its limits.
+
+    \b
+    Example:
+      limitwatch baseline history pack-2/downtime
+    """
+    now = clock()
+    with opened(db_path, config_file, now=now) as store:
+        versions = store.baseline_history(stream)
+        if not versions:
+            raise _no_baseline(store, stream)
+    if fmt == "json":
+        _emit_json([baseline_record(v) for v in versions])
+        return
+    click.echo("\n\n".join("\n".join(_baseline_lines(v)) for v in versions))
+
+
+@baseline.command("refit")
+@click.argument("stream")
+@click.option("--reason", required=True, help="Why the limits change, for the audit trail.")
+@click.option(
+    "--last",
+    type=click.IntRange(2),
+    metavar="N",
+    help="Fit from the newest N stored readings  [default: every stored reading].",
+)
+@click.option(
+    "--method",
+    type=click.Choice(["mean", "median"]),
+    default="mean",
+    show_default=True,
+    help="Sigma from the average moving range, or from the median moving range.",
+)
+@click.option(
+    "--exclude-beyond",
+    is_flag=True,
+    help="Leave out readings beyond the limits (and moving ranges beyond the MR limit), refit, "
+    "and repeat; the excluded readings are recorded.",
+)
+@click.option(
+    "--min-points",
+    type=click.IntRange(2),
+    default=10,
+    show_default=True,
+    help="Refuse to fit from fewer readings than this (after exclusions).",
+)
+@click.option("--by", help="Who refits  [default: your login name].")
+@_db_options
+def baseline_refit(
+    stream: str,
+    reason: str,
+    last: int | None,
+    method: str,
+    exclude_beyond: bool,
+    min_points: int,
+    by: str | None,
+    db_path: str | None,
+    config_file: str | None,
+) -> None:
+    """Fit new limits for STREAM from its stored readings and store them as its next baseline
+    version, with who, why, which readings and which exclusions.
+
+    Refit after a confirmed, lasting change (a new part, a new recipe), from readings taken
+    since the change: limits fitted across the change mix two processes. Natural bounds of the
+    current baseline (e.g. 0 for downtime) carry over.
+
+    \b
+    Example:
+      limitwatch baseline refit pack-2/downtime --last 30 --reason "new sealing jaw fitted"
+    """
+    now = clock()
+    actor = _actor(by)
+    if not reason.strip():
+        raise click.BadParameter("must say why", param_hint="--reason")
+    with opened(db_path, config_file, write=True, now=now) as store:
+        readings = store.recent_readings(stream, last=last)
+        if not readings:
+            if _stream_row(store, stream) is None:
+                raise _unknown_stream(stream)
+            raise InputProblem(f"stream {stream!r} has no stored readings to fit from")
+        previous = store.current_baseline(stream)
+        before = limits_of(previous.numbers) if previous is not None else None
+        try:
+            fitted = fit_baseline(
+                [r.value for r in readings],
+                method=method,  # type: ignore[arg-type]
+                exclude_beyond=exclude_beyond,
+                min_points=min_points,
+                lower_bound=None if before is None else before.lower_bound,
+                upper_bound=None if before is None else before.upper_bound,
+            )
+        except BaselineError as exc:
+            raise InputProblem(f"cannot refit {stream}: {exc}") from None
+        indexed = all(r.index is not None for r in readings)
+        excluded = [_index_of(readings[p].index, p, indexed) for p in fitted.excluded]
+        stored = store.add_baseline(
+            stream,
+            fitted.to_dict(),
+            now=now,
+            by=actor,
+            reason=reason.strip(),
+            method=method,
+            first_index=readings[0].index,
+            last_index=readings[-1].index,
+            first_time=readings[0].time,
+            last_time=readings[-1].time,
+            excluded=excluded,
+        )
+    click.echo("\n".join(_baseline_lines(stored)))
+    if previous is not None:
+        click.echo(f"Replaces version {previous.version}, which stays in the history.")
