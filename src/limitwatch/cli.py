@@ -7,7 +7,6 @@ and exits with status 1; option mistakes exit with status 2 (click's convention)
 from __future__ import annotations
 
 import json
-import sys
 from typing import Any
 
 import click
@@ -89,7 +88,7 @@ def _rows(file: str, value: str, time: str | None = None, stream: str | None = N
     try:
         return list(read_rows(file, value=value, time=time, stream=stream))
     except InputFileError as exc:
-        raise InputProblem(f"error: {exc}") from None
+        raise InputProblem(str(exc)) from None
 
 
 # -- baseline ---------------------------------------------------------------------------------
@@ -145,7 +144,7 @@ def baseline_fit(
             spec_upper=spec_upper,
         )
     except (BaselineError, ValueError) as exc:
-        raise InputProblem(f"error: {file}: {exc}") from None
+        raise InputProblem(f"{file}: {exc}") from None
     if fmt == "json":
         click.echo(json.dumps(fitted.to_dict(), indent=2))
         return
@@ -336,9 +335,5 @@ def _print_signals(signals: list[dict[str, Any]], file: str, refused: int) -> No
     click.echo(f"{len(signals)} signal(s); {refused} reading(s) refused.")
 
 
-def run() -> None:  # pragma: no cover - console entry alias
-    main()
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+# Command groups kept in their own modules register themselves on ``main`` when imported.
+from limitwatch import cli_config, cli_operator, cli_service  # noqa: E402,F401

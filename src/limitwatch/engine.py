@@ -140,6 +140,15 @@ class StreamMonitor:
             self.set_baseline(baseline, version=baseline_version)
 
     @property
+    def last_time(self) -> float | None:
+        """Time of the last accepted reading (for stale-stream checks)."""
+        return self._last_time
+
+    @property
+    def last_value(self) -> float | None:
+        return self._last_value
+
+    @property
     def phase(self) -> Phase:
         return "learning" if self.baseline is None else "monitoring"
 

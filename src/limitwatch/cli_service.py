@@ -1,0 +1,58 @@
+"""``limitwatch serve``: the always-on service."""
+
+from __future__ import annotations
+
+import logging
+import sys
+
+import click
+
+from limitwatch import SAFETY_CAUTION
+from limitwatch.cli import InputProblem, main
+from limitwatch.config import ConfigError, check_secrets, load_config
+
+
+@main.command("serve")
+@click.option(
+    "--config",
+    "config_path",
+    required=True,
+    type=click.Path(dir_okay=False),
+    help="The TOML config file (see config/example.toml).",
+)
+@click.option(
+    "--log-level",
+    type=click.Choice(["debug", "info", "warning", "error"]),
+    default="info",
+    show_default=True,
+    help="How much to log on standard error.",
+)
+def serve_cmd(config_path: str, log_level: str) -> None:
+    """Run the monitoring service until SIGTERM or SIGINT.
+
+    Readings from the configured MQTT topics and files are evaluated as they arrive; alerts go
+    to the configured notifiers. On SIGTERM the batch in hand is committed and acknowledged,
+    then the service disconnects and exits 0.
+
+    \b
+    Example:
+      limitwatch serve --config /etc/limitwatch/site.toml
+    """
+    logging.basicConfig(
+        level=getattr(logging, log_level.upper()),
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        stream=sys.stderr,
+    )
+    try:
+        config = load_config(config_path)
+        problems = check_secrets(config)
+        if problems:
+            raise ConfigError(config_path, problems)
+    except ConfigError as exc:
+        raise InputProblem(str(exc)) from None
+    except ValueError as exc:
+        raise InputProblem(f"{config_path}: {exc}") from None
+    from limitwatch.service import serve
+
+    logging.getLogger("limitwatch").info(SAFETY_CAUTION)
+    sys.exit(serve(config))

@@ -1,0 +1,162 @@
+"""Tailing CSV and JSON-lines files that controllers and historians export.
+
+A file is known by its identity (device and inode), not its name, so a rotated file (renamed,
+with a new one created under the old name) is finished from where we stopped and the new one is
+read from its start. A file that shrinks below our offset was truncated in place and is read
+again from its start. Only complete lines (ending in a newline) are read: a partial last line
+waits for the writer to finish it.
+
+The caller commits the byte offset of the last line it used in the same transaction as the
+state that line produced; after a crash, reading resumes at exactly the next line.
+"""
+
+from __future__ import annotations
+
+import csv
+import glob
+import json
+import logging
+import os
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any, Literal
+
+log = logging.getLogger("limitwatch.files")
+
+MAX_READ = 4 * 1024 * 1024
+"""Bytes read per file per poll; the rest waits for the next poll, keeping batches bounded."""
+
+
+@dataclass(frozen=True, slots=True)
+class FileLine:
+    source: str
+    path: str
+    file_id: str
+    end_offset: int
+    """Byte offset just after this line: the offset to commit once it is used."""
+    record: dict[str, Any] | None
+    """The parsed row (CSV row as a dict by header, or a JSON object). None with no ``error``
+    for a line that only moves the offset on (a CSV header, a blank line)."""
+    raw: bytes
+    error: str | None = None
+    """Why a line could not be read as a row; it becomes a dead letter."""
+
+
+def file_identity(stat: os.stat_result) -> str:
+    return f"{stat.st_dev}:{stat.st_ino}"
+
+
+class FileSource:
+    """Finds new complete lines in the files matching a glob."""
+
+    def __init__(
+        self,
+        name: str,
+        pattern: str,
+        fmt: Literal["csv", "jsonl"],
+        start_at: Literal["beginning", "end"] = "beginning",
+    ) -> None:
+        self.name = name
+        self.pattern = pattern
+        self.format = fmt
+        self.start_at = start_at
+        self._first_poll = True
+
+    def poll(self, offsets: dict[str, int]) -> Iterator[FileLine]:
+        """Yield new complete lines of every matching file, oldest file first.
+
+        ``offsets`` maps file identity to the committed byte offset; it is read, never written
+        here (the caller updates it after committing).
+        """
+        first = self._first_poll
+        self._first_poll = False
+        paths = sorted(glob.glob(self.pattern), key=_mtime_then_name)
+        for path in paths:
+            try:
+                stat = os.stat(path)
+            except FileNotFoundError:
+                continue
+            if not os.path.isfile(path):
+                continue
+            ident = file_identity(stat)
+            offset = offsets.get(ident)
+            if offset is None and first and self.start_at == "end":
+                offsets[ident] = stat.st_size  # caller persists with the next commit
+                continue
+            offset = offset or 0
+            if stat.st_size < offset:
+                log.warning(
+                    "file %s shrank from %d to %d bytes: truncated in place, reading it again "
+                    "from the start",
+                    path,
+                    offset,
+                    stat.st_size,
+                )
+                offset = 0
+            if stat.st_size == offset:
+                continue
+            yield from self._read(path, ident, offset)
+
+    def _read(self, path: str, ident: str, offset: int) -> Iterator[FileLine]:
+        try:
+            with open(path, "rb") as handle:
+                header = self._header(handle) if self.format == "csv" else None
+                if header is not None and offset == 0:
+                    offset = handle.tell()
+                    yield FileLine(self.name, path, ident, offset, None, b"")
+                handle.seek(offset)
+                data = handle.read(MAX_READ)
+        except OSError as exc:
+            log.warning("file %s could not be read: %s", path, exc)
+            return
+        end = data.rfind(b"\n")
+        if end < 0:
+            return  # a partial line: wait for its newline
+        position = offset
+        for raw in data[: end + 1].splitlines(keepends=True):
+            position += len(raw)
+            text = raw.strip()
+            if not text:
+                yield FileLine(self.name, path, ident, position, None, raw)
+                continue
+            record, error = self._parse(text, header)
+            yield FileLine(self.name, path, ident, position, record, raw, error)
+
+    def _header(self, handle: Any) -> list[str] | None:
+        first = handle.readline()
+        if not first.endswith(b"\n"):
+            return None
+        try:
+            return [h.strip() for h in next(csv.reader([first.decode("utf-8-sig")]))]
+        except (UnicodeDecodeError, StopIteration, csv.Error):
+            return None
+
+    def _parse(self, text: bytes, header: list[str] | None) -> tuple[dict | None, str | None]:
+        try:
+            line = text.decode("utf-8")
+        except UnicodeDecodeError:
+            return None, "not UTF-8 text"
+        if self.format == "jsonl":
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError as exc:
+                return None, f"not JSON: {exc.msg}"
+            if not isinstance(record, dict):
+                return None, "a JSON line must be an object"
+            return record, None
+        if header is None:
+            return None, "the file has no complete header line"
+        try:
+            cells = next(csv.reader([line]))
+        except (csv.Error, StopIteration) as exc:
+            return None, f"not CSV: {exc}"
+        if len(cells) != len(header):
+            return None, f"expected {len(header)} columns, found {len(cells)}"
+        return dict(zip(header, (c.strip() for c in cells), strict=True)), None
+
+
+def _mtime_then_name(path: str) -> tuple[float, str]:
+    try:
+        return (os.stat(path).st_mtime, path)
+    except OSError:
+        return (0.0, path)

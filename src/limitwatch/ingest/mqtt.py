@@ -1,0 +1,229 @@
+"""MQTT intake with at-least-once delivery and acknowledgement after commit.
+
+The paho-mqtt network thread only ever puts a :class:`Delivery` on the service's intake queue;
+all parsing, evaluation and database work happens in the service's single worker, which calls
+:meth:`MqttSource.ack` for each delivery, in arrival order, once the transaction holding its
+effect has committed. With a fixed client id, QoS 1 and a persistent session the broker keeps
+everything not yet acknowledged -- across our crashes and its restarts -- and sends it again.
+
+Why each setting (paho-mqtt 2.x):
+
+* ``CallbackAPIVersion.VERSION2`` -- the supported callback signatures.
+* ``manual_ack=True`` -- paho would otherwise acknowledge on receipt, before anything is stored.
+* MQTT 5: ``clean_start=False`` with a ``SessionExpiryInterval``; 3.1.1: ``clean_session=False``.
+* Subscribing in ``on_connect`` -- subscriptions return after every reconnect, even if the
+  broker lost the session.
+* ``connect_async`` + ``loop_start`` + ``reconnect_delay_set`` -- paho's own reconnect with
+  backoff; no second reconnect loop on top.
+* ``ReceiveMaximum`` (MQTT 5) -- how many unacknowledged messages the broker may have in flight
+  to us; it bounds the intake queue, so nothing needs to be dropped when we fall behind.
+* A last will of ``offline`` and a retained ``online`` on connect on the status topic.
+"""
+
+from __future__ import annotations
+
+import logging
+import queue
+import ssl
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import paho.mqtt.client as mqtt
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+
+log = logging.getLogger("limitwatch.mqtt")
+
+
+@dataclass(frozen=True, slots=True)
+class Delivery:
+    """One message as received; ``mid`` is only good for acknowledging it (packet ids are
+    reused, so they are never a deduplication key)."""
+
+    source: str
+    topic: str
+    payload: bytes
+    received_at: float
+    mid: int
+    qos: int
+    retained: bool
+
+
+@dataclass(frozen=True)
+class MqttSettings:
+    """The connection part of an MQTT source; built from the config's source section."""
+
+    name: str
+    host: str
+    port: int
+    client_id: str
+    topics: tuple[tuple[str, int], ...]
+    """(topic filter, QoS) pairs."""
+    protocol: str = "5"
+    keepalive_s: int = 30
+    session_expiry_s: int = 86_400
+    receive_maximum: int = 1000
+    username: str | None = None
+    password: str | None = None
+    tls: bool = False
+    """TLS on; without ``ca_file`` the system's certificate authorities are trusted."""
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+    status_topic: str | None = None
+    reconnect_min_s: float = 1.0
+    reconnect_max_s: float = 60.0
+
+
+class MqttSource:
+    """One broker connection feeding ``intake``."""
+
+    def __init__(
+        self,
+        settings: MqttSettings,
+        intake: queue.Queue[Any],
+        clock: Callable[[], float] = time.time,
+    ) -> None:
+        self.settings = settings
+        self.name = settings.name
+        self._intake = intake
+        self._clock = clock
+        self.connected = threading.Event()
+        self.subscribed = threading.Event()
+        self.last_error: str | None = None
+        self.connects = 0
+        self._client = self._make_client()
+
+    # -- set-up -----------------------------------------------------------------------------------
+
+    def _make_client(self) -> mqtt.Client:
+        s = self.settings
+        v5 = s.protocol == "5"
+        client = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2,
+            client_id=s.client_id,
+            protocol=mqtt.MQTTv5 if v5 else mqtt.MQTTv311,
+            clean_session=None if v5 else False,
+            manual_ack=True,
+        )
+        if s.username is not None:
+            client.username_pw_set(s.username, s.password)
+        if s.tls or s.ca_file is not None:
+            client.tls_set(
+                ca_certs=s.ca_file,
+                certfile=s.cert_file,
+                keyfile=s.key_file,
+                cert_reqs=ssl.CERT_REQUIRED,
+            )
+        if s.status_topic:
+            client.will_set(s.status_topic, "offline", qos=1, retain=True)
+        client.reconnect_delay_set(min_delay=s.reconnect_min_s, max_delay=s.reconnect_max_s)
+        client.on_connect = self._on_connect
+        client.on_disconnect = self._on_disconnect
+        client.on_message = self._on_message
+        client.on_subscribe = self._on_subscribe
+        client.on_connect_fail = self._on_connect_fail
+        return client
+
+    def start(self) -> None:
+        s = self.settings
+        if s.protocol == "5":
+            props = Properties(PacketTypes.CONNECT)
+            props.SessionExpiryInterval = s.session_expiry_s
+            props.ReceiveMaximum = s.receive_maximum
+            self._client.connect_async(
+                s.host, s.port, keepalive=s.keepalive_s, clean_start=False, properties=props
+            )
+        else:
+            self._client.connect_async(s.host, s.port, keepalive=s.keepalive_s)
+        self._client.loop_start()
+
+    def close(self) -> None:
+        """Say ``offline`` (retained) and disconnect cleanly; unacknowledged messages stay with
+        the broker for our next session."""
+        s = self.settings
+        try:
+            if s.status_topic and self.connected.is_set():
+                info = self._client.publish(s.status_topic, "offline", qos=1, retain=True)
+                info.wait_for_publish(timeout=5)
+            self._client.disconnect()
+        except Exception:  # closing must not fail the shutdown
+            log.exception("mqtt %s: error while disconnecting", self.name)
+        finally:
+            self._client.loop_stop()
+
+    def ack(self, mid: int, qos: int) -> None:
+        """Acknowledge one delivery; called by the worker after its batch committed."""
+        if qos > 0:
+            self._client.ack(mid, qos)
+
+    # -- callbacks: never block, never raise ------------------------------------------------------
+
+    def _on_connect(self, client, userdata, flags, reason_code, properties) -> None:
+        try:
+            if reason_code.is_failure:
+                self.last_error = f"connection refused: {reason_code}"
+                log.error("mqtt %s: %s", self.name, self.last_error)
+                return
+            self.connects += 1
+            self.last_error = None
+            client.subscribe(list(self.settings.topics))
+            if self.settings.status_topic:
+                client.publish(self.settings.status_topic, "online", qos=1, retain=True)
+            self.connected.set()
+            log.info(
+                "mqtt %s: connected to %s:%s (session present: %s)",
+                self.name,
+                self.settings.host,
+                self.settings.port,
+                getattr(flags, "session_present", None),
+            )
+        except Exception:
+            log.exception("mqtt %s: error in on_connect", self.name)
+
+    def _on_subscribe(self, client, userdata, mid, reason_codes, properties) -> None:
+        try:
+            failed = [rc for rc in reason_codes if rc.is_failure]
+            if failed:
+                self.last_error = f"subscription refused: {failed}"
+                log.error("mqtt %s: %s", self.name, self.last_error)
+            else:
+                self.subscribed.set()
+        except Exception:
+            log.exception("mqtt %s: error in on_subscribe", self.name)
+
+    def _on_disconnect(self, client, userdata, flags, reason_code, properties) -> None:
+        try:
+            self.connected.clear()
+            self.subscribed.clear()
+            if reason_code != 0:
+                self.last_error = f"disconnected: {reason_code}"
+                log.warning("mqtt %s: %s; paho reconnects with backoff", self.name, reason_code)
+        except Exception:
+            log.exception("mqtt %s: error in on_disconnect", self.name)
+
+    def _on_connect_fail(self, client, userdata) -> None:
+        try:
+            self.last_error = "connection failed (network, TLS or broker down)"
+            log.warning("mqtt %s: %s", self.name, self.last_error)
+        except Exception:
+            log.exception("mqtt %s: error in on_connect_fail", self.name)
+
+    def _on_message(self, client, userdata, message) -> None:
+        try:
+            self._intake.put_nowait(
+                Delivery(
+                    source=self.name,
+                    topic=message.topic,
+                    payload=message.payload,
+                    received_at=self._clock(),
+                    mid=message.mid,
+                    qos=message.qos,
+                    retained=bool(message.retain),
+                )
+            )
+        except Exception:
+            log.exception("mqtt %s: could not queue a message on %s", self.name, message.topic)

@@ -1,0 +1,224 @@
+"""Evaluate a batch of readings and commit everything it caused in one transaction.
+
+The pipeline is the only writer of stream state. For a batch it runs each reading through its
+stream's :class:`~limitwatch.engine.StreamMonitor`, then in ONE SQLite transaction stores the
+accepted readings, the refused ones as dead letters, any baseline the learning phase fitted, the
+alert changes and the notifications they owe (outbox rows), the checkpoints of every stream the
+batch touched, and the file offsets of the lines it used. Only after that commit does the caller
+acknowledge the broker or move a file offset in memory.
+
+If the commit fails, the in-memory monitors are ahead of the database; the pipeline then refuses
+to go on (:class:`PipelineBroken`) and the service exits, so a restart resumes from the last
+committed checkpoint and the broker redelivers what was never acknowledged.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+
+from limitwatch.alerts.lifecycle import AlertBook
+from limitwatch.engine import MonitorSettings, StreamMonitor
+from limitwatch.model import Outcome, Reading, StreamSignal
+from limitwatch.stats.baseline import Baseline
+from limitwatch.store import Store
+
+log = logging.getLogger("limitwatch.pipeline")
+
+
+class PipelineBroken(RuntimeError):
+    """A commit failed after monitors moved on; only a restart from the checkpoints is safe."""
+
+
+@dataclass(frozen=True, slots=True)
+class Parsed:
+    """One intake item after payload parsing: a reading, or the reason it has none."""
+
+    source: str
+    raw: bytes
+    reading: Reading | None = None
+    error: str | None = None
+    detail: str = ""
+
+
+@dataclass
+class BatchResult:
+    outcomes: list[Outcome] = field(default_factory=list)
+    dead: list[tuple[str, str]] = field(default_factory=list)
+    """(source, reason) of each dead letter written."""
+    signals: list[StreamSignal] = field(default_factory=list)
+    opened: int = 0
+    queued: int = 0
+
+
+class Pipeline:
+    """Owns the monitors and the store connection; used from one thread only."""
+
+    def __init__(
+        self,
+        store: Store,
+        settings_for: Callable[[str], MonitorSettings],
+        book: AlertBook,
+        stored_baseline: Callable[[str], Baseline | None] | None = None,
+    ) -> None:
+        self.store = store
+        self.book = book
+        self._settings_for = settings_for
+        self._stored_baseline = stored_baseline or (lambda stream: None)
+        self.monitors: dict[str, StreamMonitor] = {}
+        self.broken = False
+
+    # -- state ---
+
+    def restore(self) -> int:
+        """Rebuild every monitor from its committed checkpoint; return how many."""
+        for stream, state in self.store.load_checkpoints().items():
+            self.monitors[stream] = StreamMonitor.restore(state, self._settings_for(stream))
+        return len(self.monitors)
+
+    def monitor(self, stream: str) -> StreamMonitor:
+        monitor = self.monitors.get(stream)
+        if monitor is None:
+            baseline = self._stored_baseline(stream)
+            monitor = StreamMonitor(stream, self._settings_for(stream), baseline=baseline)
+            self.monitors[stream] = monitor
+        return monitor
+
+    # -- the batch ---
+
+    def process(
+        self,
+        items: Iterable[Parsed],
+        now: float,
+        file_offsets: dict[str, dict[str, int]] | None = None,
+    ) -> BatchResult:
+        """Evaluate and commit; raise :class:`PipelineBroken` if the commit fails."""
+        if self.broken:
+            raise PipelineBroken("an earlier commit failed; restart the service")
+        result = BatchResult()
+        dead_rows: list[tuple[str, bytes, str]] = []
+        touched: dict[str, StreamMonitor] = {}
+        fitted: list[tuple[StreamMonitor, Outcome]] = []
+        for item in items:
+            if item.reading is None:
+                reason = item.error or "unreadable"
+                dead_rows.append((item.source, item.raw, _reason(reason, item.detail)))
+                result.dead.append((item.source, reason))
+                continue
+            monitor = self.monitor(item.reading.stream)
+            outcome = monitor.update(item.reading)
+            if not outcome.accepted:
+                reason = outcome.reason or "refused"
+                detail = f"stream {item.reading.stream!r} at {item.reading.time}"
+                dead_rows.append((item.source, item.raw, _reason(reason, detail)))
+                result.dead.append((item.source, reason))
+                continue
+            touched[monitor.stream] = monitor
+            result.outcomes.append(outcome)
+            result.signals.extend(outcome.signals)
+            if outcome.baseline_fitted:
+                fitted.append((monitor, outcome))
+        try:
+            with self.store.transaction():
+                self.store.add_readings(result.outcomes, now=now)
+                for source, raw, reason in dead_rows:
+                    self.store.add_dead_letter(source, raw, reason, now=now)
+                for monitor, outcome in fitted:
+                    self._record_learned(monitor, outcome, now)
+                report = self.book.apply(result.outcomes, now)
+                if touched:
+                    self.store.save_checkpoints(
+                        {s: m.snapshot() for s, m in touched.items()}, now=now
+                    )
+                for source, offsets in (file_offsets or {}).items():
+                    if offsets:
+                        self.store.save_file_offsets(source, offsets, now=now)
+        except Exception as exc:
+            self.broken = True
+            raise PipelineBroken(f"batch commit failed: {exc}") from exc
+        result.opened = report.opened
+        result.queued = report.queued
+        return result
+
+    def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:
+        baseline = monitor.baseline
+        assert baseline is not None and outcome.index is not None
+        first = outcome.index - baseline.n + 1
+        self.store.add_baseline(
+            monitor.stream,
+            baseline.to_dict(),
+            now=now,
+            by="limitwatch",
+            reason=f"learned from the stream's readings {first}..{outcome.index}",
+            method=baseline.method,
+            version=monitor.baseline_version,
+            first_index=first,
+            last_index=outcome.index,
+            last_time=outcome.reading.time,
+            excluded=[first + p for p in baseline.excluded],
+        )
+
+    # -- jobs the scheduler asks for ---
+
+    def adopt_new_baselines(self, now: float) -> list[str]:
+        """Apply baselines stored by someone else (``limitwatch baseline refit``): newer
+        versions replace the monitor's, and its run counts restart."""
+        changed = []
+        for stream, version in self.store.baseline_versions().items():
+            monitor = self.monitors.get(stream)
+            if monitor is None or version <= monitor.baseline_version:
+                continue
+            stored = self.store.current_baseline(stream)
+            if stored is None:
+                continue
+            monitor.set_baseline(Baseline.from_dict(stored.numbers), version=stored.version)
+            changed.append(stream)
+        if changed:
+            with self.store.transaction():
+                self.store.save_checkpoints(
+                    {s: self.monitors[s].snapshot() for s in changed}, now=now
+                )
+        return changed
+
+    def stale_signals(
+        self, now: float, cadence_for: Callable[[str], tuple[float | None, float]]
+    ) -> list[StreamSignal]:
+        """A ``stale`` signal for each monitored stream silent for longer than its expected
+        cadence times its multiple. ``cadence_for(stream)`` gives (cadence s or None, multiple)."""
+        out = []
+        for stream, monitor in self.monitors.items():
+            cadence, multiple = cadence_for(stream)
+            last = monitor.last_time
+            if cadence is None or last is None:
+                continue
+            silent = now - last
+            if silent <= cadence * multiple:
+                continue
+            b = monitor.baseline
+            out.append(
+                StreamSignal(
+                    stream=stream,
+                    rule="stale",
+                    chart="x",
+                    side=None,
+                    index=max(monitor.count - 1, 0),
+                    time=now,
+                    value=monitor.last_value if monitor.last_value is not None else float("nan"),
+                    involved=(),
+                    center=b.center if b else float("nan"),
+                    sigma=b.sigma if b else float("nan"),
+                    ucl=b.ucl if b else None,
+                    lcl=b.lcl if b else None,
+                    mr=None,
+                    mr_ucl=b.mr_ucl if b else float("nan"),
+                    baseline_version=monitor.baseline_version,
+                    statistic=silent,
+                    limit=cadence * multiple,
+                )
+            )
+        return out
+
+
+def _reason(code: str, detail: str) -> str:
+    return f"{code}: {detail}" if detail else code
