@@ -43,6 +43,8 @@ def serve_cmd(config_path: str, log_level: str) -> None:
         format="%(asctime)s %(levelname)s %(name)s: %(message)s",
         stream=sys.stderr,
     )
+    # APScheduler logs every job run at INFO; its warnings and errors are what matter here.
+    logging.getLogger("apscheduler").setLevel(max(logging.WARNING, logging.root.level))
     try:
         config = load_config(config_path)
         problems = check_secrets(config)

@@ -335,7 +335,8 @@ class Service:
         source = self.files[name]
         parser = self._row_parsers[name]
         committed = self._offsets[name]
-        pending: dict[str, int] = dict(committed)
+        before = dict(committed)
+        pending: dict[str, int] = dict(committed)  # the source may set offsets (start_at=end)
         batch: list[Parsed] = []
         advanced: dict[str, int] = {}
         used = 0
@@ -350,9 +351,10 @@ class Service:
                 self._commit(batch, {name: advanced})
                 committed.update(advanced)
                 batch, advanced = [], {}
-        # offsets that moved with no rows (a header, start_at=end) are committed too
-        extra = {k: v for k, v in pending.items() if committed.get(k) != v and k not in advanced}
-        advanced.update(extra)
+        # offsets the source itself moved (start_at=end skips a file's existing lines)
+        for ident, offset in pending.items():
+            if before.get(ident) != offset and ident not in advanced and ident not in committed:
+                advanced[ident] = offset
         if batch or advanced:
             used += len(batch)
             self._commit(batch, {name: advanced})
