@@ -293,3 +293,45 @@ def test_mqtt_311_persistent_session_keeps_readings_while_the_service_is_down(br
         wait_until(lambda: count(db, "readings") == 50, timeout=30, what="readings kept by broker")
     finally:
         assert svc.stop() == 0
+
+
+def test_metrics_and_health_endpoints(broker, tmp_path):
+    import urllib.request
+
+    from tests.broker import free_port
+
+    port = free_port()
+    config = mqtt_config(tmp_path, broker.port)
+    config.write_text(
+        config.read_text().replace(
+            'batch_wait = "50ms"', f'batch_wait = "50ms"\nmetrics_listen = "127.0.0.1:{port}"'
+        )
+    )
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: service_up(svc), what="connected")
+        messages, _ = reading_messages(["line-1/bearing-temp"], 25)
+        pub = Publisher(broker.port)
+        pub.send_all(messages)
+        pub.close()
+        wait_until(lambda: count(tmp_path / "service.db", "readings") == 25, what="readings")
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=5) as reply:
+            health = json.loads(reply.read())
+            assert reply.status == 200
+        assert health["status"] == "ok" and health["sources"] == {"gateway": True}
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as reply:
+            text = reply.read().decode()
+        assert 'limitwatch_readings_total{result="accepted"} 25.0' in text
+        assert "limitwatch_batch_seconds_bucket" in text
+        broker.stop()
+
+        def degraded() -> bool:
+            try:
+                urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=5)
+            except urllib.error.HTTPError as exc:
+                return exc.code == 503
+            return False
+
+        wait_until(degraded, what="health 503 while the broker is down")
+    finally:
+        assert svc.stop() == 0
