@@ -336,4 +336,11 @@ def _print_signals(signals: list[dict[str, Any]], file: str, refused: int) -> No
 
 
 # Command groups kept in their own modules register themselves on ``main`` when imported.
-from limitwatch import cli_config, cli_operator, cli_service  # noqa: E402,F401
+from limitwatch import (  # noqa: E402,F401
+    cli_charts,
+    cli_config,
+    cli_demo,
+    cli_operator,
+    cli_plan,
+    cli_service,
+)

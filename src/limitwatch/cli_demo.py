@@ -1,0 +1,317 @@
+"""``limitwatch demo``: the invented Quillmoor Works scenario through the real service path.
+
+The demo writes a config and a controller-style CSV export into one folder, starts the same
+:class:`~limitwatch.service.Service` that ``limitwatch serve`` runs (file source, SQLite, console
+notifier), and appends the plant's readings to the export a slice at a time so alerts arrive live.
+With ``--mqtt`` it starts a private Mosquitto on a free loopback port and publishes the readings
+with QoS 1 instead.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import socket
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Callable
+from importlib import resources
+from pathlib import Path
+
+import click
+
+from limitwatch import SAFETY_CAUTION
+from limitwatch.cli import main
+from limitwatch.demo import LEARN, PLANT, STREAMS, generate
+from limitwatch.ingest.timeparse import format_time
+
+DEMO_SEED = 3
+"""A seed whose quiet stretches happen to raise no false alarm, so the story stays readable.
+Real streams do raise some: `limitwatch plan` estimates how many for a rule set and cadence."""
+
+SLICES = 12
+
+
+def demo_config_text() -> str:
+    """The packaged demo config (identical to config/demo.toml in the source tree)."""
+    return resources.files("limitwatch").joinpath("demo.toml").read_text(encoding="utf-8")
+
+
+def _mqtt_config_text(port: int) -> str:
+    text = demo_config_text()
+    start = text.index("[[sources]]")
+    end = text.index("[[notifiers]]")
+    source = f"""[[sources]]
+type = "mqtt"
+name = "quillmoor-gateway"
+host = "127.0.0.1"
+port = {port}
+client_id = "limitwatch-demo"
+session_expiry = "1h"
+
+[[sources.topics]]
+filter = "quillmoor/+/+"
+stream = "{{2}}/{{3}}"
+payload = "json"
+value = "value"
+time = "time"
+time_format = "epoch_s"
+
+"""
+    return text[:start] + source + text[end:]
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def _start_broker(folder: Path) -> tuple[subprocess.Popen[bytes], int]:
+    exe = shutil.which("mosquitto") or (
+        "/usr/sbin/mosquitto" if Path("/usr/sbin/mosquitto").exists() else None
+    )
+    if exe is None:
+        raise click.ClickException(
+            "--mqtt needs Mosquitto on this machine (Debian/Ubuntu: apt-get install mosquitto)"
+        )
+    port = _free_port()
+    conf = folder / "mosquitto.conf"
+    import getpass
+
+    conf.write_text(
+        f"listener {port} 127.0.0.1\nallow_anonymous true\nuser {getpass.getuser()}\n"
+        "max_queued_messages 100000\n"
+    )
+    log = (folder / "mosquitto.log").open("ab")
+    broker = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=log)
+    log.close()
+    deadline = time.monotonic() + 10
+    while time.monotonic() < deadline:
+        try:
+            socket.create_connection(("127.0.0.1", port), timeout=0.2).close()
+            return broker, port
+        except OSError:
+            time.sleep(0.05)
+    broker.terminate()
+    raise click.ClickException(
+        f"the demo's Mosquitto did not start; see {folder / 'mosquitto.log'}"
+    )
+
+
+@main.command("demo")
+@click.option(
+    "--folder",
+    type=click.Path(file_okay=False),
+    default="limitwatch-demo",
+    show_default=True,
+    help="Where the demo writes its config, data and database (replaced if it exists).",
+)
+@click.option(
+    "--mqtt", "use_mqtt", is_flag=True, help="Feed the readings over a private Mosquitto."
+)
+@click.option(
+    "--pace",
+    type=click.FloatRange(0, 5),
+    default=0.4,
+    show_default=True,
+    help="Seconds between slices of readings (0: as fast as possible).",
+)
+def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
+    """Run an invented plant through the real service and watch alerts arrive.
+
+    Quillmoor Works (it does not exist) has three packaging lines reporting downtime per shift,
+    a compressor reporting its discharge temperature each minute, and an oven reporting energy
+    per batch. Each stream learns a baseline from its quiet stretch; then a sustained shift,
+    a slow drift, one wild reading and a sensor that stops reporting are injected.
+
+    \b
+    Example:
+      limitwatch demo
+      limitwatch demo --mqtt --folder /tmp/quillmoor
+    """
+    root = Path(folder).resolve()
+    if root.exists():
+        if not (root / "demo.toml").exists():
+            raise click.ClickException(
+                f"{root} exists and is not a limitwatch demo folder; choose another --folder"
+            )
+        shutil.rmtree(root)
+    (root / "data").mkdir(parents=True)
+    broker = None
+    if use_mqtt:
+        broker, port = _start_broker(root)
+        (root / "demo.toml").write_text(_mqtt_config_text(port))
+    else:
+        (root / "demo.toml").write_text(demo_config_text())
+    try:
+        run_demo(root, use_mqtt=use_mqtt, pace=pace, echo=click.echo)
+    finally:
+        if broker is not None:
+            broker.terminate()
+            broker.wait(timeout=10)
+
+
+def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], None]) -> None:
+    from limitwatch.config import load_config
+    from limitwatch.service import Job, Service
+
+    config = load_config(root / "demo.toml")
+    now = time.time()
+    rows = sorted(generate(seed=DEMO_SEED, end=now), key=lambda r: (r[1], r[0]))
+    echo(f"{PLANT} (an invented plant) -- {len(rows)} readings from {len(STREAMS)} streams")
+    for spec in STREAMS:
+        cause = spec.injected or "nothing injected"
+        echo(f"  {spec.stream:24} {spec.description} ({spec.unit}); then: {cause}")
+    echo(f"Each stream learns its baseline from its first {LEARN} readings.")
+    echo(f"Caution: {SAFETY_CAUTION}")
+    echo("")
+
+    # The service's store connection belongs to the thread that opens it, so the worker
+    # thread starts, runs and closes the service, exactly as `limitwatch serve` does in its one.
+    service = Service(config)
+    ready = threading.Event()
+    failure: list[BaseException] = []
+
+    def work() -> None:
+        try:
+            service.start()
+            ready.set()
+            service.run()
+        except BaseException as exc:  # reported below, in the demo's own thread
+            failure.append(exc)
+        finally:
+            ready.set()
+            service.close()
+
+    worker = threading.Thread(target=work, name="demo-worker", daemon=True)
+    worker.start()
+    ready.wait(timeout=30)
+    store_path = config.store.path
+
+    def alive() -> bool:
+        if failure or not worker.is_alive():
+            raise click.ClickException(
+                f"the demo's service stopped: {failure[0] if failure else '?'}"
+            )
+        return True
+
+    try:
+        feed = _mqtt_feeder(config) if use_mqtt else _file_feeder(root)
+        size = max(1, len(rows) // SLICES)
+        for start in range(0, len(rows), size):
+            chunk = rows[start : start + size]
+            feed(chunk)
+            if not use_mqtt:
+                service.intake.put(Job("poll-files", "quillmoor-export"))
+            fed = start + len(chunk)
+            _wait_for(lambda n=fed: alive() and _stored(store_path) >= n, 20)
+            echo(
+                f"-- fed {min(start + size, len(rows))}/{len(rows)} readings, "
+                f"up to {format_time(chunk[-1][1])}"
+            )
+            time.sleep(pace)
+        service.intake.put(Job("stale-check"))
+        _wait_for(lambda: alive() and _stale_alerts(store_path) > 0, 10)
+        time.sleep(max(pace, 1.0))  # let the console notifier print the last alerts
+    finally:
+        service.request_stop()
+        worker.join(timeout=30)
+    _summary(root, store_path, echo)
+
+
+def _file_feeder(root: Path) -> Callable[[list[tuple[str, float, float]]], None]:
+    export = root / "data" / "plant.csv"
+    export.write_text("time,stream,value\n")
+
+    def feed(chunk: list[tuple[str, float, float]]) -> None:
+        with export.open("a", encoding="utf-8") as handle:
+            for stream, moment, value in chunk:
+                handle.write(f"{format_time(moment)},{stream},{value:.2f}\n")
+
+    return feed
+
+
+def _mqtt_feeder(config: object) -> Callable[[list[tuple[str, float, float]]], None]:
+    import paho.mqtt.client as mqtt
+
+    source = config.sources[0]  # type: ignore[attr-defined]
+    client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="quillmoor-gateway-sim")
+    client.connect(source.host, source.port)
+    client.loop_start()
+
+    def feed(chunk: list[tuple[str, float, float]]) -> None:
+        infos = [
+            client.publish(
+                f"quillmoor/{stream}", json.dumps({"value": value, "time": moment}), qos=1
+            )
+            for stream, moment, value in chunk
+        ]
+        for info in infos:
+            info.wait_for_publish(timeout=10)
+
+    return feed
+
+
+def _stored(db: Path) -> int:
+    import sqlite3
+
+    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
+    try:
+        return int(conn.execute("SELECT count(*) FROM readings").fetchone()[0])
+    except sqlite3.OperationalError:
+        return 0
+    finally:
+        conn.close()
+
+
+def _stale_alerts(db: Path) -> int:
+    import sqlite3
+
+    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
+    try:
+        return int(conn.execute("SELECT count(*) FROM alerts WHERE rule = 'stale'").fetchone()[0])
+    finally:
+        conn.close()
+
+
+def _wait_for(check: Callable[[], bool], timeout: float) -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if check():
+            return
+        time.sleep(0.05)
+
+
+def _summary(root: Path, db: Path, echo: Callable[[str], None]) -> None:
+    import sqlite3
+
+    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True)
+    try:
+        rows = conn.execute(
+            "SELECT stream, group_concat(rule, ', ') FROM "
+            "(SELECT stream, rule FROM alerts ORDER BY id) GROUP BY stream ORDER BY stream"
+        ).fetchall()
+    finally:
+        conn.close()
+    echo("")
+    echo("What the alerts say, stream by stream:")
+    for stream, rules in rows:
+        echo(f"  {stream:24} {rules}")
+    quiet = sorted({s.stream for s in STREAMS} - {r[0] for r in rows})
+    for stream in quiet:
+        echo(f"  {stream:24} no alert (common-cause noise only)")
+    db_opt = f"--db {db}"
+    exe = Path(sys.argv[0]).name if sys.argv and sys.argv[0] else "limitwatch"
+    exe = "limitwatch" if exe in {"", "-c", "__main__.py"} else exe
+    echo("")
+    echo(f"Everything is in {root}")
+    echo("Next, try:")
+    echo(f"  {exe} alerts {db_opt}")
+    echo(f"  {exe} ack 1 --note 'checked the sealing jaw' {db_opt}")
+    echo(f"  {exe} log 1 {db_opt}")
+    echo(f"  {exe} streams {db_opt}")
+    echo(f"  {exe} chart pack-2/downtime -o {root / 'pack-2.png'} {db_opt}")
+    echo(f"  {exe} report --out {root / 'report'} {db_opt}")
