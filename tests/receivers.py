@@ -26,6 +26,7 @@ from cryptography import x509
 from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import NameOID
+
 from tests.broker import free_port
 
 # --------------------------------------------------------------------------- certificates

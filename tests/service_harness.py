@@ -12,6 +12,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 import paho.mqtt.client as mqtt
+
 from tests.helpers import CLI
 
 

@@ -7,6 +7,7 @@ import math
 
 import numpy as np
 import pytest
+
 from tests.helpers import run_cli, write_csv
 
 

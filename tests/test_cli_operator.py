@@ -26,13 +26,13 @@ from pathlib import Path
 import click
 import numpy as np
 import pytest
-from tests.helpers import CLI, run_cli
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy, SeverityRule
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import fit_baseline
 from limitwatch.store import Store
+from tests.helpers import CLI, run_cli
 
 D2 = 1.128  # Montgomery, Introduction to SQC, Appendix VI, n = 2
 E2 = 2.660  # ditto: 3 / d2

@@ -19,7 +19,6 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from pydantic import BaseModel
-from tests.helpers import run_cli
 
 from limitwatch import demo
 from limitwatch.alerts.notifiers.registry import known_types, settings_model
@@ -36,6 +35,7 @@ from limitwatch.config import (
 from limitwatch.durations import DurationError, format_duration, parse_duration
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
+from tests.helpers import run_cli
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLE = ROOT / "config" / "example.toml"

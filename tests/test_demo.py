@@ -6,11 +6,11 @@ import sqlite3
 from pathlib import Path
 
 import pytest
-from tests.broker import mosquitto_path
-from tests.helpers import run_cli
 
 from limitwatch.cli_demo import demo_config_text
 from limitwatch.demo import STREAMS
+from tests.broker import mosquitto_path
+from tests.helpers import run_cli
 
 # What each injected cause may legitimately raise (any of these rules, at least one of them).
 EXPECTED = {

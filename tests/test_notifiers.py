@@ -29,8 +29,6 @@ from pathlib import Path
 import paho.mqtt.client as mqtt
 import pytest
 from pydantic import ValidationError
-from tests.broker import free_port
-from tests.receivers import WebhookReceiver, make_ca, smtp_receiver
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import Notice, notification_payload
@@ -49,6 +47,8 @@ from limitwatch.alerts.notifiers.mqtt import MqttNotifier
 from limitwatch.alerts.notifiers.smtp import SmtpNotifier
 from limitwatch.alerts.notifiers.webhook import WebhookNotifier
 from limitwatch.store import Alert
+from tests.broker import free_port
+from tests.receivers import WebhookReceiver, make_ca, smtp_receiver
 
 T_ALERT = 1_900_000_000.0
 BUILT_INS = {

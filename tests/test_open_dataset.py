@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 
 import pytest
+
 from tests.helpers import run_cli
 
 sm = pytest.importorskip("statsmodels.api")

@@ -17,8 +17,6 @@ from collections import Counter
 from pathlib import Path
 
 import pytest
-from tests.receivers import WebhookReceiver
-from tests.test_notifiers import payload
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
@@ -28,6 +26,8 @@ from limitwatch.alerts.notifiers.webhook import WebhookNotifier
 from limitwatch.alerts.outbox import GAVE_UP, PARKED_AT, OutboxWorker, backoff_delay
 from limitwatch.model import StreamSignal
 from limitwatch.store import Store
+from tests.receivers import WebhookReceiver
+from tests.test_notifiers import payload
 
 T0 = 1_900_000_000.0
 

@@ -13,7 +13,6 @@ import textwrap
 
 import pytest
 from scipy.stats import norm
-from tests.helpers import run_cli
 
 from limitwatch.planner import (
     ASSUMPTIONS,
@@ -28,6 +27,7 @@ from limitwatch.planner import (
 )
 from limitwatch.stats import arl
 from limitwatch.stats.arl import run_length
+from tests.helpers import run_cli
 
 SECONDS = {"day": 86_400, "week": 604_800, "month": 30 * 86_400}
 

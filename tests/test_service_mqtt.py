@@ -10,6 +10,10 @@ import threading
 
 import numpy as np
 import paho.mqtt.client as mqtt
+
+from limitwatch.config import load_config
+from limitwatch.engine import StreamMonitor
+from limitwatch.model import Reading
 from tests.receivers import WebhookReceiver, make_ca
 from tests.service_harness import (
     Publisher,
@@ -20,10 +24,6 @@ from tests.service_harness import (
     query,
     wait_until,
 )
-
-from limitwatch.config import load_config
-from limitwatch.engine import StreamMonitor
-from limitwatch.model import Reading
 
 T0 = 1_798_761_600.0  # 2027-01-01T00:00:00Z
 
