@@ -337,6 +337,7 @@ def _print_signals(signals: list[dict[str, Any]], file: str, refused: int) -> No
 
 # Command groups kept in their own modules register themselves on ``main`` when imported.
 from limitwatch import (  # noqa: E402,F401
+    cli_charts,
     cli_config,
     cli_demo,
     cli_operator,
