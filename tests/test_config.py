@@ -155,7 +155,7 @@ def test_an_empty_file_is_a_working_config_of_defaults(tmp_path):
     config = load_config(path)
     assert config.path == path
     assert config.store.path == path.parent.resolve() / "limitwatch.db"
-    assert config.store.checkpoint_every == 30.0 and config.service.batch_wait == 0.2
+    assert config.service.batch_wait == 0.2
     assert config.service.batch_max == 500 and config.service.metrics_address is None
     # With no [[streams]] entries every stream gets the engine's own defaults.
     assert config.stream_settings("any/stream").monitor_settings() == MonitorSettings()
@@ -183,7 +183,7 @@ def test_a_missing_file_a_folder_and_bad_toml_are_reported(tmp_path):
 def test_every_problem_is_listed_at_once_by_key_path():
     found = problems(
         {
-            "store": {"checkpoint_every": "soon"},
+            "store": {"keep_readings_for": "soon"},
             "service": {"batch_max": 0},
             "defaults": {"method": "average"},
             "streams": [{"match": "a", "rules": "limits, trnd"}],
@@ -195,7 +195,7 @@ def test_every_problem_is_listed_at_once_by_key_path():
         }
     )
     assert set(found) == {
-        "store.checkpoint_every",
+        "store.keep_readings_for",
         "service.batch_max",
         "defaults.method",
         "streams[0].rules",
@@ -205,7 +205,7 @@ def test_every_problem_is_listed_at_once_by_key_path():
         "routes[0].notifiers[0]",
         "budget.false_alarms_per_week",
     }
-    assert "'soon'" in found["store.checkpoint_every"]
+    assert "'soon'" in found["store.keep_readings_for"]
     assert "'mean' or 'median'" in found["defaults.method"]
 
 

@@ -101,7 +101,7 @@ def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:
         "store",
         [
             f"{store.path}",
-            f"checkpoint every {format_duration(store.checkpoint_every)}; readings kept {kept}",
+            f"stream state checkpointed with every batch; readings kept {kept}",
         ],
     )
     service = config.service

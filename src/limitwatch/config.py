@@ -267,7 +267,6 @@ class StoreSection(_Section):
     path: ConfigPath = Path("limitwatch.db")
     keep_readings_for: PositiveDuration | None = None
     keep_readings_per_stream: int | None = Field(None, ge=1)
-    checkpoint_every: PositiveDuration = 30.0
 
 
 class ServiceSection(_Section):
