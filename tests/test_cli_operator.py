@@ -26,6 +26,7 @@ from pathlib import Path
 import click
 import numpy as np
 import pytest
+from scipy.stats import norm
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy, SeverityRule
@@ -497,6 +498,55 @@ def test_streams_reports_last_value_zone_version_and_alerts(plant: Plant) -> Non
         "2",
     ]
     assert [s["stream"] for s in plant.json("streams", "--stream", "*/temp")] == [KILN]
+
+
+def test_streams_shows_expected_false_alarms_from_the_config(plant: Plant) -> None:
+    config = plant.path.parent / "site.toml"
+    config.write_text(
+        "\n".join(
+            [
+                "[store]",
+                f'path = "{plant.path.name}"',
+                "[defaults]",
+                'rules = "western-electric"',  # no cadence: unknown
+                "[[streams]]",
+                'match = "kiln-*"',
+                'rules = "beyond-limits"',
+                'cadence = "1m"',
+                "[[streams]]",
+                'match = "press-*"',
+                'rules = "beyond-limits, two-of-three-zone-a, four-of-five-zone-b, run-one-side"',
+                'cadence = "8h"',
+            ]
+        )
+        + "\n",
+        encoding="utf-8",
+    )
+    listed = run_cli("streams", "--config", str(config), "--format", "json")
+    assert listed.returncode == 0, listed.stderr
+    rows = {s["stream"]: s for s in json.loads(listed.stdout)}
+    # three-sigma limits alone: ARL0 = 1 / P(|Z| > 3) (scipy.stats.norm), 10,080 readings a week
+    shewhart_arl0 = 1.0 / (2.0 * norm.sf(3.0))
+    assert rows[KILN]["false_alarms_per_week"] == pytest.approx(10_080 / shewhart_arl0, rel=1e-9)
+    # Western Electric rules 1-4: ARL0 91.75, Champ & Woodall (1987), Technometrics 29(4), from
+    # memory; 21 readings a week at one per 8-hour shift
+    assert rows[PRESS]["false_alarms_per_week"] == pytest.approx(21 / 91.75, rel=1e-4)
+    assert rows[OVEN]["false_alarms_per_week"] is None  # [defaults] has no cadence
+    assert rows[LONG]["false_alarms_per_week"] is None
+    # without --config there are no rules or cadences to plan from
+    assert all(s["false_alarms_per_week"] is None for s in plant.json("streams"))
+
+    table = run_cli("streams", "--config", str(config))
+    assert table.returncode == 0, table.stderr
+    assert fits_80(table.stdout)
+    lines = table.stdout.splitlines()
+    assert lines[0].split()[-1] == "false/wk"
+    cells = {name: line.split() for name, line in zip(rows, lines[2:], strict=False)}
+    assert cells[KILN][0] == KILN and cells[KILN][-1] == f"{10_080 / shewhart_arl0:.3g}"
+    assert cells[OVEN][0].startswith("oven-1/") and cells[OVEN][-1] == "-"
+    assert "false alarms a week" in run_cli("streams", "--help").stdout
+    # without a config the column would hold only '-': it is left out
+    assert "false/wk" not in plant.cli("streams").stdout
 
 
 # -- baselines ---------------------------------------------------------------------------------

@@ -923,6 +923,9 @@ def test_check_summarizes_a_good_config(tmp_path):
         assert stream in out
     for name in ("quillmoor-export", "terminal", "everything"):
         assert name in out
+    # no [budget] in the demo: the expected false alarms are information, not a warning
+    assert "false alarms a week from 3 streams" in " ".join(out.split())
+    assert "warning: budget" not in out
 
 
 def test_check_lists_every_problem_by_key_path_and_exits_1(tmp_path):

@@ -556,6 +556,25 @@ def test_a_signal_without_a_reading_opens_an_alert(book: AlertBook):
     json.dumps(payload, allow_nan=False)
 
 
+def test_a_stale_text_says_how_long_in_durations_not_seconds(book: AlertBook):
+    # silent 2 h 5 min 12 s (7,512 s) where a reading was due within 40 min (2,400 s)
+    stale = replace(sig("stale", T0 + 7512, value=86.5), statistic=7512.0, limit=2400.0)
+    book.apply_signals([stale], now=T0 + 7512)
+    text = book.store.notifications()[0].payload["text"]
+    assert "no reading for 2h5m12s (expected within 40m)" in text
+    assert "Statistic" not in text and "7512" not in text
+    # the reading shown is the last one, at its own time, not the time of the check
+    assert "Last reading 86.5 at 2023-11-14T22:13:20Z" in text  # T0 = 2023-11-14T22:13:20Z
+    assert text.endswith(SAFETY_CAUTION)
+
+
+def test_a_stale_text_without_any_reading(book: AlertBook):
+    stale = replace(sig("stale", T0 + 90, value=math.nan), statistic=90.0, limit=60.0)
+    book.apply_signals([stale], now=T0 + 90)
+    text = book.store.notifications()[0].payload["text"]
+    assert "No reading for 1m30s (expected within 1m)" in text and SAFETY_CAUTION in text
+
+
 def test_every_rule_id_has_words():
     ids = {
         "beyond-limits",

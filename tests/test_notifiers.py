@@ -255,6 +255,44 @@ def test_console_prints_a_readable_block(capsys: pytest.CaptureFixture[str], str
     assert all(len(line) <= 80 for line in text.splitlines())
 
 
+def _console_block(capsys: pytest.CaptureFixture[str], note: dict) -> list[str]:
+    build_notifier({"type": "console", "name": "desk"}).deliver(note, event_id=note["event_id"])
+    return capsys.readouterr().out.splitlines()
+
+
+def _with_signal(note_rule: str, value: float, **signal: object) -> dict:
+    """What the lifecycle sends for an alert whose signal carries ``signal`` extras."""
+    alert = Alert(
+        id=12, stream="pack-2/downtime", rule=note_rule, state="open", severity="warning",
+        opened_at=T_ALERT, first_time=T_ALERT, first_index=40, first_value=value,
+        last_time=T_ALERT, last_index=40, last_value=value, signal_count=1, quiet_count=0,
+        seen_time=T_ALERT,
+        signal={"chart": "x", "side": "upper", "center": 20.0, "sigma": 6.0, "ucl": 38.0,
+                "lcl": 2.0, "mr": 9.0, "mr_ucl": 22.1, "baseline_version": 3, **signal},
+    )  # fmt: skip
+    return notification_payload(alert, Notice("opened", 0), now=T_ALERT + 60)
+
+
+def test_console_labels_keep_a_space_after_the_longest(capsys: pytest.CaptureFixture[str]):
+    lines = _console_block(capsys, _with_signal("ewma", 31.0, statistic=0.84, limit=0.79))
+    assert "  statistic: 0.84 against 0.79" in lines
+    labelled = [line for line in lines[1:] if line.startswith("  ") and line[2] != " "]
+    starts = {len(line) - len(line.split(":", 1)[1].lstrip()) for line in labelled}
+    assert len(labelled) >= 6 and len(starts) == 1  # every value in one column
+
+
+def test_console_stale_block_says_how_long_in_durations(capsys: pytest.CaptureFixture[str]):
+    # silent 7,512 s = 2 h 5 min 12 s; due within 2,400 s = 40 min
+    lines = _console_block(capsys, _with_signal("stale", 41.5, statistic=7512.0, limit=2400.0))
+    flat = " ".join(" ".join(lines).split())
+    assert "silent: no reading for 2h5m12s (expected within 40m)" in flat
+    assert "statistic:" not in flat and "7512" not in flat
+    last = datetime.fromtimestamp(T_ALERT - 7512, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    assert f"last: 41.5 at {last}" in flat
+    assert " ".join(SAFETY_CAUTION.split()) in flat
+    assert all(len(line) <= 80 for line in lines)
+
+
 # --------------------------------------------------------------------------- webhook
 
 

@@ -6,15 +6,19 @@ and exits with status 1; option mistakes exit with status 2 (click's convention)
 
 from __future__ import annotations
 
+import dataclasses
 import json
+import textwrap
+from collections.abc import Iterable, Iterator
 from typing import Any
 
 import click
 
 from limitwatch import __version__
 from limitwatch.engine import MonitorSettings
-from limitwatch.ingest.csvfile import InputFileError, read_rows
+from limitwatch.ingest.csvfile import InputFileError, Row, read_rows
 from limitwatch.ingest.replay import replay
+from limitwatch.stats.autocorrelation import ESTIMATOR, Ar1Fit, fit_ar1
 from limitwatch.stats.baseline import Baseline, BaselineError, fit_baseline
 from limitwatch.stats.rules import UnknownRuleError
 from limitwatch.textout import num, table
@@ -84,6 +88,13 @@ def _fit_options(func: Any) -> Any:
     return func
 
 
+AR1_HELP = (
+    "For autocorrelated readings (Alwan & Roberts 1988): fit an AR(1) model "
+    "x_t - mu = phi (x_t-1 - mu) + e_t to the baseline readings by conditional least squares "
+    "and chart the one-step-ahead residuals e_t instead of the raw values."
+)
+
+
 def _rows(file: str, value: str, time: str | None = None, stream: str | None = None) -> list[Any]:
     try:
         return list(read_rows(file, value=value, time=time, stream=stream))
@@ -108,6 +119,11 @@ def baseline() -> None:
 @_fit_options
 @click.option("--spec-lower", type=float, help="Lower specification limit (for Cpk, Ppk).")
 @click.option("--spec-upper", type=float, help="Upper specification limit (for Cp, Cpk, ...).")
+@click.option(
+    "--ar1-residuals",
+    is_flag=True,
+    help=AR1_HELP + " Reports phi and the residuals' limits next to the plain fit.",
+)
 @click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
 def baseline_fit(
     file: str,
@@ -121,13 +137,21 @@ def baseline_fit(
     min_points: int,
     spec_lower: float | None,
     spec_upper: float | None,
+    ar1_residuals: bool,
     fmt: str,
 ) -> None:
     """Fit XmR limits from the readings in a CSV FILE (with a header row).
 
+    With --ar1-residuals the output adds an AR(1) model of the same readings (phi and mu, by
+    conditional least squares) and the XmR limits of its one-step-ahead residuals
+    e_t = x_t - mu - phi (x_t-1 - mu), the first reading's scaled by sqrt(1 - phi^2). Use it
+    when the lag-1 autocorrelation is high: then the plain limits are too tight. In JSON the
+    model and the residual limits are under the key "ar1".
+
     \b
-    Example:
+    Examples:
       limitwatch baseline fit downtime.csv --value minutes --first 25 --lower-bound 0
+      limitwatch baseline fit tank-level.csv --value level --ar1-residuals
     """
     rows = _rows(file, value_col)
     values = [row.value for row in (rows[:first] if first else rows)]
@@ -143,12 +167,29 @@ def baseline_fit(
             spec_lower=spec_lower,
             spec_upper=spec_upper,
         )
+        ar1 = (
+            fit_ar1(
+                values,
+                method=method,  # type: ignore[arg-type]
+                exclude_beyond=exclude_beyond,
+                max_iterations=max_iterations,
+                min_points=min_points,
+            )
+            if ar1_residuals
+            else None
+        )
     except (BaselineError, ValueError) as exc:
         raise InputProblem(f"{file}: {exc}") from None
     if fmt == "json":
-        click.echo(json.dumps(fitted.to_dict(), indent=2))
+        data = fitted.to_dict()
+        if ar1 is not None:
+            data["ar1"] = ar1.to_dict()
+        click.echo(json.dumps(data, indent=2))
         return
     click.echo(_baseline_text(fitted))
+    if ar1 is not None:
+        click.echo("")
+        click.echo(_ar1_text(ar1))
 
 
 def _baseline_text(fitted: Baseline) -> str:
@@ -194,7 +235,43 @@ def _baseline_text(fitted: Baseline) -> str:
     else:
         lines.append("  excluded             none")
     for warning in fitted.warnings:
-        lines.append(f"warning: {warning}")
+        lines += _warning_lines(f"warning: {warning}")
+    return "\n".join(lines)
+
+
+def _warning_lines(text: str) -> list[str]:
+    """A warning wrapped to 80 columns, continuation lines indented."""
+    return textwrap.wrap(text, 80, subsequent_indent="  ", break_on_hyphens=False)
+
+
+def _ar1_text(ar1: Ar1Fit) -> str:
+    b = ar1.baseline
+    lines = [
+        f"AR(1) model of the same {ar1.n} readings ({ESTIMATOR}):",
+        "",
+        f"  phi                  {num(ar1.phi, 4)}",
+        f"  mean (mu)            {num(ar1.mu)}",
+        f"  innovation sd        {num(ar1.innovation_sd)}",
+        "",
+        "Limits for its one-step-ahead residuals e_t = x_t - mu - phi (x_t-1 - mu),",
+        f"from {b.n_used} of {b.n} residuals:",
+        "",
+        f"  center line          {num(b.center)}",
+        f"  average moving range {num(b.mr_bar)}",
+        f"  sigma                {num(b.sigma)}",
+        f"  upper limit (UCL)    {num(b.ucl)}",
+        f"  lower limit (LCL)    {num(b.lcl)}",
+        f"  MR upper limit       {num(b.mr_ucl)}",
+        f"  lag-1 autocorrelation {num(b.lag1_autocorrelation, 3)}",
+    ]
+    if b.exclusions:
+        kinds = [e.kind for e in b.exclusions]
+        lines.append(
+            f"  excluded             {kinds.count('x-beyond-limits')} residual(s) beyond the "
+            f"limits, {kinds.count('mr-beyond-limit')} moving range(s)"
+        )
+    for warning in (*ar1.warnings, *b.warnings):
+        lines += _warning_lines(f"warning: residuals: {warning}")
     return "\n".join(lines)
 
 
@@ -226,6 +303,12 @@ def _baseline_text(fitted: Baseline) -> str:
     help="Seconds; a moving range across a longer gap between readings is skipped.",
 )
 @click.option(
+    "--ar1-residuals",
+    is_flag=True,
+    help=AR1_HELP + " The model is fitted on each stream's baseline readings (--baseline-first); "
+    "limits, rules and signals then refer to the residuals.",
+)
+@click.option(
     "--format", "fmt", type=click.Choice(["table", "jsonl"]), default="table", show_default=True
 )
 def replay_cmd(
@@ -242,13 +325,25 @@ def replay_cmd(
     max_iterations: int,
     min_points: int,
     max_gap: float | None,
+    ar1_residuals: bool,
     fmt: str,
 ) -> None:
     """Run the readings in a CSV FILE through the monitoring engine and print every signal.
 
+    --ar1-residuals is an option for autocorrelated readings (a slowly wandering temperature or
+    level; the baseline fit warns when the lag-1 autocorrelation is high), whose plain XmR
+    limits are too tight and raise false alarms. For each stream it fits an AR(1) model
+    x_t - mu = phi (x_t-1 - mu) + e_t to the stream's first --baseline-first readings
+    (conditional least squares) and charts the one-step-ahead residuals
+    e_t = x_t - mu - phi (x_t-1 - mu) instead of the raw readings: the baseline, limits, run
+    tests and signals are those of the residuals, and each signal also carries the raw
+    reading ("reading" in JSON lines). A sustained shift shows in the residuals mostly at its
+    first reading when phi is near 1. Natural bounds still apply to the raw readings.
+
     \b
-    Example:
+    Examples:
       limitwatch replay line-temps.csv --value temp_c --time ts --stream sensor --rules nelson
+      limitwatch replay tank-level.csv --value level --baseline-first 200 --ar1-residuals
     """
     try:
         settings = MonitorSettings(
@@ -269,12 +364,27 @@ def replay_cmd(
     rows = _rows(file, value_col, time=time_col, stream=stream_col)
     signals: list[dict[str, Any]] = []
     refused = 0
-    for step in replay(rows, settings):
+    feed: _ResidualFeed | None = None
+    engine_settings = settings
+    if ar1_residuals:
+        feed = _ResidualFeed(file, rows, settings)
+        # Bounds belong to the raw readings (the feed refuses those beyond them); the residuals'
+        # own autocorrelation is judged by the AR(1) fit, in words that fit residuals.
+        engine_settings = dataclasses.replace(
+            settings, lower_bound=None, upper_bound=None, autocorrelation_threshold=1.0
+        )
+        for stream, problem in feed.problems.items():
+            click.echo(
+                f"warning: {stream!r}: no AR(1) model ({problem}); its readings are left out",
+                err=True,
+            )
+    for step in replay(rows if feed is None else feed.rows(rows), engine_settings):
         outcome = step.outcome
+        reading = step.row.value if feed is None else feed.raw[step.row.line]
         if not outcome.accepted:
             refused += 1
             click.echo(
-                f"refused: {file}, line {step.row.line}: reading {num(step.row.value)} "
+                f"refused: {file}, line {step.row.line}: reading {num(reading)} "
                 f"for stream {step.row.stream!r}: {outcome.reason}",
                 err=True,
             )
@@ -282,8 +392,19 @@ def replay_cmd(
         if outcome.baseline_fitted and fmt == "table":
             b = step.monitor.baseline
             assert b is not None
+            if feed is not None:
+                model = feed.models[step.row.stream]
+                click.echo(
+                    f"AR(1) for {step.row.stream!r} from its first {model.n} readings "
+                    f"({ESTIMATOR}): phi {num(model.phi, 4)}, mu {num(model.mu)}; charting "
+                    "its one-step-ahead residuals",
+                    err=True,
+                )
+                for warning in model.warnings:
+                    click.echo(f"warning: {step.row.stream!r}: residuals: {warning}", err=True)
+            what = "baseline" if feed is None else "residual baseline"
             click.echo(
-                f"baseline for {step.row.stream!r} from its first {b.n} readings: "
+                f"{what} for {step.row.stream!r} from its first {b.n} readings: "
                 f"center {num(b.center)}, limits {num(b.lcl) if b.lcl is not None else 'none'}"
                 f" .. {num(b.ucl) if b.ucl is not None else 'none'}, MR limit {num(b.mr_ucl)}",
                 err=True,
@@ -307,23 +428,113 @@ def replay_cmd(
                 "mr": signal.mr,
                 "mr_ucl": signal.mr_ucl,
             }
+            if feed is not None:
+                record["reading"] = reading
             if fmt == "jsonl":
                 click.echo(json.dumps(record))
             else:
                 signals.append(record)
+    if feed is not None:
+        refused += feed.refused
     if fmt == "table":
-        _print_signals(signals, file, refused)
+        _print_signals(signals, file, refused, residuals=feed is not None)
 
 
-def _print_signals(signals: list[dict[str, Any]], file: str, refused: int) -> None:
+class _ResidualFeed:
+    """The rows of a replay with each value replaced by its AR(1) one-step-ahead residual.
+
+    Each stream's model is fitted on the first ``learn_count`` readings the engine will accept
+    (in time order, within the natural bounds), the same readings whose residuals the engine
+    then learns its baseline from. Readings beyond a natural bound are refused here (the
+    residuals have no bound); a reading the engine will refuse for its time does not move the
+    filter, and a repeat of the previous reading is passed as a repeat of its residual, so the
+    engine names the refusal as it would for raw readings.
+    """
+
+    def __init__(self, file: str, rows: list[Row], settings: MonitorSettings) -> None:
+        self.file = file
+        self.settings = settings
+        self.refused = 0
+        self.raw: dict[int, float] = {}
+        self.models: dict[str, Ar1Fit] = {}
+        self.problems: dict[str, str] = {}
+        first: dict[str, list[float]] = {}
+        last: dict[str, float] = {}
+        for row in rows:
+            if self._bound(row.value) is not None:
+                continue
+            before = last.get(row.stream)
+            if before is not None and row.time <= before:
+                continue
+            last[row.stream] = row.time
+            values = first.setdefault(row.stream, [])
+            if len(values) < settings.learn_count:
+                values.append(row.value)
+        for stream, values in first.items():
+            if len(values) < settings.learn_count:
+                continue  # never leaves the learning phase: nothing to chart
+            try:
+                self.models[stream] = fit_ar1(
+                    values,
+                    method=settings.method,
+                    exclude_beyond=settings.exclude_beyond,
+                    max_iterations=settings.max_iterations,
+                    min_points=settings.min_points,
+                    warn_points=settings.warn_points,
+                )
+            except BaselineError as exc:
+                self.problems[stream] = str(exc)
+
+    def _bound(self, value: float) -> str | None:
+        s = self.settings
+        if s.lower_bound is not None and value < s.lower_bound:
+            return "below-lower-bound"
+        if s.upper_bound is not None and value > s.upper_bound:
+            return "above-upper-bound"
+        return None
+
+    def rows(self, rows: Iterable[Row]) -> Iterator[Row]:
+        filters = {stream: model.filter() for stream, model in self.models.items()}
+        last: dict[str, tuple[float, float, float]] = {}  # time, reading, residual
+        for row in rows:
+            reason = self._bound(row.value)
+            if reason is not None:
+                self.refused += 1
+                click.echo(
+                    f"refused: {self.file}, line {row.line}: reading {num(row.value)} "
+                    f"for stream {row.stream!r}: {reason}",
+                    err=True,
+                )
+                continue
+            if row.stream in self.problems:
+                continue
+            self.raw[row.line] = row.value
+            f = filters.get(row.stream)
+            if f is None:  # too few readings ever to fit a baseline
+                yield row
+                continue
+            before = last.get(row.stream)
+            if before is not None and row.time <= before[0]:
+                repeat = row.time == before[0] and row.value == before[1]
+                value = before[2] if repeat else f.peek(row.value)
+            else:
+                value = f.update(row.value)
+                last[row.stream] = (row.time, row.value, value)
+            yield dataclasses.replace(row, value=value)
+
+
+def _print_signals(
+    signals: list[dict[str, Any]], file: str, refused: int, *, residuals: bool = False
+) -> None:
     if not signals:
-        click.echo(f"No signals in {file}.")
+        click.echo(f"No signals in {file}" + (" (AR(1) residuals)." if residuals else "."))
         return
     rows = [
         [
             s["stream"],
             str(s["index"]),
             s["time"] if s["time"] is not None else "-",
+            *([num(s["reading"])] if residuals else []),
             num(s["value"]),
             s["rule"],
             s["chart"].upper(),
@@ -331,8 +542,11 @@ def _print_signals(signals: list[dict[str, Any]], file: str, refused: int) -> No
         ]
         for s in signals
     ]
-    click.echo(table(["stream", "index", "time", "value", "rule", "chart", "side"], rows))
+    values = ["reading", "residual"] if residuals else ["value"]
+    click.echo(table(["stream", "index", "time", *values, "rule", "chart", "side"], rows))
     click.echo(f"{len(signals)} signal(s); {refused} reading(s) refused.")
+    if residuals:
+        click.echo("Charted: one-step-ahead residuals of each stream's AR(1) model.")
 
 
 # Command groups kept in their own modules register themselves on ``main`` when imported.

@@ -9,14 +9,25 @@ that other users can read is found here rather than at 3 a.m.
 Exit status 0 with a short summary when the file is usable (warnings included); 1 with every
 problem, one per line, when it is not.
 
+``check`` also says how many false alarms the configured rules should raise at their cadence
+(:mod:`limitwatch.planner`, counting one stream per ``[[streams]]`` entry with a cadence and one
+for ``[defaults]``, as ``limitwatch plan --config`` does), and warns -- without failing -- when
+that exceeds ``[budget] false_alarms_per_week``: a rule set that cries wolf is usable, but the
+people on duty will soon stop reading it.
+
 References
 ----------
 The Twelve-Factor App, "III. Config" (https://12factor.net/config), on keeping credentials in
 the environment rather than in config files.
+ANSI/ISA-18.2-2016 and EEMUA 191 on alarm rates an operator can handle (why a budget at all).
 """
 
 from __future__ import annotations
 
+import shlex
+import textwrap
+from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import click
@@ -32,7 +43,12 @@ from limitwatch.config import (
     load_config,
 )
 from limitwatch.durations import format_duration
+from limitwatch.planner import StreamPlan, plan_stream, site_false_alarms
+from limitwatch.stats.arl import ArlError
 from limitwatch.textout import num
+
+WORST = 3
+"""How many of the noisiest streams a budget warning names."""
 
 
 @main.command("check")
@@ -57,6 +73,12 @@ def check(config_file: str, file_only: bool) -> None:
     start-up does, refuses secret files that other users can read, and looks for the
     certificate files and the database folder it names.
 
+    It also gives the false alarms a week the configured rules are expected to raise at their
+    cadence (one stream counted per [[streams]] entry with a cadence and one for [defaults],
+    as 'limitwatch plan --config' counts them), and warns, without failing, when the site
+    total exceeds [budget] false_alarms_per_week. The figure assumes independent, normal
+    readings; autocorrelated readings raise more.
+
     \b
     Example:
       limitwatch check --config /etc/limitwatch/site.toml
@@ -72,11 +94,96 @@ def check(config_file: str, file_only: bool) -> None:
     click.echo("")
     for line in summary(config, secrets_checked=not file_only):
         click.echo(line)
-    warnings = config.warnings()
+    expected = expected_false_alarms(config)
+    for line in expected.lines():
+        click.echo(line)
+    warnings = [f"warning: {w}" for w in config.warnings()]
+    warnings += expected.warnings(config_file, config.budget.false_alarms_per_week)
     if warnings:
         click.echo("")
         for warning in warnings:
-            click.echo(f"warning: {warning}")
+            click.echo(warning)
+
+
+_wrap = partial(textwrap.wrap, width=80, break_on_hyphens=False, break_long_words=False)
+
+
+@dataclass(frozen=True)
+class ExpectedFalseAlarms:
+    """The planner's expected false alarms of a config's streams, one stream per ``[[streams]]``
+    entry with a cadence and one for ``[defaults]`` (``limitwatch plan --config``'s count).
+
+    ``unplanned`` names the entries left out, each with the reason (no cadence, or a rule set
+    whose run length cannot be computed)."""
+
+    plans: tuple[StreamPlan, ...]
+    unplanned: tuple[tuple[str, str], ...]
+
+    @property
+    def per_week(self) -> float:
+        return site_false_alarms(self.plans)["week"]
+
+    def worst(self, count: int = WORST) -> list[StreamPlan]:
+        return sorted(self.plans, key=lambda p: -p.false_alarms("week"))[:count]
+
+    def lines(self) -> list[str]:
+        """The expected figure as information, with how the streams were counted, as the
+        ``expected`` section of the summary."""
+        if not self.plans:
+            text = [
+                "false alarms not estimated: no [[streams]] entry and not [defaults] sets a cadence"
+            ]
+        else:
+            counted = len(self.plans)
+            text = [
+                f"about {num(self.per_week, 3)} false alarms a week from {counted} "
+                f"stream{'s' if counted != 1 else ''}: each [[streams]] entry with a cadence, "
+                "and [defaults] if it has one, counts as one stream, as 'limitwatch plan "
+                "--config' counts them (a glob matching many streams counts once)",
+            ]
+            if self.unplanned:
+                text.append("not counted: " + ", ".join(f"{n} ({r})" for n, r in self.unplanned))
+            text.append("assumes independent, normal readings (autocorrelated ones raise more)")
+        out: list[str] = []
+        for i, paragraph in enumerate(text):
+            lead = "expected   " if i == 0 else " " * 11
+            out += _wrap(paragraph, initial_indent=lead, subsequent_indent=" " * 11)
+        return out
+
+    def warnings(self, config_file: str, budget: float | None) -> list[str]:
+        """A warning when the expected site rate exceeds ``budget`` (false alarms a week)."""
+        if budget is None or not self.plans or self.per_week <= budget:
+            return []
+        named = ", ".join(
+            f"{p.name} {num(p.false_alarms('week'), 3)} ({p.rules}, every "
+            f"{format_duration(p.cadence)})"
+            for p in self.worst()
+        )
+        text = (
+            f"warning: budget: about {num(self.per_week, 3)} false alarms a week expected, over "
+            f"the budget of {num(budget)} ([budget] false_alarms_per_week). The noisiest "
+            f"stream{'s' if len(self.plans) > 1 else ''}: {named}. To find rule sets that fit:"
+        )
+        command = f"limitwatch plan --config {shlex.quote(config_file)} --budget {num(budget)}/week"
+        return ["\n".join([*_wrap(text, subsequent_indent="  "), f"  {command}"])]
+
+
+def expected_false_alarms(config: Config) -> ExpectedFalseAlarms:
+    """Plan each ``[[streams]]`` entry and the defaults at their rules and cadence (in-control
+    run lengths only: the planner caches them per rule set, so this stays quick)."""
+    settings = [(e.match, config.entry_settings(i)) for i, e in enumerate(config.streams)]
+    settings.append(("[defaults]", config.default_settings()))
+    plans: list[StreamPlan] = []
+    unplanned: list[tuple[str, str]] = []
+    for name, opts in settings:
+        if opts.cadence is None:
+            unplanned.append((name, "no cadence"))
+            continue
+        try:
+            plans.append(plan_stream(opts.rules, float(opts.cadence), name=name, shifts=()))
+        except (ArlError, ValueError) as exc:
+            unplanned.append((name, f"run length not computed: {exc}"))
+    return ExpectedFalseAlarms(tuple(plans), tuple(unplanned))
 
 
 def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:
@@ -189,4 +296,4 @@ def _source_line(source: MqttSourceConfig | FileSourceConfig) -> str:
     )
 
 
-__all__ = ["check", "summary"]
+__all__ = ["ExpectedFalseAlarms", "check", "expected_false_alarms", "summary"]

@@ -55,6 +55,8 @@ from limitwatch.cli import FORMATS, InputProblem, baseline, main
 from limitwatch.config import ConfigError, load_config
 from limitwatch.durations import DurationError, format_duration, parse_duration
 from limitwatch.ingest.timeparse import format_time
+from limitwatch.planner import plan_stream
+from limitwatch.stats.arl import ArlError
 from limitwatch.stats.baseline import Baseline as Limits
 from limitwatch.stats.baseline import BaselineError, fit_baseline
 from limitwatch.stats.rules import DETECTORS
@@ -710,6 +712,7 @@ def stream_record(
     current: StoredBaseline | None,
     live: Sequence[Alert],
     shelves: Sequence[Shelf],
+    false_alarms_per_week: float | None = None,
 ) -> dict[str, Any]:
     """The JSON object for one stream (``limitwatch streams --format json``)."""
     limits = limits_of(current.numbers) if current is not None else None
@@ -731,7 +734,38 @@ def stream_record(
             {"rule": s.rule, "until": iso(s.until), "reason": s.reason, "by": s.shelved_by}
             for s in shelves
         ],
+        "false_alarms_per_week": false_alarms_per_week,
     }
+
+
+def false_alarms_by_stream(config_file: str | None, streams: Sequence[str]) -> dict[str, float]:
+    """Each stream's expected false alarms a week from its configured rules and cadence
+    (:mod:`limitwatch.planner`); streams without a cadence, or without ``--config``, are left
+    out. The planner caches run lengths per rule set, so many streams cost little more than
+    one."""
+    if config_file is None:
+        return {}
+    try:
+        config = load_config(config_file)
+    except ConfigError as exc:
+        raise InputProblem(str(exc)) from None
+    known: dict[tuple[str, float], float | None] = {}
+    out: dict[str, float] = {}
+    for stream in streams:
+        opts = config.stream_settings(stream)
+        if opts.cadence is None:
+            continue
+        key = (opts.rules, float(opts.cadence))
+        if key not in known:
+            try:
+                plan = plan_stream(opts.rules, float(opts.cadence), shifts=())
+                known[key] = plan.false_alarms("week")
+            except (ArlError, ValueError):
+                known[key] = None
+        value = known[key]
+        if value is not None:
+            out[stream] = value
+    return out
 
 
 def _shelf_cell(shelves: Sequence[Shelf], now: float) -> str:
@@ -765,19 +799,23 @@ def streams_cmd(
     stream_glob: str | None, fmt: str, db_path: str | None, config_file: str | None
 ) -> None:
     """List the streams with their last reading, where it falls against the current baseline,
-    and their alerts and shelves.
+    their alerts and shelves, and the false alarms a week their rules should raise.
 
     In the table, 'zone' is the last reading's place against the current baseline (zone-c is
     within one sigma of the center line, zone-b within two, zone-a within three; above-ucl and
-    below-lcl are beyond the limits), 'open' counts unacknowledged open alerts and 'shelved'
-    what is shelved (all rules or which) and for how much longer. With --format json the
-    output is a list of objects with the keys stream, last_value, last_time, zone, phase,
-    baseline_version, center, lcl, ucl, open_alerts, acknowledged_alerts, shelved_until (a
-    shelf of every rule) and shelves (each with rule, until, reason, by).
+    below-lcl are beyond the limits), 'open' counts unacknowledged open alerts, 'shelved'
+    what is shelved (all rules or which) and for how much longer. With --config, 'false/wk'
+    is the false alarms a week expected from the stream's rules at its cadence as the config
+    gives them ('-' when it gives no cadence; the planner's figure, which assumes
+    independent, normal readings). With --format json the output is a list of objects with
+    the keys stream, last_value, last_time, zone, phase, baseline_version, center, lcl, ucl,
+    open_alerts, acknowledged_alerts, shelved_until (a shelf of every rule), shelves (each
+    with rule, until, reason, by) and false_alarms_per_week (null when unknown).
 
     \b
     Examples:
       limitwatch streams
+      limitwatch streams --config /etc/limitwatch/site.toml
       limitwatch streams --stream 'pack-*' --format json
     """
     now = clock()
@@ -792,8 +830,15 @@ def streams_cmd(
     shelves_of: dict[str, list[Shelf]] = {}
     for shelf in shelves:
         shelves_of.setdefault(shelf.stream, []).append(shelf)
+    expected = false_alarms_by_stream(config_file, [r.id for r in rows])
     records = [
-        stream_record(r, current[r.id], by_stream.get(r.id, []), shelves_of.get(r.id, []))
+        stream_record(
+            r,
+            current[r.id],
+            by_stream.get(r.id, []),
+            shelves_of.get(r.id, []),
+            expected.get(r.id),
+        )
         for r in rows
     ]
     if fmt == "json":
@@ -816,6 +861,12 @@ def streams_cmd(
         for rec in records
     ]
     headers = ["stream", "last", "zone", "phase", "baseline", "open", "shelved"]
+    if config_file is not None:
+        # Only a config knows rules and cadences; without one the column would be all '-'
+        # and cost the stream names ten columns.
+        headers.append("false/wk")
+        for cells, rec in zip(table_rows, records, strict=True):
+            cells.append(num(rec["false_alarms_per_week"], 3))
     click.echo(fit_table(headers, table_rows, cuttable=[0, 6]))
 
 

@@ -46,6 +46,7 @@ from fnmatch import fnmatchcase
 from typing import Any, Literal
 
 from limitwatch import SAFETY_CAUTION
+from limitwatch.durations import format_duration
 from limitwatch.model import Outcome, StreamSignal
 from limitwatch.store import Alert, Shelf, Store, signal_context
 
@@ -289,6 +290,19 @@ def _duration(seconds: float) -> str:
     return f"{minutes / 60:.1f} h"
 
 
+def silence_words(silent_s: float, expected_s: float) -> str:
+    """How long a stale stream has been silent against how soon a reading was due, in the
+    units people write durations in (``limitwatch.durations``), the silence to the second.
+
+    >>> silence_words(7512.4, 2400.0)
+    'no reading for 2h5m12s (expected within 40m)'
+    """
+    return (
+        f"no reading for {format_duration(round(silent_s))} "
+        f"(expected within {format_duration(expected_s)})"
+    )
+
+
 def notification_payload(alert: Alert, notice: Notice, now: float) -> dict[str, Any]:
     """The JSON-safe body every notifier receives; ``event_id`` is stable across retries."""
     sig = alert.signal
@@ -342,8 +356,22 @@ def describe(payload: dict[str, Any]) -> str:
         f"{head}: {payload['severity']} alert {payload['alert_id']} on {payload['stream']} "
         f"({payload['rule']}).",
         payload["rule_words"],
-        f"Reading {g(payload['value'])} at {payload['time_iso']}.",
     ]
+    silent, due = payload["statistic"], payload["limit"]
+    stale = payload["rule"] == "stale" and silent is not None and due is not None
+    if stale:
+        # The alert's time is when the check ran; the reading it shows came ``silent`` earlier.
+        words = silence_words(silent, due)
+        last = _iso(payload["time"] - silent) if payload["time"] is not None else None
+        if payload["value"] is None:
+            parts.append(f"{words[0].upper()}{words[1:]}, checked at {payload['time_iso']}.")
+        else:
+            parts.append(
+                f"Last reading {g(payload['value'])} at {last}: {words}, checked at "
+                f"{payload['time_iso']}."
+            )
+    else:
+        parts.append(f"Reading {g(payload['value'])} at {payload['time_iso']}.")
     if payload["chart"] == "mr":
         # The moving range is the MR chart's statistic; say it once.
         parts.append(
@@ -354,7 +382,7 @@ def describe(payload: dict[str, Any]) -> str:
             f"Center line {g(payload['center'])}, natural process limits "
             f"{g(payload['lcl'])} to {g(payload['ucl'])}."
         )
-        if payload["statistic"] is not None and payload["limit"] is not None:
+        if not stale and payload["statistic"] is not None and payload["limit"] is not None:
             parts.append(
                 f"Statistic {g(payload['statistic'])} against limit {g(payload['limit'])}."
             )

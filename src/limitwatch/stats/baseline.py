@@ -6,7 +6,8 @@ cannot go below zero gets a lower limit it can never cross; readings that follow
 closely (autocorrelation) give moving ranges that understate the real spread. :func:`fit_baseline`
 handles each openly: optional iterative exclusion with every excluded reading recorded, natural
 bounds that switch a limit off instead of drawing it where no reading can be, and warnings a
-person can read. Nothing is dropped or changed silently.
+person can read. Nothing is dropped or changed silently. For readings that are autocorrelated,
+:mod:`limitwatch.stats.autocorrelation` fits an AR(1) model and charts its residuals instead.
 
 Sigma comes from moving ranges of adjacent readings (within variation), either the average
 moving range (``sigma = MRbar / d2``) or, more robust to a few large jumps, the median moving
@@ -619,7 +620,9 @@ def fit_baseline(
         warnings.append(
             f"lag-1 autocorrelation is {lag1:.2f} (above {autocorrelation_threshold}): successive "
             "readings are not independent, so moving-range limits will be too tight and false "
-            "alarms more frequent; sample less often or chart the residuals of a time-series model"
+            "alarms more frequent than planned; sample less often, or chart the one-step-ahead "
+            "residuals of an AR(1) fit (option --ar1-residuals of 'limitwatch baseline fit' and "
+            "'limitwatch replay')"
         )
     if not converged:
         warnings.append(

@@ -11,13 +11,22 @@ e-mail notifier, so a person sees the same words whichever channel reached them.
 ...         "caution": "A monitoring aid, not a safety system."}
 >>> print("\\n".join(notification_lines(note)))
 limitwatch: new alert 7, severity warning
-  stream:   pack-2/downtime
-  rule:     beyond-limits
-            A reading fell outside the limits.
-  reading:  41.5 at 2030-01-01T06:00:00Z
-  limits:   center line 20, natural process limits 2 to 38
-  event:    7:opened:0
-  caution:  A monitoring aid, not a safety system.
+  stream:    pack-2/downtime
+  rule:      beyond-limits
+             A reading fell outside the limits.
+  reading:   41.5 at 2030-01-01T06:00:00Z
+  limits:    center line 20, natural process limits 2 to 38
+  event:     7:opened:0
+  caution:   A monitoring aid, not a safety system.
+
+A ``stale`` alert says how long the stream has been silent against how soon a reading was due,
+in the units durations are written in, instead of a statistic in seconds:
+
+>>> quiet = {**note, "rule": "stale", "statistic": 7512.0, "limit": 2400.0,
+...          "time": 1_893_477_600.0}  # the check ran at 2030-01-01T06:00:00Z
+>>> print("\\n".join(notification_lines(quiet)[4:6]))
+  last:      41.5 at 2030-01-01T03:54:48Z
+  silent:    no reading for 2h5m12s (expected within 40m)
 
 References
 ----------
@@ -29,13 +38,23 @@ from __future__ import annotations
 
 import sys
 import textwrap
+from datetime import UTC, datetime
 from typing import Any, Literal, Self
 
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier, NotifierSettings
+from limitwatch.durations import format_duration
 
 
 def _num(x: Any) -> str:
     return "n/a" if x is None else f"{x:.6g}" if isinstance(x, int | float) else str(x)
+
+
+def _seconds(x: Any) -> bool:
+    return isinstance(x, int | float) and not isinstance(x, bool) and 0 <= x < float("inf")
+
+
+def _iso(t: float) -> str:
+    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
 
 
 def headline(notification: dict[str, Any]) -> str:
@@ -56,15 +75,28 @@ def headline(notification: dict[str, Any]) -> str:
 def notification_lines(notification: dict[str, Any], *, width: int = 78) -> list[str]:
     """The notification as labelled lines: stream, rule in words, reading, limits, caution."""
     n = notification
-    label = "  {:<10}".format
-    indent = " " * 12
+    label = "  {:<11}".format  # room for the longest label, "statistic:", and a space
+    indent = " " * 13
     lines = [headline(n), label("stream:") + str(n.get("stream", "?"))]
     lines.append(label("rule:") + str(n.get("rule", "?")))
     if n.get("rule_words"):
         lines += textwrap.wrap(
             n["rule_words"], width, initial_indent=indent, subsequent_indent=indent
         )
-    lines.append(label("reading:") + f"{_num(n.get('value'))} at {n.get('time_iso') or 'n/a'}")
+    silent, due = n.get("statistic"), n.get("limit")
+    stale = n.get("rule") == "stale" and _seconds(silent) and _seconds(due)
+    if stale:
+        # The alert's time is when the check ran; the last reading came ``silent`` before it.
+        when = n.get("time")
+        last = _iso(when - silent) if isinstance(when, int | float) else None
+        lines.append(label("last:") + f"{_num(n.get('value'))} at {last or 'n/a'}")
+        lines.append(
+            label("silent:")
+            + f"no reading for {format_duration(round(silent))} "
+            + f"(expected within {format_duration(due)})"
+        )
+    else:
+        lines.append(label("reading:") + f"{_num(n.get('value'))} at {n.get('time_iso') or 'n/a'}")
     if n.get("chart") == "mr":
         limits = f"moving range {_num(n.get('mr'))}, upper limit {_num(n.get('mr_ucl'))}"
     else:
@@ -73,7 +105,7 @@ def notification_lines(notification: dict[str, Any], *, width: int = 78) -> list
             f"{_num(n.get('lcl'))} to {_num(n.get('ucl'))}"
         )
     lines.append(label("limits:") + limits)
-    if n.get("statistic") is not None and n.get("limit") is not None:
+    if not stale and n.get("statistic") is not None and n.get("limit") is not None:
         lines.append(label("statistic:") + f"{_num(n['statistic'])} against {_num(n['limit'])}")
     if (n.get("signal_count") or 1) > 1:
         lines.append(label("signals:") + f"{n['signal_count']} since it opened")
