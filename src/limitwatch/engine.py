@@ -40,10 +40,12 @@ from typing import Any, Literal
 
 from limitwatch.model import Outcome, Phase, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError, fit_baseline
-from limitwatch.stats.rules import RuleSpec, build_detectors, parse_rules
+from limitwatch.stats.rules import DETECTORS, RuleSpec, parse_rules
 from limitwatch.stats.signal import Detector
 
-SNAPSHOT_FORMAT = 1
+SNAPSHOT_FORMAT = 2
+"""Checkpoint layout written by :meth:`StreamMonitor.snapshot`. Format 1 (every detector's
+full snapshot, parameters included) is still read."""
 
 
 @dataclass(frozen=True)
@@ -65,10 +67,19 @@ class MonitorSettings:
     spec_upper: float | None = None
     max_gap: float | None = None
     rule_specs: tuple[RuleSpec, ...] = field(init=False, repr=False, compare=False)
+    x_specs: tuple[RuleSpec, ...] = field(init=False, repr=False, compare=False)
+    """The selected detectors of the X chart, then (``mr_specs``) of the MR chart."""
+    mr_specs: tuple[RuleSpec, ...] = field(init=False, repr=False, compare=False)
+    detectors_key: str = field(init=False, repr=False, compare=False)
+    """Every detector with all its parameters, X chart first: a checkpoint whose key differs
+    was written under other rules, and its run counts must not be reused."""
 
     def __post_init__(self) -> None:
         specs = parse_rules(self.rules) if isinstance(self.rules, str) else tuple(self.rules)
         object.__setattr__(self, "rule_specs", tuple(specs))
+        object.__setattr__(self, "x_specs", tuple(s for s in specs if _chart(s) == "x"))
+        object.__setattr__(self, "mr_specs", tuple(s for s in specs if _chart(s) == "mr"))
+        object.__setattr__(self, "detectors_key", _detectors_key(self))
         if self.learn_count < self.min_points:
             raise ValueError(
                 f"learn_count ({self.learn_count}) is below min_points ({self.min_points}): "
@@ -76,6 +87,13 @@ class MonitorSettings:
             )
         if self.max_gap is not None and self.max_gap <= 0:
             raise ValueError(f"max_gap must be positive seconds, got {self.max_gap}")
+
+    def build_detectors(self) -> tuple[tuple[Detector, ...], tuple[Detector, ...]]:
+        """Fresh detectors for one stream: (X chart, MR chart), each in selection order."""
+        return (
+            tuple([spec.build() for spec in self.x_specs]),
+            tuple([spec.build() for spec in self.mr_specs]),
+        )
 
     def fit(self, values: list[float]) -> Baseline:
         """Fit a baseline with these settings (phase I)."""
@@ -128,12 +146,13 @@ class StreamMonitor:
         self._last_time: float | None = None
         self._last_value: float | None = None
         self._last_seq: int | None = None
-        self._learning: list[float] = []
+        self._learning: list[float] | None = []
+        """Phase I readings; None once a baseline is locked (nothing left to learn)."""
         self.last_fit_error: str | None = None
         self.baseline: Baseline | None = None
         self.baseline_version = 0
-        self._x_detectors: list[Detector] = []
-        self._mr_detectors: list[Detector] = []
+        self._x_detectors: tuple[Detector, ...] = ()
+        self._mr_detectors: tuple[Detector, ...] = ()
         self._center = 0.0
         self._sigma = 1.0
         if baseline is not None:
@@ -163,10 +182,8 @@ class StreamMonitor:
         self.baseline_version = self.baseline_version + 1 if version is None else version
         self._center = baseline.center
         self._sigma = baseline.sigma
-        self._learning = []
-        detectors = build_detectors(self.settings.rule_specs)
-        self._x_detectors = [d for d in detectors if d.chart == "x"]
-        self._mr_detectors = [d for d in detectors if d.chart == "mr"]
+        self._learning = None
+        self._x_detectors, self._mr_detectors = self.settings.build_detectors()
 
     # -- the hot path ---------------------------------------------------------------------------
 
@@ -193,15 +210,16 @@ class StreamMonitor:
         """Apply one reading; a refused reading leaves the monitor exactly as it was."""
         reason = self._refusal(reading)
         if reason is not None:
-            return Outcome(reading, accepted=False, reason=reason, phase=self.phase)
+            return Outcome(reading, False, reason, None, self.phase)
 
         value = reading.value
         index = self.count
+        last_value = self._last_value
         mr: float | None = None
-        if self._last_value is not None:
+        if last_value is not None:
             gap = self.settings.max_gap
             if gap is None or reading.time - self._last_time <= gap:  # type: ignore[operator]
-                mr = abs(value - self._last_value)
+                mr = abs(value - last_value)
         self.count = index + 1
         self._last_time = reading.time
         self._last_value = value
@@ -212,29 +230,23 @@ class StreamMonitor:
             return self._learn(reading, index, mr)
 
         z = (value - self._center) / self._sigma
-        signals: list[StreamSignal] = []
+        signals: tuple[StreamSignal, ...] = ()  # most readings raise none: no list to build
         for detector in self._x_detectors:
             hit = detector.update(index, z)
             if hit is not None:
-                signals.append(self._place(hit, reading, mr))
+                signals += (self._place(hit, reading, mr),)
         if mr is not None:
             mr_sigma = mr / self._sigma
             for detector in self._mr_detectors:
                 hit = detector.update(index, mr_sigma)
                 if hit is not None:
-                    signals.append(self._place(hit, reading, mr))
-        return Outcome(
-            reading,
-            accepted=True,
-            index=index,
-            phase="monitoring",
-            z=z,
-            mr=mr,
-            signals=tuple(signals),
-        )
+                    signals += (self._place(hit, reading, mr),)
+        # Positional: Outcome(reading, accepted, reason, index, phase, z, mr, signals)
+        return Outcome(reading, True, None, index, "monitoring", z, mr, signals)
 
     def _learn(self, reading: Reading, index: int, mr: float | None) -> Outcome:
         learning = self._learning
+        assert learning is not None
         learning.append(reading.value)
         settings = self.settings
         if len(learning) < settings.learn_count:
@@ -285,7 +297,13 @@ class StreamMonitor:
     # -- checkpoints ----------------------------------------------------------------------------
 
     def snapshot(self) -> dict[str, Any]:
-        """Plain JSON-ready state; :meth:`restore` continues exactly where this one stopped."""
+        """Plain JSON-ready state; :meth:`restore` continues exactly where this one stopped.
+
+        Detectors are kept as their state values only (``states``, X chart first, then MR);
+        their parameters are named once, in ``rules`` (the settings' :attr:`~MonitorSettings.
+        detectors_key`), since every stream under the same settings has the same ones.
+        """
+        locked = self.baseline is not None
         return {
             "format": SNAPSHOT_FORMAT,
             "stream": self.stream,
@@ -293,39 +311,74 @@ class StreamMonitor:
             "last_time": self._last_time,
             "last_value": self._last_value,
             "last_seq": self._last_seq,
-            "learning": list(self._learning),
-            "baseline": None if self.baseline is None else self.baseline.to_dict(),
+            "learning": [] if self._learning is None else list(self._learning),
+            "baseline": self.baseline.to_dict() if locked else None,  # type: ignore[union-attr]
             "baseline_version": self.baseline_version,
-            "detectors": [d.snapshot() for d in (*self._x_detectors, *self._mr_detectors)],
+            "rules": self.settings.detectors_key if locked else None,
+            "states": [d.state() for d in (*self._x_detectors, *self._mr_detectors)],  # type: ignore[attr-defined]
         }
 
     @classmethod
     def restore(cls, data: dict[str, Any], settings: MonitorSettings) -> StreamMonitor:
-        """Rebuild a monitor from :meth:`snapshot`. ``settings`` come from the current config;
-        when their rules differ from the snapshot's detectors, detectors restart (and say so by
-        their fresh state) rather than mixing counts from different rules."""
-        if data.get("format") != SNAPSHOT_FORMAT:
+        """Rebuild a monitor from :meth:`snapshot` (this format or format 1). ``settings`` come
+        from the current config; when their detectors differ from the snapshot's, detectors
+        restart (and say so by their fresh state) rather than mixing counts from different
+        rules."""
+        found = data.get("format")
+        if found not in (1, SNAPSHOT_FORMAT):
             raise ValueError(
-                f"checkpoint for stream {data.get('stream')!r} has format {data.get('format')!r}, "
-                f"this version reads format {SNAPSHOT_FORMAT}"
+                f"checkpoint for stream {data.get('stream')!r} has format {found!r}, "
+                f"this version reads formats 1 and {SNAPSHOT_FORMAT}"
             )
         monitor = cls(data["stream"], settings)
         monitor.count = data["count"]
         monitor._last_time = data["last_time"]
         monitor._last_value = data["last_value"]
         monitor._last_seq = data["last_seq"]
-        if data["baseline"] is not None:
-            monitor.set_baseline(Baseline.from_dict(data["baseline"]), data["baseline_version"])
-            saved = data["detectors"]
-            fresh = [*monitor._x_detectors, *monitor._mr_detectors]
-            if [s.get("rule") for s in saved] == [d.rule for d in fresh] and all(
-                _same_params(s, d.snapshot()) for s, d in zip(saved, fresh, strict=True)
-            ):
-                restored = [type(d).from_snapshot(s) for d, s in zip(fresh, saved, strict=True)]
-                monitor._x_detectors = [d for d in restored if d.chart == "x"]
-                monitor._mr_detectors = [d for d in restored if d.chart == "mr"]
-        monitor._learning = list(data["learning"])
+        if data["baseline"] is None:
+            monitor._learning = list(data["learning"])
+            return monitor
+        monitor.set_baseline(Baseline.from_dict(data["baseline"]), data["baseline_version"])
+        if found == 1:
+            monitor._restore_format_1_detectors(data["detectors"])
+        elif data["rules"] == settings.detectors_key:
+            # Every detector's state ends with the position of the last reading it saw. JSON
+            # gives each its own int object (28 bytes); the live monitor shares one.
+            position = monitor.count - 1
+            fresh = (*monitor._x_detectors, *monitor._mr_detectors)
+            for detector, values in zip(fresh, data["states"], strict=True):
+                if values and values[-1] == position:
+                    values = [*values[:-1], position]
+                detector.set_state(values)  # type: ignore[attr-defined]
         return monitor
+
+    def _restore_format_1_detectors(self, saved: list[dict[str, Any]]) -> None:
+        """Format 1 kept each detector's full snapshot, parameters included."""
+        fresh = [*self._x_detectors, *self._mr_detectors]
+        if [s.get("rule") for s in saved] == [d.rule for d in fresh] and all(
+            _same_params(s, d.snapshot()) for s, d in zip(saved, fresh, strict=True)
+        ):
+            restored = [type(d).from_snapshot(s) for d, s in zip(fresh, saved, strict=True)]
+            split = len(self._x_detectors)
+            self._x_detectors, self._mr_detectors = tuple(restored[:split]), tuple(restored[split:])
+
+
+def _chart(spec: RuleSpec) -> str:
+    return DETECTORS[spec.rule].chart
+
+
+def _detectors_key(settings: MonitorSettings) -> str:
+    """``rule(param=value, ...)`` for every detector, defaults included, X chart first.
+
+    >>> _detectors_key(MonitorSettings(rules="mr-beyond-limit, beyond-limits"))
+    'beyond-limits(k=3.0), mr-beyond-limit(limit=3.6858865663777776)'
+    """
+    x, mr = settings.build_detectors()
+    described = []
+    for detector in (*x, *mr):
+        params = sorted(detector.snapshot()["params"].items())
+        described.append(f"{detector.rule}({', '.join(f'{k}={v!r}' for k, v in params)})")
+    return ", ".join(described)
 
 
 def _same_params(saved: dict[str, Any], fresh: dict[str, Any]) -> bool:

@@ -62,7 +62,10 @@ class Service:
     def __init__(self, config: Config, clock: Callable[[], float] = time.time) -> None:
         self.config = config
         self.clock = clock
-        self.intake: queue.Queue[Any] = queue.Queue()
+        # SimpleQueue is written in C, without Queue's Python-level locks and conditions: a put
+        # and a get cost about a twentieth as much, paid for every reading. Nothing here needs
+        # Queue's size bound or task tracking.
+        self.intake: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self.metrics = Metrics()
         self._stopping = threading.Event()
         self.mqtt: dict[str, MqttSource] = {}
@@ -226,7 +229,8 @@ class Service:
     # -- the worker ---
 
     def run(self) -> None:
-        """Process intake until asked to stop."""
+        """Process intake until asked to stop; then write every stream's checkpoint, so the
+        next start restores without applying any reading again."""
         while not self._stopping.is_set():
             batch, jobs = self._take()
             if batch:
@@ -236,6 +240,10 @@ class Service:
                     continue
                 self._run_job(job)
         log.info("stopping: the last batch is committed and acknowledged")
+        assert self.pipeline is not None
+        if not self.pipeline.broken:
+            saved = self.pipeline.checkpoint_all(self.clock())
+            log.info("checkpoints of %d streams written", saved)
 
     def _take(self) -> tuple[list[Delivery], list[Job]]:
         cfg = self.config.service
@@ -245,7 +253,11 @@ class Service:
             first = self.intake.get(timeout=0.5)
         except queue.Empty:
             return batch, jobs
-        deadline = time.monotonic() + cfg.batch_wait
+        # batch_wait counts from when the first reading arrived, not from when the worker got
+        # to it: a reading that queued while the previous batch was being committed has
+        # already waited, and waiting the whole batch_wait again would double its delay.
+        waited = self.clock() - first.received_at if isinstance(first, Delivery) else 0.0
+        deadline = time.monotonic() + min(cfg.batch_wait, max(0.0, cfg.batch_wait - waited))
         item = first
         while True:
             if isinstance(item, Job):
@@ -325,6 +337,8 @@ class Service:
                 log.info("stream %s: adopted a new stored baseline", stream)
         elif job.kind == "retention":
             cfg = self.config.store
+            # Readings newer than a stream's checkpoint are part of its state until the next one.
+            self.pipeline.checkpoint_all(now)
             self.store.prune_readings(
                 now, max_age_s=cfg.keep_readings_for, max_per_stream=cfg.keep_readings_per_stream
             )

@@ -44,7 +44,7 @@ from typing import Any, Literal
 
 import sqlite_utils
 
-from limitwatch.model import Outcome, StreamSignal
+from limitwatch.model import Outcome, Reading, StreamSignal
 
 AlertState = Literal["open", "acknowledged", "cleared"]
 ALERT_STATES: tuple[str, ...] = ("open", "acknowledged", "cleared")
@@ -801,6 +801,20 @@ class Store:
                 deleted += cur.rowcount
         return deleted
 
+    def readings_after(self, stream: str, time: float | None) -> list[Reading]:
+        """The stream's kept readings later than ``time`` (all when None), oldest first, as
+        the engine first saw them: what a monitor restored from an older checkpoint needs
+        again to stand where the last commit left it."""
+        rows = self.db.conn.execute(
+            "SELECT time, value, seq FROM readings WHERE stream = ? AND time > ? ORDER BY time",
+            (stream, -math.inf if time is None else time),
+        )
+        return [Reading(stream, t, v, seq) for t, v, seq in rows]
+
+    def stream_last_times(self) -> dict[str, float | None]:
+        """Each stream's latest committed reading time."""
+        return dict(self.db.conn.execute("SELECT id, last_time FROM streams"))
+
     def streams(self, *, glob: str | None = None) -> list[StreamRow]:
         """Every stream heard from (matching ``glob`` on the id when given), by id."""
         if glob is None:
@@ -824,10 +838,15 @@ class Store:
             )
 
     def load_checkpoints(self) -> dict[str, dict[str, Any]]:
-        return {
-            r["stream"]: json.loads(r["state_json"])
-            for r in self._all("SELECT stream, state_json FROM checkpoints ORDER BY stream")
-        }
+        return dict(self.iter_checkpoints())
+
+    def iter_checkpoints(self) -> Iterator[tuple[str, dict[str, Any]]]:
+        """``(stream, state)`` by stream, one row at a time: a restart of a large site then
+        never holds every parsed checkpoint at once."""
+        rows = self.db.conn.execute("SELECT stream, state_json FROM checkpoints ORDER BY stream")
+        loads = json.loads
+        for stream, state_json in rows:
+            yield stream, loads(state_json)
 
     def load_checkpoint(self, stream: str) -> dict[str, Any] | None:
         row = self._one("SELECT state_json FROM checkpoints WHERE stream = ?", (stream,))

@@ -29,7 +29,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import paho.mqtt.client as mqtt
 from paho.mqtt.packettypes import PacketTypes
@@ -38,10 +38,10 @@ from paho.mqtt.properties import Properties
 log = logging.getLogger("limitwatch.mqtt")
 
 
-@dataclass(frozen=True, slots=True)
-class Delivery:
+class Delivery(NamedTuple):
     """One message as received; ``mid`` is only good for acknowledging it (packet ids are
-    reused, so they are never a deduplication key)."""
+    reused, so they are never a deduplication key). A named tuple: one is made per message on
+    the network thread, and a tuple is the cheapest immutable record to make."""
 
     source: str
     topic: str
@@ -84,7 +84,7 @@ class MqttSource:
     def __init__(
         self,
         settings: MqttSettings,
-        intake: queue.Queue[Any],
+        intake: queue.SimpleQueue[Any],
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.settings = settings
@@ -214,15 +214,16 @@ class MqttSource:
 
     def _on_message(self, client, userdata, message) -> None:
         try:
+            # Delivery(source, topic, payload, received_at, mid, qos, retained)
             self._intake.put_nowait(
                 Delivery(
-                    source=self.name,
-                    topic=message.topic,
-                    payload=message.payload,
-                    received_at=self._clock(),
-                    mid=message.mid,
-                    qos=message.qos,
-                    retained=bool(message.retain),
+                    self.name,
+                    message.topic,
+                    message.payload,
+                    self._clock(),
+                    message.mid,
+                    message.qos,
+                    bool(message.retain),
                 )
             )
         except Exception:

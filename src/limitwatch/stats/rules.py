@@ -58,7 +58,7 @@ import inspect
 import math
 import operator
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, ClassVar
@@ -149,9 +149,22 @@ class _Rule:
                 f"{cls.rule} snapshot state needs keys {sorted(keys)}, got {sorted(state)}"
             )
         det = cls(**data["params"])
-        for name in cls._state:
-            setattr(det, name, state[name.lstrip("_")])
+        det.set_state([state[name.lstrip("_")] for name in cls._state])
         return det
+
+    def state(self) -> list[Any]:
+        """The state values in ``_state`` order, the position of the last reading seen last
+        (empty for a rule without state): the compact form a stream's checkpoint keeps. The
+        parameters are the stream's settings, so the checkpoint does not repeat them."""
+        return [getattr(self, name) for name in self._state]
+
+    def set_state(self, values: Sequence[Any]) -> None:
+        """Load :meth:`state` output (e.g. read back from JSON) into this detector."""
+        names = self._state
+        if len(values) != len(names):
+            raise ValueError(f"{self.rule} state needs {len(names)} values, got {len(values)}")
+        for name, value in zip(names, values):  # noqa: B905 -- lengths checked above
+            setattr(self, name, value)
 
     def __repr__(self) -> str:
         args = ", ".join(f"{name}={getattr(self, name)!r}" for name in self._params)

@@ -31,7 +31,9 @@ control charts.
 
 from __future__ import annotations
 
+import functools
 import math
+from collections.abc import Sequence
 from typing import Any, ClassVar
 
 from limitwatch.stats.signal import Chart, Signal
@@ -63,6 +65,35 @@ def _load(cls: Any, data: dict[str, Any], state_keys: tuple[str, ...]) -> Any:
     if set(state) != set(state_keys):
         raise ValueError(f"{cls.rule} snapshot state needs keys {sorted(state_keys)}")
     return cls(**data["params"]), state
+
+
+@functools.lru_cache(maxsize=256)
+def _ewma_constants(lam: float, L: float) -> tuple[float, float, float, int, int]:
+    """``(keep, var, asymptotic limit, weight span, settled n)`` for one ``(lam, L)``.
+
+    Computed once per parameter pair and shared, so that each stream's EWMA neither repeats the
+    logarithms at construction (a restart builds one per stream) nor keeps its own copies.
+    """
+    keep = 1.0 - lam
+    var = lam / (2.0 - lam)
+    return keep, var, L * math.sqrt(var), _weight_span(keep), _settled_after(keep)
+
+
+def _settled_after(keep: float) -> int:
+    """First ``n`` from which ``1 - keep^(2n)`` rounds to exactly 1.0.
+
+    From there on the exact start-up limit ``L * sqrt(var * (1 - keep^(2n)))`` is bit for bit
+    the asymptotic ``L * sqrt(var)``, and stays so (``keep^(2n)`` only shrinks), so
+    :meth:`Ewma.update` may skip the power and the square root without changing any result.
+    """
+    if keep == 0.0:
+        return 1
+    n = max(1, math.ceil(math.log(2.0**-54) / (2.0 * math.log(keep))))
+    while n > 1 and 1.0 - keep ** (2 * (n - 1)) == 1.0:  # guard the logarithms' rounding
+        n -= 1
+    while 1.0 - keep ** (2 * n) != 1.0:
+        n += 1
+    return n
 
 
 def _weight_span(keep: float) -> int:
@@ -114,6 +145,7 @@ class Ewma:
         "_keep",
         "_last",
         "_n",
+        "_settled",
         "_span",
         "_var",
         "_w",
@@ -129,10 +161,10 @@ class Ewma:
         if not isinstance(exact_startup, bool):
             raise ValueError(f"exact_startup must be true or false, got {exact_startup!r}")
         self.exact_startup = exact_startup
-        self._keep = 1.0 - self.lam
-        self._var = self.lam / (2.0 - self.lam)
-        self._asymptotic = self.L * math.sqrt(self._var)
-        self._span = _weight_span(self._keep)
+        constants = _ewma_constants(self.lam, self.L)
+        self._keep, self._var, self._asymptotic, self._span, self._settled = constants
+        if not exact_startup:
+            self._settled = 0  # the asymptotic limit from the first reading
         self.reset()
 
     def limit(self, n: int) -> float:
@@ -142,14 +174,16 @@ class Ewma:
         return self.L * math.sqrt(self._var * (1.0 - self._keep ** (2 * n)))
 
     def update(self, index: int, value: float) -> Signal | None:
-        _check(self.rule, self._last, index, value)
+        last = self._last
+        if not _isfinite(value) or (last is not None and index != last + 1):
+            _check(self.rule, last, index, value)
         self._last = index
         w = self.lam * value + self._keep * self._w
         n = self._n + 1
-        if self.exact_startup:
-            limit = self.L * math.sqrt(self._var * (1.0 - self._keep ** (2 * n)))
-        else:
+        if n >= self._settled:  # also every n when exact_startup is off
             limit = self._asymptotic
+        else:
+            limit = self.L * math.sqrt(self._var * (1.0 - self._keep ** (2 * n)))
         if w > limit or w < -limit:
             self._w, self._n = 0.0, 0
             side, bound = ("upper", limit) if w > 0 else ("lower", -limit)
@@ -172,8 +206,18 @@ class Ewma:
     @classmethod
     def from_snapshot(cls, data: dict[str, Any]) -> Ewma:
         det, state = _load(cls, data, ("w", "n", "last"))
-        det._w, det._n, det._last = float(state["w"]), int(state["n"]), state["last"]
+        det.set_state([state["w"], state["n"], state["last"]])
         return det
+
+    def state(self) -> list[Any]:
+        """``[w, n, last]``, ``last`` the position of the last reading seen: the compact form
+        a stream's checkpoint keeps."""
+        return [self._w, self._n, self._last]
+
+    def set_state(self, values: Sequence[Any]) -> None:
+        """Load :meth:`state` output (e.g. read back from JSON)."""
+        w, n, last = values
+        self._w, self._n, self._last = float(w), int(n), last
 
     def __repr__(self) -> str:
         return f"Ewma(lam={self.lam!r}, L={self.L!r}, exact_startup={self.exact_startup!r})"
@@ -218,7 +262,9 @@ class Cusum:
         self.reset()
 
     def update(self, index: int, value: float) -> Signal | None:
-        _check(self.rule, self._last, index, value)
+        last = self._last
+        if not _isfinite(value) or (last is not None and index != last + 1):
+            _check(self.rule, last, index, value)
         self._last = index
         up = self._up + value - self.k
         down = self._down - value - self.k
@@ -260,11 +306,21 @@ class Cusum:
 
     @classmethod
     def from_snapshot(cls, data: dict[str, Any]) -> Cusum:
-        det, state = _load(cls, data, ("up", "down", "up_len", "down_len", "last"))
-        det._up, det._down = float(state["up"]), float(state["down"])
-        det._up_len, det._down_len = int(state["up_len"]), int(state["down_len"])
-        det._last = state["last"]
+        keys = ("up", "down", "up_len", "down_len", "last")
+        det, state = _load(cls, data, keys)
+        det.set_state([state[key] for key in keys])
         return det
+
+    def state(self) -> list[Any]:
+        """``[up, down, up_len, down_len, last]``, ``last`` the position of the last reading
+        seen: the compact form a stream's checkpoint keeps."""
+        return [self._up, self._down, self._up_len, self._down_len, self._last]
+
+    def set_state(self, values: Sequence[Any]) -> None:
+        """Load :meth:`state` output (e.g. read back from JSON)."""
+        up, down, up_len, down_len, last = values
+        self._up, self._down = float(up), float(down)
+        self._up_len, self._down_len, self._last = int(up_len), int(down_len), last
 
     def __repr__(self) -> str:
         return f"Cusum(k={self.k!r}, h={self.h!r}, headstart={self.headstart!r})"
