@@ -551,6 +551,7 @@ def _print_signals(
 
 # Command groups kept in their own modules register themselves on ``main`` when imported.
 from limitwatch import (  # noqa: E402,F401
+    cli_bench,
     cli_charts,
     cli_config,
     cli_demo,

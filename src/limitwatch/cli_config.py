@@ -208,7 +208,7 @@ def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:
         "store",
         [
             f"{store.path}",
-            f"stream state checkpointed with every batch; readings kept {kept}",
+            f"state checkpointed every 30 s and at stop; readings kept {kept}",
         ],
     )
     service = config.service

@@ -1,0 +1,62 @@
+"""``limitwatch bench``: throughput, delay and memory measured on this machine.
+
+Thin: :mod:`limitwatch.bench` does the measuring; this prints each figure with its conditions,
+or one JSON document for comparing machines and versions.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+
+import click
+
+from limitwatch.bench import PARTS, describe, machine, run
+from limitwatch.cli import main
+
+
+@main.command("bench")
+@click.option("--quick", is_flag=True, help="Smaller runs: the whole bench in about a minute.")
+@click.option("--json", "as_json", is_flag=True, help="One JSON document instead of text.")
+@click.option(
+    "--only",
+    type=click.Choice(PARTS),
+    help="Measure one part only: engine, file, mqtt (with the bare subscriber), latency, "
+    "or memory (with restore time).",
+)
+def bench_cmd(quick: bool, as_json: bool, only: str | None) -> None:
+    """Measure readings per second, publish-to-commit delay and memory per stream here.
+
+    Every figure is the median of repeated runs and is printed with the conditions it was
+    measured under (streams, rules, batch settings, broker). The MQTT parts start a private
+    Mosquitto on a free 127.0.0.1 port and are skipped with a message when it is not installed.
+    Targets are shown for comparison; nothing fails when one is missed.
+
+    \b
+    Examples:
+      limitwatch bench --quick
+      limitwatch bench --only engine --json > engine.json
+    """
+
+    def progress(text: str) -> None:
+        click.echo(text, err=True)
+
+    figures = run(only=only, quick=quick, progress=progress)
+    if as_json:
+        document = {
+            "machine": machine(),
+            "quick": quick,
+            "figures": [f.to_dict() for f in figures],
+        }
+        json.dump(document, sys.stdout, indent=2)
+        sys.stdout.write("\n")
+        return
+    info = machine()
+    click.echo(
+        f"limitwatch bench on {info['system']} {info['machine']}, {info['cpus']} CPUs, "
+        f"Python {info['python']} ({info['implementation']}), "
+        f"load average {info['load_average_1m']}{' (quick sizes)' if quick else ''}"
+    )
+    for figure in figures:
+        for line in describe(figure):
+            click.echo(line)
