@@ -486,23 +486,23 @@ class Alert:
         return cls(signal=json.loads(row["signal_json"]), **fields)
 
 
-_ALERT_MUTABLE = frozenset(
-    {
-        "severity",
-        "last_time",
-        "last_index",
-        "last_value",
-        "signal_count",
-        "quiet_count",
-        "seen_time",
-        "signal",
-        "notified_at",
-        "last_notice_at",
-        "reminders",
-        "escalated_at",
-        "suppressed_until",
-    }
+ALERT_BOOKKEEPING = (
+    "last_time",
+    "last_index",
+    "last_value",
+    "signal_count",
+    "quiet_count",
+    "seen_time",
+    "signal",
+    "notified_at",
+    "last_notice_at",
+    "reminders",
+    "escalated_at",
+    "suppressed_until",
 )
+"""Alert fields that change while an alert lives (its state changes go through named methods)."""
+
+_ALERT_MUTABLE = frozenset({"severity", *ALERT_BOOKKEEPING})
 """Columns ``update_alert`` may change. State changes go through the named methods, which also
 write the event log."""
 

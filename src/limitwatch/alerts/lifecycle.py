@@ -48,7 +48,7 @@ from typing import Any, Literal
 from limitwatch import SAFETY_CAUTION
 from limitwatch.durations import format_duration
 from limitwatch.model import Outcome, StreamSignal
-from limitwatch.store import Alert, Shelf, Store, signal_context
+from limitwatch.store import ALERT_BOOKKEEPING, Alert, Shelf, Store, signal_context
 
 NoticeKind = Literal["opened", "reminder", "escalation"]
 SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
@@ -407,20 +407,7 @@ class BookReport:
     suppressed: int = 0
 
 
-_BOOKKEEPING = (
-    "last_time",
-    "last_index",
-    "last_value",
-    "signal_count",
-    "quiet_count",
-    "seen_time",
-    "signal",
-    "notified_at",
-    "last_notice_at",
-    "reminders",
-    "escalated_at",
-    "suppressed_until",
-)
+_BOOKKEEPING = ALERT_BOOKKEEPING
 
 
 class AlertBook:
