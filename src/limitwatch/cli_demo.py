@@ -199,6 +199,14 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
         return True
 
     try:
+        if use_mqtt:
+            # connect_async returns at once; readings published before the subscription exists
+            # would be dropped by the broker (no session yet), so wait for it.
+            _wait_for(
+                lambda: alive() and all(c.subscribed.is_set() for c in service.mqtt.values()),
+                20,
+                "the demo's service to subscribe on the private broker",
+            )
         feed = _mqtt_feeder(config) if use_mqtt else _file_feeder(root)
         size = max(1, len(rows) // SLICES)
         for start in range(0, len(rows), size):
@@ -207,14 +215,16 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
             if not use_mqtt:
                 service.intake.put(Job("poll-files", "quillmoor-export"))
             fed = start + len(chunk)
-            _wait_for(lambda n=fed: alive() and _stored(store_path) >= n, 20)
+            _wait_for(
+                lambda n=fed: alive() and _stored(store_path) >= n, 20, f"{fed} readings stored"
+            )
             echo(
                 f"-- fed {min(start + size, len(rows))}/{len(rows)} readings, "
                 f"up to {format_time(chunk[-1][1])}"
             )
             time.sleep(pace)
         service.intake.put(Job("stale-check"))
-        _wait_for(lambda: alive() and _stale_alerts(store_path) > 0, 10)
+        _wait_for(lambda: alive() and _stale_alerts(store_path) > 0, 10, "the stale check")
         time.sleep(max(pace, 1.0))  # let the console notifier print the last alerts
     finally:
         service.request_stop()
@@ -277,12 +287,13 @@ def _stale_alerts(db: Path) -> int:
         conn.close()
 
 
-def _wait_for(check: Callable[[], bool], timeout: float) -> None:
+def _wait_for(check: Callable[[], bool], timeout: float, what: str) -> None:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         if check():
             return
         time.sleep(0.05)
+    raise click.ClickException(f"the demo gave up after {timeout:g} s waiting for {what}")
 
 
 def _summary(root: Path, db: Path, echo: Callable[[str], None]) -> None:
