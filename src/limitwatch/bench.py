@@ -43,15 +43,11 @@ from __future__ import annotations
 
 import contextlib
 import gc
-import getpass
 import json
 import multiprocessing
 import os
 import platform
-import shutil
-import socket
 import statistics
-import subprocess
 import tempfile
 import threading
 import time
@@ -62,6 +58,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
+from limitwatch.localbroker import mosquitto_path, private_broker
 
 ALL_DETECTORS = "nelson,ewma,cusum"
 """Every run test of Nelson's eight, the moving-range limit, EWMA and CUSUM."""
@@ -435,54 +433,6 @@ def measure_file(sizes: Sizes, workdir: Path) -> list[Figure]:
 
 
 # --------------------------------------------------------------------------- MQTT
-
-
-def mosquitto_path() -> str | None:
-    return shutil.which("mosquitto") or (
-        "/usr/sbin/mosquitto" if Path("/usr/sbin/mosquitto").exists() else None
-    )
-
-
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
-@contextlib.contextmanager
-def private_broker(folder: Path, queued: int) -> Iterator[int]:
-    """A Mosquitto on a free loopback port that may queue ``queued`` messages per session."""
-    exe = mosquitto_path()
-    if exe is None:
-        raise RuntimeError("mosquitto is not installed")
-    folder.mkdir(parents=True, exist_ok=True)
-    port = _free_port()
-    conf = folder / "mosquitto.conf"
-    conf.write_text(
-        f"listener {port} 127.0.0.1\nallow_anonymous true\nuser {getpass.getuser()}\n"
-        f"max_queued_messages {queued}\nmax_inflight_messages 1000\n"
-        "log_dest stderr\nlog_type error\n"
-    )
-    with (folder / "mosquitto.log").open("ab") as log:
-        broker = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=log)
-    try:
-        deadline = time.monotonic() + 10
-        while True:
-            try:
-                socket.create_connection(("127.0.0.1", port), timeout=0.2).close()
-                break
-            except OSError:
-                if time.monotonic() > deadline or broker.poll() is not None:
-                    raise RuntimeError(f"mosquitto did not start; see {folder}") from None
-                time.sleep(0.05)
-        yield port
-    finally:
-        broker.terminate()
-        try:
-            broker.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            broker.kill()
-            broker.wait()
 
 
 def _paho() -> Any:

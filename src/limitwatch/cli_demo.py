@@ -11,8 +11,6 @@ from __future__ import annotations
 
 import json
 import shutil
-import socket
-import subprocess
 import sys
 import threading
 import time
@@ -26,6 +24,7 @@ from limitwatch import SAFETY_CAUTION
 from limitwatch.cli import main
 from limitwatch.demo import LEARN, PLANT, STREAMS, generate
 from limitwatch.ingest.timeparse import format_time
+from limitwatch.localbroker import mosquitto_path, private_broker
 
 DEMO_SEED = 3
 """A seed whose quiet stretches happen to raise no false alarm, so the story stays readable.
@@ -61,44 +60,6 @@ time_format = "epoch_s"
 
 """
     return text[:start] + source + text[end:]
-
-
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
-def _start_broker(folder: Path) -> tuple[subprocess.Popen[bytes], int]:
-    exe = shutil.which("mosquitto") or (
-        "/usr/sbin/mosquitto" if Path("/usr/sbin/mosquitto").exists() else None
-    )
-    if exe is None:
-        raise click.ClickException(
-            "--mqtt needs Mosquitto on this machine (Debian/Ubuntu: apt-get install mosquitto)"
-        )
-    port = _free_port()
-    conf = folder / "mosquitto.conf"
-    import getpass
-
-    conf.write_text(
-        f"listener {port} 127.0.0.1\nallow_anonymous true\nuser {getpass.getuser()}\n"
-        "max_queued_messages 100000\n"
-    )
-    log = (folder / "mosquitto.log").open("ab")
-    broker = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=log)
-    log.close()
-    deadline = time.monotonic() + 10
-    while time.monotonic() < deadline:
-        try:
-            socket.create_connection(("127.0.0.1", port), timeout=0.2).close()
-            return broker, port
-        except OSError:
-            time.sleep(0.05)
-    broker.terminate()
-    raise click.ClickException(
-        f"the demo's Mosquitto did not start; see {folder / 'mosquitto.log'}"
-    )
 
 
 @main.command("demo")
@@ -140,18 +101,20 @@ def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
             )
         shutil.rmtree(root)
     (root / "data").mkdir(parents=True)
-    broker = None
-    if use_mqtt:
-        broker, port = _start_broker(root)
-        (root / "demo.toml").write_text(_mqtt_config_text(port))
-    else:
+    if not use_mqtt:
         (root / "demo.toml").write_text(demo_config_text())
+        run_demo(root, use_mqtt=False, pace=pace, echo=click.echo)
+        return
+    if mosquitto_path() is None:
+        raise click.ClickException(
+            "--mqtt needs Mosquitto on this machine (Debian/Ubuntu: apt-get install mosquitto)"
+        )
     try:
-        run_demo(root, use_mqtt=use_mqtt, pace=pace, echo=click.echo)
-    finally:
-        if broker is not None:
-            broker.terminate()
-            broker.wait(timeout=10)
+        with private_broker(root / "broker", queued=100_000) as port:
+            (root / "demo.toml").write_text(_mqtt_config_text(port))
+            run_demo(root, use_mqtt=True, pace=pace, echo=click.echo)
+    except RuntimeError as exc:  # the broker would not start
+        raise click.ClickException(str(exc)) from None
 
 
 def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], None]) -> None:
