@@ -64,6 +64,29 @@ class ServiceProcess:
     def logs(self) -> str:
         return self.log.read_text(errors="replace") if self.log.exists() else ""
 
+    def children(self) -> list[int]:
+        """Process ids of the service's MQTT connection processes."""
+        assert self.process is not None
+        found: list[int] = []
+        for task in Path(f"/proc/{self.process.pid}/task").glob("*/children"):
+            for pid in task.read_text().split():
+                try:
+                    cmdline = Path(f"/proc/{pid}/cmdline").read_bytes()
+                except FileNotFoundError:
+                    continue
+                if b"limitwatch.ingest.mqtt_process" in cmdline:
+                    found.append(int(pid))
+        return found
+
+
+def process_gone(pid: int) -> bool:
+    """True once ``pid`` has exited (a zombie waiting to be reaped counts as exited)."""
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except (FileNotFoundError, ProcessLookupError):
+        return True
+    return stat.rsplit(")", 1)[1].split()[0] in {"Z", "X"}
+
 
 def query(db: Path, sql: str, params: tuple = ()) -> list[tuple]:
     """Read the service's database the way an operator's tool would, read-only, while it runs."""

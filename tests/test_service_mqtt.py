@@ -6,6 +6,8 @@ Readings are JSON {"v": value, "t": epoch seconds, "seq": n} on plant/<line>/<se
 from __future__ import annotations
 
 import json
+import os
+import signal
 import threading
 
 import numpy as np
@@ -21,6 +23,7 @@ from tests.service_harness import (
     checkpoints,
     count,
     mqtt_config,
+    process_gone,
     query,
     wait_until,
 )
@@ -111,8 +114,14 @@ def test_kill_9_repeatedly_loses_nothing_and_applies_each_reading_once(broker, t
             )
             if count(db, "readings") >= 3000 and kills >= 3:
                 break
+            connection = svc.children()
+            assert connection, "each MQTT source runs in a connection process"
             svc.kill()
             kills += 1
+            # A killed service's connection process leaves too, or it would fight the next
+            # service for the client id.
+            for pid in connection:
+                wait_until(lambda pid=pid: process_gone(pid), timeout=10, what=f"{pid} to exit")
             svc = ServiceProcess(config).start()
             wait_until(
                 lambda svc=svc, kills=kills: svc.logs().count("connected to") > kills,
@@ -154,6 +163,37 @@ def test_kill_9_repeatedly_loses_nothing_and_applies_each_reading_once(broker, t
         event = r.headers["X-Limitwatch-Event"]
         assert json.loads(bodies.setdefault(event, r.body)) == json.loads(r.body)
     assert len(ids) - len(set(ids)) <= kills
+
+
+def test_a_killed_connection_process_is_replaced_and_nothing_is_lost(broker, tmp_path):
+    """The MQTT client runs in a connection process of its own. If that process dies, the
+    service says so, starts a new one, and every reading still lands exactly once."""
+    config = mqtt_config(tmp_path, broker.port)
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: service_up(svc), what="connected")
+        messages, _ = reading_messages(["line-1/bearing-temp", "line-2/bearing-temp"], 300)
+        pub = Publisher(broker.port)
+        pub.send_all(messages[:200])
+        wait_until(lambda: count(db, "readings") >= 100, what="first readings")
+        (first,) = svc.children()
+        os.kill(first, signal.SIGKILL)
+        wait_until(lambda: "connection process exited unexpectedly" in svc.logs(), what="log")
+        wait_until(lambda: svc.logs().count("connected to") >= 2, what="a new connection")
+        pub.send_all(messages[200:])
+        pub.close()
+        wait_until(lambda: count(db, "readings") == 600, what="all 600 readings")
+        assert svc.alive()
+        (second,) = svc.children()
+        assert second != first and process_gone(first)
+        distinct = "SELECT count(DISTINCT stream || ':' || seq) FROM readings"
+        assert query(db, distinct)[0][0] == 600
+        reasons = {r[0].split(":")[0] for r in query(db, "SELECT reason FROM dead_letters")}
+        assert reasons <= {"duplicate"}, reasons  # only what the broker sent again
+    finally:
+        assert svc.stop() == 0
+    assert all(process_gone(pid) for pid in [first, second])
 
 
 def test_broker_restart_while_running_loses_nothing(broker, tmp_path):

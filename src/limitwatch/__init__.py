@@ -10,3 +10,6 @@ SAFETY_CAUTION = (
     "limitwatch is a monitoring aid, not a safety system: it does not replace interlocks, "
     "alarms required by local codes, or the judgement of qualified staff."
 )
+
+LOG_FORMAT = "%(asctime)s %(levelname)s %(name)s: %(message)s"
+"""How ``limitwatch serve`` and its connection processes write their log lines."""

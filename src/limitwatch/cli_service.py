@@ -7,7 +7,7 @@ import sys
 
 import click
 
-from limitwatch import SAFETY_CAUTION
+from limitwatch import LOG_FORMAT, SAFETY_CAUTION
 from limitwatch.cli import InputProblem, main
 from limitwatch.config import ConfigError, check_secrets, load_config
 
@@ -40,7 +40,7 @@ def serve_cmd(config_path: str, log_level: str) -> None:
     """
     logging.basicConfig(
         level=getattr(logging, log_level.upper()),
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        format=LOG_FORMAT,
         stream=sys.stderr,
     )
     # APScheduler logs every job run at INFO; its warnings and errors are what matter here.

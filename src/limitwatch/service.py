@@ -2,7 +2,9 @@
 
 Threads and who owns what:
 
-* paho-mqtt network threads (one per MQTT source) only put deliveries on ``intake``;
+* each MQTT source runs its paho-mqtt client in a process of its own
+  (:mod:`limitwatch.ingest.mqtt_process`); a reader thread per source only puts the deliveries
+  it passes up on ``intake``, and acknowledgements go back down once their batch committed;
 * the APScheduler ``BackgroundScheduler`` only puts :class:`Job` requests on ``intake``;
 * the **worker** (the thread that calls :meth:`Service.run`) is the only one that touches the
   monitors and the store: it takes a batch (bounded by count and time), evaluates, commits in
@@ -36,7 +38,8 @@ from limitwatch.alerts.outbox import OutboxWorker
 from limitwatch.config import Config, FileSourceConfig, MqttSourceConfig
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.files import FileLine, FileSource
-from limitwatch.ingest.mqtt import Delivery, MqttSettings, MqttSource
+from limitwatch.ingest.mqtt import Delivery, MqttSettings
+from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline
@@ -68,7 +71,7 @@ class Service:
         self.intake: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self.metrics = Metrics()
         self._stopping = threading.Event()
-        self.mqtt: dict[str, MqttSource] = {}
+        self.mqtt: dict[str, MqttProcess] = {}
         self._mqtt_parsers: dict[str, SourceParser] = {}
         self.files: dict[str, FileSource] = {}
         self._row_parsers: dict[str, RowParser] = {}
@@ -162,7 +165,7 @@ class Service:
             reconnect_max_s=source.reconnect_max_s,
         )
         self._mqtt_parsers[source.name] = SourceParser(source)
-        client = MqttSource(settings, self.intake, clock=self.clock)
+        client = MqttProcess(settings, self.intake)
         self.mqtt[source.name] = client
         client.start()
 
@@ -291,8 +294,11 @@ class Service:
     def _process_deliveries(self, batch: list[Delivery]) -> None:
         items = [self._parse_delivery(d) for d in batch]
         self._commit(items)
+        by_source: dict[str, list[Delivery]] = {}
         for d in batch:  # arrival order, only after the commit
-            self.mqtt[d.source].ack(d.mid, d.qos)
+            by_source.setdefault(d.source, []).append(d)
+        for source, deliveries in by_source.items():
+            self.mqtt[source].ack(deliveries)
 
     def _commit(
         self, items: list[Parsed], offsets: dict[str, dict[str, int]] | None = None

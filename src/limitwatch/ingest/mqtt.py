@@ -50,6 +50,9 @@ class Delivery(NamedTuple):
     mid: int
     qos: int
     retained: bool
+    epoch: int = 0
+    """Which connection process received it (see :mod:`limitwatch.ingest.mqtt_process`): an
+    acknowledgement only goes back through the process that got the message."""
 
 
 @dataclass(frozen=True)
@@ -86,11 +89,15 @@ class MqttSource:
         settings: MqttSettings,
         intake: queue.SimpleQueue[Any],
         clock: Callable[[], float] = time.time,
+        on_change: Callable[[], None] | None = None,
+        epoch: int = 0,
     ) -> None:
         self.settings = settings
         self.name = settings.name
         self._intake = intake
         self._clock = clock
+        self._on_change = on_change or (lambda: None)
+        self._epoch = epoch
         self.connected = threading.Event()
         self.subscribed = threading.Event()
         self.last_error: str | None = None
@@ -167,6 +174,7 @@ class MqttSource:
             if reason_code.is_failure:
                 self.last_error = f"connection refused: {reason_code}"
                 log.error("mqtt %s: %s", self.name, self.last_error)
+                self._on_change()
                 return
             self.connects += 1
             self.last_error = None
@@ -174,6 +182,7 @@ class MqttSource:
             if self.settings.status_topic:
                 client.publish(self.settings.status_topic, "online", qos=1, retain=True)
             self.connected.set()
+            self._on_change()
             log.info(
                 "mqtt %s: connected to %s:%s (session present: %s)",
                 self.name,
@@ -192,6 +201,7 @@ class MqttSource:
                 log.error("mqtt %s: %s", self.name, self.last_error)
             else:
                 self.subscribed.set()
+            self._on_change()
         except Exception:
             log.exception("mqtt %s: error in on_subscribe", self.name)
 
@@ -202,6 +212,7 @@ class MqttSource:
             if reason_code != 0:
                 self.last_error = f"disconnected: {reason_code}"
                 log.warning("mqtt %s: %s; paho reconnects with backoff", self.name, reason_code)
+            self._on_change()
         except Exception:
             log.exception("mqtt %s: error in on_disconnect", self.name)
 
@@ -209,12 +220,13 @@ class MqttSource:
         try:
             self.last_error = "connection failed (network, TLS or broker down)"
             log.warning("mqtt %s: %s", self.name, self.last_error)
+            self._on_change()
         except Exception:
             log.exception("mqtt %s: error in on_connect_fail", self.name)
 
     def _on_message(self, client, userdata, message) -> None:
         try:
-            # Delivery(source, topic, payload, received_at, mid, qos, retained)
+            # Delivery(source, topic, payload, received_at, mid, qos, retained, epoch)
             self._intake.put_nowait(
                 Delivery(
                     self.name,
@@ -224,6 +236,7 @@ class MqttSource:
                     message.mid,
                     message.qos,
                     bool(message.retain),
+                    self._epoch,
                 )
             )
         except Exception:
