@@ -473,6 +473,69 @@ def test_batch_boundaries_and_replays_do_not_change_the_result(steps, cuts, repl
     assert _final_state(pieces, replay) == _final_state([outcomes], replay=False)
 
 
+def _run_actions(actions: list[tuple], keep_book: bool) -> tuple[list, list]:
+    """Carry out ``actions`` on a new file, with one book throughout (it keeps live alerts
+    between batches) or a new book for every action (the plain way: read everything each
+    time); return the alerts and outbox rows left."""
+    with tempfile.TemporaryDirectory() as tmp, Store.open(Path(tmp) / "p.db") as store:
+        operator = Store.open(Path(tmp) / "p.db")  # another connection, as the CLI has
+        kept = AlertBook(store, POLICY)
+        t = T0
+        for kind, arg in actions:
+            book = kept if keep_book else AlertBook(store, POLICY)
+            t += 60.0
+            if kind == "batch":
+                batch = [
+                    reading(t + i, *(sig(r, t + i, stream=sm) for r in rules), stream=sm)
+                    for i, (sm, rules) in enumerate(arg)
+                ]
+                book.apply(batch, now=t + len(batch))
+            elif kind == "elsewhere":  # another process writes alerts to the same file
+                AlertBook(operator, POLICY).apply([hit(t, stream=arg)], now=t)
+            elif kind == "rolled-back":
+                with pytest.raises(RuntimeError), store.transaction():
+                    book.apply([hit(t, stream=arg)], now=t)
+                    raise RuntimeError("the commit failed")
+            elif kind == "ack":
+                live = [a for a in operator.live_alerts() if a.state == "open"]
+                if live:
+                    operator.acknowledge(live[arg % len(live)].id, by="op", now=t)
+            elif kind == "tick":
+                book.tick(t + arg)
+        operator.close()
+        return store.alerts(), rows(store)
+
+
+_STREAMS = st.sampled_from(["line-1/a", "line-1/b", "line-2/c"])
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    actions=st.lists(
+        st.one_of(
+            st.tuples(
+                st.just("batch"),
+                st.lists(
+                    st.tuples(_STREAMS, st.sets(st.sampled_from(["beyond-limits", "trend"]))),
+                    min_size=1,
+                    max_size=6,
+                ),
+            ),
+            st.tuples(st.just("rolled-back"), _STREAMS),
+            st.tuples(st.just("elsewhere"), _STREAMS),
+            st.tuples(st.just("ack"), st.integers(0, 5)),
+            st.tuples(st.just("tick"), st.sampled_from([0.0, 700.0, 2000.0])),
+        ),
+        max_size=25,
+    )
+)
+def test_a_book_kept_between_batches_ends_where_a_fresh_book_per_batch_ends(actions):
+    # Operators acknowledge from their own connection, another writer adds signals, reminders
+    # go out on ticks, and some batches roll back: what the long-lived book remembers must
+    # never differ from the store.
+    assert _run_actions(actions, keep_book=True) == _run_actions(actions, keep_book=False)
+
+
 # --------------------------------------------------------------------------- policy, routing
 
 

@@ -233,6 +233,20 @@ def test_everything_at_once():
     )
 
 
+@pytest.mark.parametrize("bom", [b"", b"\xef\xbb\xbf"])
+def test_json_payloads_read_the_same_with_or_without_a_byte_order_mark(bom):
+    # RFC 8259 section 8.1: a parser may ignore a leading byte order mark, and some gateways
+    # (spreadsheet exports, Windows tools) send one.
+    payload = bom + '{"value": 86.25, "note": "\u00b0C été"}'.encode()
+    assert json_parser().parse(TOPIC, payload, RECEIVED).value == 86.25
+    assert reason(lambda: json_parser().parse(TOPIC, bom + b'{"value": "\xff"}', RECEIVED)) == (
+        "bad-json"
+    )
+    # Only one mark at the very start is dropped; a second is not JSON.
+    twice = b"\xef\xbb\xbf" * 2 + b'{"value": 1}'
+    assert reason(lambda: json_parser().parse(TOPIC, twice, RECEIVED)) == "bad-json"
+
+
 # -- a whole MQTT source ------------------------------------------------------------------------
 
 

@@ -34,7 +34,7 @@ import itertools
 import json
 import math
 import sqlite3
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -613,6 +613,7 @@ class Store:
     def __init__(self, db: sqlite_utils.Database, path: str) -> None:
         self.db = db
         self.path = path
+        self._rollback_listeners: list[Callable[[], None]] = []
 
     # ---- opening and transactions
 
@@ -669,8 +670,25 @@ class Store:
         The outermost block starts with BEGIN IMMEDIATE, so the write lock is taken before the
         first read and the batch sees no concurrent writer; nested blocks become savepoints.
         """
-        with _immediate(self.db.conn):
-            yield self
+        try:
+            with _immediate(self.db.conn):
+                yield self
+        except BaseException:
+            # Whatever the block wrote is gone (rolled back to its savepoint, or the whole
+            # transaction); whoever keeps a copy of store contents must drop it.
+            for forget in self._rollback_listeners:
+                forget()
+            raise
+
+    def on_rollback(self, forget: Callable[[], None]) -> None:
+        """Call ``forget`` whenever a ``transaction()`` block ends in an exception."""
+        self._rollback_listeners.append(forget)
+
+    def data_version(self) -> int:
+        """A number that changes whenever another connection (an operator's command, the
+        outbox worker) commits to the database; this connection's own commits leave it alone.
+        What this connection remembers of the database is good while it stays the same."""
+        return int(self.db.conn.execute("PRAGMA data_version").fetchone()[0])
 
     @property
     def journal_mode(self) -> str:

@@ -416,11 +416,52 @@ class AlertBook:
     ``apply(outcomes, now)`` runs inside the service's batch transaction (it opens a savepoint, or
     its own transaction when called alone), so alert changes and the outbox rows they owe commit
     with the readings. ``tick(now)`` is the scheduler's job for reminders and escalation.
+
+    The live alerts of the streams it has seen are kept between batches: a batch used to read
+    them all again, and with many alerts live that was an eighth of a batch's time. What is kept
+    is exactly what this book last wrote, and it is dropped whenever another connection has
+    committed (``Store.data_version``: an operator acknowledged, say), when a ``tick`` changed
+    alerts, and when a transaction holding its writes was rolled back (``Store.on_rollback``).
     """
 
     def __init__(self, store: Store, policy: AlertPolicy | None = None) -> None:
         self.store = store
         self.policy = policy or AlertPolicy()
+        self._live: dict[str, dict[str, Alert]] = {}
+        """Live alerts by stream and rule, for the streams in ``_known`` that have any."""
+        self._known: set[str] = set()
+        self._version: int | None = None
+        store.on_rollback(self.forget)
+
+    def forget(self) -> None:
+        """Drop what is kept of the live alerts; the next batch reads them from the store."""
+        self._live.clear()
+        self._known.clear()
+        self._version = None
+
+    def _live_alerts(self, streams: set[str]) -> dict[str, dict[str, Alert]]:
+        """The live alerts of ``streams`` (a copy to work on); call inside the transaction, so
+        no other writer can slip in between the version check and the batch's own writes."""
+        version = self.store.data_version()
+        if version != self._version:
+            self.forget()
+            self._version = version
+        missing = streams - self._known
+        if missing:
+            for alert in self.store.live_alerts(missing):
+                self._live.setdefault(alert.stream, {})[alert.rule] = alert
+            self._known |= missing
+        live = self._live
+        return {s: dict(live[s]) for s in streams if s in live}
+
+    def _remember(self, live: dict[str, dict[str, Alert]]) -> None:
+        """Keep what a batch wrote: its streams' live alerts as they now stand in the store."""
+        for stream, rules in live.items():
+            if rules:
+                self._live[stream] = dict(rules)
+            else:
+                self._live.pop(stream, None)
+            self._known.add(stream)
 
     # ---- entry points
 
@@ -458,6 +499,7 @@ class AlertBook:
                     continue
                 updated = self._owe(alert, notices, shelves, now, report)
                 self._write(alert, updated)
+                self.forget()
         return report
 
     # ---- shared steps
@@ -535,11 +577,10 @@ class _Batch:
         self.book, self.store, self.policy = book, book.store, book.policy
         self.now, self.report = now, report
         self.shelves = self.store.active_shelves(now)
-        self.live: dict[str, dict[str, Alert]] = {}
-        self.loaded: dict[int, Alert] = {}
-        for alert in self.store.live_alerts(streams):
-            self.live.setdefault(alert.stream, {})[alert.rule] = alert
-            self.loaded[alert.id] = alert
+        self.live: dict[str, dict[str, Alert]] = book._live_alerts(streams)
+        self.loaded: dict[int, Alert] = {
+            alert.id: alert for rules in self.live.values() for alert in rules.values()
+        }
 
     def take_signals(self, signals: Iterable[StreamSignal]) -> set[str]:
         """Apply signals; return the rules that fired (replays included: not quiet either)."""
@@ -596,3 +637,4 @@ class _Batch:
         for rules in self.live.values():
             for alert in rules.values():
                 self.book._write(self.loaded[alert.id], alert)
+        self.book._remember(self.live)

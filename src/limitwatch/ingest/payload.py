@@ -271,7 +271,7 @@ def _seq(raw: Any, what: str) -> int:
 class _Fields:
     """Value, time and sequence number out of one record: shared by MQTT JSON and file rows."""
 
-    __slots__ = ("_seq", "_time", "_value", "flat", "names", "time_format")
+    __slots__ = ("_labels", "_seq", "_time", "_value", "flat", "names", "time_format")
 
     def __init__(
         self, value: str, time: str | None, time_format: TimeFormat, seq: str | None, flat: bool
@@ -279,6 +279,8 @@ class _Fields:
         # ``flat``: CSV rows, looked up by the exact column name.
         self.flat = flat
         self.names = {"value": value, "time": time, "seq": seq}
+        # Error texts name the field; made once here, not for every reading.
+        self._labels = {key: f"{key} field {name!r}" for key, name in self.names.items()}
         self._value = self._path(value)
         self._time = None if time is None else self._path(time)
         self._seq = None if seq is None else self._path(seq)
@@ -289,29 +291,24 @@ class _Fields:
 
     def get(self, record: Any, path: tuple[str | int, ...], key: str) -> Any:
         raw = lookup(record, path)
-        label = f"{key} field {self.names[key]!r}"
         if raw is _MISSING or (raw is None and self.flat):
-            raise PayloadError("missing-field", f"{label} is absent")
+            raise PayloadError("missing-field", f"{self._labels[key]} is absent")
         if raw is None:
-            raise PayloadError("missing-field", f"{label} is null")
+            raise PayloadError("missing-field", f"{self._labels[key]} is null")
         if isinstance(raw, str) and not raw.strip():
-            raise PayloadError("missing-field", f"{label} is blank")
+            raise PayloadError("missing-field", f"{self._labels[key]} is blank")
         return raw
 
     def read(self, record: Any, received_at: float) -> tuple[float, float, int | None]:
-        label = f"value field {self.names['value']!r}"
-        value = _value(self.get(record, self._value, "value"), label)
+        labels = self._labels
+        value = _value(self.get(record, self._value, "value"), labels["value"])
         if self._time is None:
             moment = received_at
         else:
-            moment = _time(
-                self.get(record, self._time, "time"),
-                self.time_format,
-                f"time field {self.names['time']!r}",
-            )
+            moment = _time(self.get(record, self._time, "time"), self.time_format, labels["time"])
         seq = None
         if self._seq is not None:
-            seq = _seq(self.get(record, self._seq, "seq"), f"seq field {self.names['seq']!r}")
+            seq = _seq(self.get(record, self._seq, "seq"), labels["seq"])
         return moment, value, seq
 
 
@@ -367,11 +364,24 @@ class PayloadParser:
                 ) from None
             return Reading(stream, received_at, _decimal(text, "payload"))
         try:
-            document = json.loads(payload.decode("utf-8-sig"), parse_constant=float)
+            document = _JSON.decode(_utf8(payload))
         except (UnicodeDecodeError, ValueError) as exc:
             raise PayloadError("bad-json", f"payload is not UTF-8 JSON: {exc}") from None
         moment, value, seq = self._fields.read(document, received_at)
         return Reading(stream, moment, value, seq)
+
+
+_JSON = json.JSONDecoder(parse_constant=float)
+"""One decoder for every payload: ``json.loads`` with an option builds a new one each call.
+NaN and Infinity become floats here so that the value check can refuse them by name."""
+
+_BOM = b"\xef\xbb\xbf"
+
+
+def _utf8(payload: bytes) -> str:
+    """UTF-8 text with a leading byte-order mark dropped; the same as the ``utf-8-sig`` codec,
+    whose decoder runs in Python, by way of the one written in C."""
+    return (payload[3:] if payload.startswith(_BOM) else payload).decode("utf-8")
 
 
 def _check_size(payload: bytes, limit: int | None) -> None:
