@@ -7,11 +7,16 @@ connection, so it sees only what was committed to the file.
 
 from __future__ import annotations
 
+import json
+import math
 import sqlite3
+import struct
 from pathlib import Path
 
 import pytest
 import sqlite_utils
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.store import (
@@ -28,6 +33,7 @@ from limitwatch.store import (
     ShelfRejected,
     Store,
     migrate,
+    read_json,
 )
 
 T0 = 1_700_000_000.0
@@ -640,3 +646,43 @@ def test_a_single_write_outside_a_transaction_is_committed_at_once(tmp_path):
     finally:
         other.close()
         store.close()
+
+
+# --------------------------------------------------------------------------- reading JSON back
+
+_JSON_VALUES = st.recursive(
+    st.none()
+    | st.booleans()
+    | st.integers(-(2**63), 2**63 - 1)
+    | st.floats(allow_nan=True, allow_infinity=True)
+    | st.text(),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(), inner, max_size=4),
+    max_leaves=20,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(_JSON_VALUES)
+def test_read_json_reads_what_the_standard_library_wrote_exactly_as_it_would(value):
+    # Checkpoints are written by json.dumps and read back by orjson, falling back to the
+    # standard library for NaN and Infinity, which orjson refuses. Every value must come back
+    # exactly as json.loads returns it, float bits included.
+    text = json.dumps(value)
+    assert _same(read_json(text), json.loads(text))
+
+
+def _same(a: object, b: object) -> bool:
+    if isinstance(a, float) and isinstance(b, float):
+        return struct.pack("<d", a) == struct.pack("<d", b) or (math.isnan(a) and math.isnan(b))
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b, strict=True))
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    return type(a) is type(b) and a == b
+
+
+def test_a_checkpoint_with_a_nan_in_it_still_restores(fresh_db: Store):
+    # json.dumps writes NaN as a bare word; the fast reader refuses it, the fallback reads it.
+    fresh_db.save_checkpoints({"line-1/a": {"format": 2, "x": float("nan"), "y": 1.5}}, now=1.0)
+    ((stream, state),) = fresh_db.iter_checkpoints()
+    assert stream == "line-1/a" and math.isnan(state["x"]) and state["y"] == 1.5

@@ -35,7 +35,9 @@ Conventions worth knowing:
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any, Literal
 
 from limitwatch.model import Outcome, Phase, Reading, StreamSignal
@@ -73,12 +75,26 @@ class MonitorSettings:
     detectors_key: str = field(init=False, repr=False, compare=False)
     """Every detector with all its parameters, X chart first: a checkpoint whose key differs
     was written under other rules, and its run counts must not be reused."""
+    _makers: tuple[tuple[Callable[[], Detector], ...], ...] = field(
+        init=False, repr=False, compare=False
+    )
+    """One ready-made constructor call per detector (X chart, MR chart): a restart builds a
+    dozen detectors for each of its streams, and the spec's parameters need not be unpacked
+    again every time."""
 
     def __post_init__(self) -> None:
         specs = parse_rules(self.rules) if isinstance(self.rules, str) else tuple(self.rules)
         object.__setattr__(self, "rule_specs", tuple(specs))
         object.__setattr__(self, "x_specs", tuple(s for s in specs if _chart(s) == "x"))
         object.__setattr__(self, "mr_specs", tuple(s for s in specs if _chart(s) == "mr"))
+        object.__setattr__(
+            self,
+            "_makers",
+            tuple(
+                tuple(partial(DETECTORS[s.rule], **dict(s.params)) for s in chart)
+                for chart in (self.x_specs, self.mr_specs)
+            ),
+        )
         object.__setattr__(self, "detectors_key", _detectors_key(self))
         if self.learn_count < self.min_points:
             raise ValueError(
@@ -90,10 +106,8 @@ class MonitorSettings:
 
     def build_detectors(self) -> tuple[tuple[Detector, ...], tuple[Detector, ...]]:
         """Fresh detectors for one stream: (X chart, MR chart), each in selection order."""
-        return (
-            tuple([spec.build() for spec in self.x_specs]),
-            tuple([spec.build() for spec in self.mr_specs]),
-        )
+        x, mr = self._makers
+        return tuple([make() for make in x]), tuple([make() for make in mr])
 
     def fit(self, values: list[float]) -> Baseline:
         """Fit a baseline with these settings (phase I)."""
