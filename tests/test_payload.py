@@ -273,6 +273,48 @@ def test_the_first_matching_topic_entry_parses():
     assert reason(lambda: parser.parse("gw/a/b", b"1" * 65, RECEIVED)) == "oversize"
 
 
+@settings(max_examples=50, deadline=None)
+@given(
+    topics=st.lists(
+        st.sampled_from(
+            ["gw/oven-1/energy", "gw/comp-a/temp", "gw/comp-b/temp", "other/x", "gw/a", "gw/+"]
+        ),
+        max_size=40,
+    ),
+    kept=st.integers(1, 8),
+)
+def test_remembered_routes_give_what_matching_afresh_gives(topics, kept):
+    # The source remembers each topic's entry and stream; however small that memory, and
+    # whatever order topics come in, every message is routed as if matched from scratch.
+    source = SourceParser(_two_entry_source())
+    before, SourceParser.ROUTES_KEPT = SourceParser.ROUTES_KEPT, kept
+    try:
+        for topic in topics:
+            fresh = SourceParser(_two_entry_source()).route(topic)
+            remembered = source.route(topic)
+            assert (remembered and (remembered[0].mapper.filter, remembered[1])) == (
+                fresh and (fresh[0].mapper.filter, fresh[1])
+            )
+            assert len(source._routes) <= kept
+    finally:
+        SourceParser.ROUTES_KEPT = before
+
+
+def _two_entry_source() -> MqttSourceConfig:
+    return MqttSourceConfig.model_validate(
+        {
+            "type": "mqtt",
+            "name": "plant",
+            "host": "broker.quillmoor.example",
+            "client_id": "lw-1",
+            "topics": [
+                {"filter": "gw/oven-1/energy", "stream": "oven-1/energy", "payload": "number"},
+                {"filter": "gw/+/+", "stream": "{2}/{3}", "payload": "json", "value": "v"},
+            ],
+        }
+    )
+
+
 # -- file rows ----------------------------------------------------------------------------------
 
 

@@ -47,11 +47,15 @@ class StreamSignal:
     limit: float | None = None
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Outcome:
     """What one reading did. A refused reading has ``accepted=False`` and a ``reason`` naming why
     (``duplicate``, ``out-of-order``, ``not-finite``, ``below-lower-bound``, ``above-upper-bound``);
-    it changed no state."""
+    it changed no state.
+
+    Treat it as read-only. It is not ``frozen`` only because one is made for every reading, and a
+    frozen dataclass's ``__init__`` (a guarded ``object.__setattr__`` per field) took a fifth of
+    the engine's time; without it the engine runs about a third faster."""
 
     reading: Reading
     accepted: bool
