@@ -1,10 +1,12 @@
 """MQTT intake with at-least-once delivery and acknowledgement after commit.
 
-The paho-mqtt network thread only ever puts a :class:`Delivery` on the service's intake queue;
-all parsing, evaluation and database work happens in the service's single worker, which calls
-:meth:`MqttSource.ack` for each delivery, in arrival order, once the transaction holding its
-effect has committed. With a fixed client id, QoS 1 and a persistent session the broker keeps
-everything not yet acknowledged -- across our crashes and its restarts -- and sends it again.
+The paho-mqtt network thread only ever puts an :data:`Arrival` on a queue; the connection process
+(:mod:`limitwatch.ingest.mqtt_process`) passes it up to the service as a :class:`Delivery`. All
+parsing, evaluation and database work happens in the service's single worker, and
+:meth:`MqttSource.ack` is called for each delivery, in arrival order, once the transaction
+holding its effect has committed. With a fixed client id, QoS 1 and a persistent session the
+broker keeps everything not yet acknowledged -- across our crashes and its restarts -- and
+sends it again.
 
 Why each setting (paho-mqtt 2.x):
 
@@ -55,6 +57,12 @@ class Delivery(NamedTuple):
     acknowledgement only goes back through the process that got the message."""
 
 
+Arrival = tuple[str, bytes, float, int, int, bool]
+"""(topic, payload, received_at, mid, qos, retained): what the network thread queues. A plain
+tuple: made on the network thread for every message and pickled up a pipe, where a named
+tuple's Python-level ``__new__`` and ``__getnewargs__`` cost more than everything else."""
+
+
 @dataclass(frozen=True)
 class MqttSettings:
     """The connection part of an MQTT source; built from the config's source section."""
@@ -90,14 +98,12 @@ class MqttSource:
         intake: queue.SimpleQueue[Any],
         clock: Callable[[], float] = time.time,
         on_change: Callable[[], None] | None = None,
-        epoch: int = 0,
     ) -> None:
         self.settings = settings
         self.name = settings.name
         self._intake = intake
         self._clock = clock
         self._on_change = on_change or (lambda: None)
-        self._epoch = epoch
         self.connected = threading.Event()
         self.subscribed = threading.Event()
         self.last_error: str | None = None
@@ -226,17 +232,15 @@ class MqttSource:
 
     def _on_message(self, client, userdata, message) -> None:
         try:
-            # Delivery(source, topic, payload, received_at, mid, qos, retained, epoch)
+            # an Arrival: (topic, payload, received_at, mid, qos, retained)
             self._intake.put_nowait(
-                Delivery(
-                    self.name,
+                (
                     message.topic,
                     message.payload,
                     self._clock(),
                     message.mid,
                     message.qos,
                     bool(message.retain),
-                    self._epoch,
                 )
             )
         except Exception:

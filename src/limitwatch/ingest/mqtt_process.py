@@ -8,9 +8,10 @@ connection process has a core of its own for paho; the service's process keeps t
 
 What crosses between them, over two one-way pipes:
 
-* up (connection -> service): lists of :class:`~limitwatch.ingest.mqtt.Delivery` and
+* up (connection -> service): lists of :data:`~limitwatch.ingest.mqtt.Arrival` tuples and
   :class:`Status` records, sent by one forwarding thread as they pile up, so a busy stream
-  costs one pipe message per batch rather than per reading;
+  costs one pipe message per batch rather than per reading; the service's side makes each
+  arrival a :class:`~limitwatch.ingest.mqtt.Delivery`;
 * down (service -> connection): the acknowledgements of a committed batch, in arrival order,
   and the request to close.
 
@@ -37,6 +38,7 @@ import queue
 import subprocess
 import sys
 import threading
+import time
 from multiprocessing.connection import Connection
 from typing import Any, NamedTuple
 
@@ -47,6 +49,10 @@ log = logging.getLogger("limitwatch.mqtt")
 
 FORWARD_MAX = 1000
 """Most records in one pipe message from a connection process."""
+
+GATHER_S = 0.002
+"""How long the forwarder lets messages gather before sending what it has: a delay far below
+the worker's ``batch_wait``, for a tenth of the pipe writes at high rates."""
 
 
 class Status(NamedTuple):
@@ -80,19 +86,17 @@ which runs the parent's main script again in the child (a benchmark script, a no
 
 def child_main() -> None:
     """Entry point of a connection process: ``argv`` holds the up pipe's write end and the
-    down pipe's read end; the first message down is (settings, epoch, log level)."""
+    down pipe's read end; the first message down is (settings, log level)."""
     up = Connection(int(sys.argv[1]), readable=False)
     down = Connection(int(sys.argv[2]), writable=False)
     try:
-        settings, epoch, log_level = down.recv()
+        settings, log_level = down.recv()
     except (EOFError, OSError):
         os._exit(3)
-    _serve(settings, up, down, epoch, log_level)
+    _serve(settings, up, down, log_level)
 
 
-def _serve(
-    settings: MqttSettings, up: Connection, down: Connection, epoch: int, log_level: int
-) -> None:
+def _serve(settings: MqttSettings, up: Connection, down: Connection, log_level: int) -> None:
     """Run one :class:`MqttSource` until the service asks it to close or goes away."""
     logging.basicConfig(level=log_level, format=LOG_FORMAT, stream=sys.stderr)
     local: queue.SimpleQueue[Any] = queue.SimpleQueue()
@@ -102,7 +106,7 @@ def _serve(
         if source is not None:
             local.put(_status(source))
 
-    source = MqttSource(settings, local, on_change=changed, epoch=epoch)
+    source = MqttSource(settings, local, on_change=changed)
     forwarder = threading.Thread(
         target=_forward, args=(local, up), name="limitwatch-forward", daemon=True
     )
@@ -127,21 +131,34 @@ def _serve(
 
 
 def _forward(local: queue.SimpleQueue[Any], up: Connection) -> None:
-    """The connection process's only sender up: batches whatever is waiting."""
+    """The connection process's only sender up: batches whatever is waiting.
+
+    Once something arrives it waits ``GATHER_S`` for more before sending, unless a full batch
+    is already there: without the pause it woke for every single message while paho handed
+    them over one by one, and paid a pipe write and a turn of the interpreter lock for each.
+    """
     while True:
         items = [local.get()]
-        try:
-            while len(items) < FORWARD_MAX:
-                items.append(local.get_nowait())
-        except queue.Empty:
-            pass
+        if not _drain(local, items):
+            time.sleep(GATHER_S)
+            _drain(local, items)
         try:
             up.send(items)
-        except (BrokenPipeError, OSError):
+        except OSError:
             os._exit(3)
         last = items[-1]
         if type(last) is Status and last.closed:
             return
+
+
+def _drain(local: queue.SimpleQueue[Any], items: list[Any]) -> bool:
+    """Move what is waiting into ``items``, up to ``FORWARD_MAX``; True when that filled it."""
+    try:
+        while len(items) < FORWARD_MAX:
+            items.append(local.get_nowait())
+    except queue.Empty:
+        return False
+    return True
 
 
 # ------------------------------------------------------------------------ the service's side
@@ -198,7 +215,7 @@ class MqttProcess:
         os.close(down_read)
         down = Connection(down_write, readable=False)
         with contextlib.suppress(OSError):  # if it died at once, the reader reports it
-            down.send((self.settings, self._epoch, self._log_level))
+            down.send((self.settings, self._log_level))
         self._process, self._down = process, down
         self._reader = threading.Thread(
             target=self._read,
@@ -209,12 +226,12 @@ class MqttProcess:
         self._reader.start()
 
     def _read(self, up: Connection, process: Any, epoch: int) -> None:
-        put = self._intake.put
+        put, name = self._intake.put, self.name
         try:
             while True:
                 for item in up.recv():
-                    if type(item) is Delivery:
-                        put(item)
+                    if type(item) is tuple:  # an Arrival
+                        put(Delivery(name, *item, epoch))
                     else:
                         self._apply(item)
                         if item.closed:
