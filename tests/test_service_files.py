@@ -119,3 +119,52 @@ stale_after = 3
         assert svc.stop() == 0
     (stream,) = query(db, "SELECT stream FROM alerts WHERE rule = 'stale'")[0]
     assert stream == "pump-7/pressure"
+
+
+def test_health_turns_503_while_the_worker_is_stuck_and_recovers_after(tmp_path):
+    """Another program holds the database's write lock (an operator's sqlite3 shell left in a
+    transaction, say): the worker waits for it inside its commit. /health says so once the wait
+    passes `stall_after`, and says ok again once the lock is released and the batch commits."""
+    import json
+    import sqlite3
+    import urllib.error
+    import urllib.request
+
+    from tests.broker import free_port
+
+    port = free_port()
+    extra_service = f'metrics_listen = "127.0.0.1:{port}"\nstall_after = "1s"\n'
+    config = file_config(tmp_path, poll="200ms")
+    config.write_text(config.read_text().replace("[service]\n", "[service]\n" + extra_service, 1))
+    data = tmp_path / "data" / "export.csv"
+    write_rows(data, [(T0 + 60 * i, "press-2/force", 40.0 + (i % 4) * 0.2) for i in range(10)])
+    db = tmp_path / "service.db"
+
+    def health() -> tuple[int, dict]:
+        try:
+            with urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=5) as reply:
+                return reply.status, json.loads(reply.read())
+        except urllib.error.HTTPError as exc:
+            return exc.code, json.loads(exc.read())
+        except OSError:
+            return 0, {}
+
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings") == 10, what="first rows")
+        assert wait_until(lambda: health()[0] == 200, what="healthy")
+        assert health()[1]["worker"] == "running"
+        lock = sqlite3.connect(db, isolation_level=None)
+        lock.execute("BEGIN IMMEDIATE")  # the service's busy timeout is 5 s
+        try:
+            write_rows(data, [(T0 + 60 * (10 + i), "press-2/force", 40.1) for i in range(5)], False)
+            stuck = wait_until(lambda: (h := health())[0] == 503 and h[1], timeout=4.5, what="503")
+            assert stuck["worker"] == "stalled" and stuck["worker_last_round_s_ago"] > 1.0
+        finally:
+            lock.execute("ROLLBACK")
+            lock.close()
+        wait_until(lambda: count(db, "readings") == 15, what="the held batch committed")
+        assert wait_until(lambda: health()[0] == 200, what="healthy again")
+        assert svc.alive()
+    finally:
+        assert svc.stop() == 0

@@ -279,6 +279,9 @@ class ServiceSection(_Section):
     stale_check_every: PositiveDuration = 60.0
     alert_tick_every: PositiveDuration = 30.0
     refit_check_every: PositiveDuration = 60.0
+    stall_after: PositiveDuration = 60.0
+    """``/health`` answers 503 when the worker has not come round its loop for this long (it
+    does at least twice a second when idle)."""
 
     @field_validator("metrics_listen")
     @classmethod

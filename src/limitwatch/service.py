@@ -77,6 +77,8 @@ class Service:
         self._row_parsers: dict[str, RowParser] = {}
         self._offsets: dict[str, dict[str, int]] = {}
         self.last_commit: float | None = None
+        self._heartbeat: float | None = None
+        """``time.monotonic()`` when the worker last came round its loop; None until it runs."""
         self.started_at: float | None = None
         self.store: Store | None = None
         self.pipeline: Pipeline | None = None
@@ -235,6 +237,7 @@ class Service:
         """Process intake until asked to stop; then write every stream's checkpoint, so the
         next start restores without applying any reading again."""
         while not self._stopping.is_set():
+            self._heartbeat = time.monotonic()
             batch, jobs = self._take()
             if batch:
                 self._process_deliveries(batch)
@@ -399,9 +402,15 @@ class Service:
         sources = {name: c.connected.is_set() for name, c in self.mqtt.items()}
         for name, ok in sources.items():
             self.metrics.source_connected.labels(name).set(1 if ok else 0)
-        ok = all(sources.values()) and not (self.pipeline is not None and self.pipeline.broken)
+        broken = self.pipeline is not None and self.pipeline.broken
+        beat = self._heartbeat
+        quiet = None if beat is None else round(time.monotonic() - beat, 3)
+        stalled = quiet is not None and quiet > self.config.service.stall_after
+        ok = all(sources.values()) and not broken and not stalled
         return {
             "status": "ok" if ok else "degraded",
+            "worker": "stalled" if stalled else "failed" if broken else "running",
+            "worker_last_round_s_ago": quiet,
             "sources": sources,
             "errors": {n: c.last_error for n, c in self.mqtt.items() if c.last_error},
             "queue_depth": self.intake.qsize(),
