@@ -38,15 +38,24 @@ class ServiceProcess:
         self.env = {**os.environ, **(env or {})}
         self.process: subprocess.Popen[bytes] | None = None
 
-    def start(self) -> ServiceProcess:
+    def start(self, own_group: bool = False) -> ServiceProcess:
+        """``own_group``: lead a process group of its own, as a systemd unit or a terminal's
+        foreground job does, so that :meth:`stop_group` can signal every process in it."""
         with self.log.open("ab") as log, self.out.open("ab") as out:
             self.process = subprocess.Popen(
                 [str(CLI), "serve", "--config", str(self.config), "--log-level", "info"],
                 stdout=out,
                 stderr=log,
                 env=self.env,
+                start_new_session=own_group,
             )
         return self
+
+    def stop_group(self, sig: int = signal.SIGTERM) -> int:
+        """Signal the whole process group, as ``systemctl stop`` or Ctrl-C does."""
+        assert self.process is not None
+        os.killpg(self.process.pid, sig)
+        return self.process.wait(timeout=60)
 
     def kill(self) -> None:
         assert self.process is not None

@@ -9,9 +9,11 @@ import json
 import os
 import signal
 import threading
+import time
 
 import numpy as np
 import paho.mqtt.client as mqtt
+import pytest
 
 from limitwatch.config import load_config
 from limitwatch.engine import StreamMonitor
@@ -194,6 +196,33 @@ def test_a_killed_connection_process_is_replaced_and_nothing_is_lost(broker, tmp
     finally:
         assert svc.stop() == 0
     assert all(process_gone(pid) for pid in [first, second])
+
+
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT])
+def test_a_signal_to_the_whole_process_group_stops_the_service_cleanly(broker, tmp_path, sig):
+    """systemd stops a unit by signalling all its processes, and Ctrl-C reaches the whole
+    foreground group: the connection process must leave it to the service, which sends the
+    last acknowledgements, says offline and exits 0, so nothing is delivered twice."""
+    config = mqtt_config(tmp_path, broker.port)
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start(own_group=True)
+    wait_until(lambda: service_up(svc), what="connected")
+    messages, _ = reading_messages(["line-1/bearing-temp"], 60)
+    pub = Publisher(broker.port)
+    pub.send_all(messages)
+    pub.close()
+    wait_until(lambda: count(db, "readings") == 60, what="readings")
+    connection = svc.children()
+    assert svc.stop_group(sig) == 0
+    assert "exited unexpectedly" not in svc.logs() and "Traceback" not in svc.logs()
+    assert all(process_gone(pid) for pid in connection)
+    again = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: again.logs().count("connected to") >= 2, what="reconnected")
+        time.sleep(1.0)  # anything the broker still held would arrive now
+    finally:
+        assert again.stop() == 0
+    assert count(db, "readings") == 60 and count(db, "dead_letters") == 0
 
 
 def test_broker_restart_while_running_loses_nothing(broker, tmp_path):

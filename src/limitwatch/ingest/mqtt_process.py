@@ -35,6 +35,7 @@ import contextlib
 import logging
 import os
 import queue
+import signal
 import subprocess
 import sys
 import threading
@@ -87,6 +88,11 @@ which runs the parent's main script again in the child (a benchmark script, a no
 def child_main() -> None:
     """Entry point of a connection process: ``argv`` holds the up pipe's write end and the
     down pipe's read end; the first message down is (settings, log level)."""
+    # systemd stops a unit by signalling every process in it, and Ctrl-C in a terminal reaches
+    # the whole foreground group; the service decides when this process leaves (after the last
+    # acknowledgements are sent), so those signals are not for it.
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     up = Connection(int(sys.argv[1]), readable=False)
     down = Connection(int(sys.argv[2]), writable=False)
     try:
