@@ -619,6 +619,42 @@ def test_a_signal_without_a_reading_opens_an_alert(book: AlertBook):
     json.dumps(payload, allow_nan=False)
 
 
+def _gone_stale(book: AlertBook, now: float, limit: float = 300.0) -> None:
+    silence = replace(sig("stale", now, value=79.5), statistic=limit + 60.0, limit=limit)
+    book.apply_signals([silence], now=now)
+
+
+@pytest.mark.parametrize("phase", ["learning", "monitoring"])
+def test_a_stale_alert_clears_on_the_first_recent_reading_in_either_phase(book, phase):
+    now = T0 + 3600
+    _gone_stale(book, now)
+    book.apply([reading(now - 20, stream=STREAM, phase=phase)], now=now + 5)
+    (alert,) = book.store.alerts()
+    assert alert.state == "cleared"
+    assert "readings arrive again" in (book.store.alert_events(alert.id)[-1].note or "")
+
+
+def test_readings_sent_late_from_before_the_silence_leave_a_stale_alert_open(book: AlertBook):
+    # Silence allowed: 300 s. At now + 5 a reading timed 400 s ago is still from the silent
+    # spell; the check would find the stream silent again, so the alert stays.
+    now = T0 + 3600
+    _gone_stale(book, now)
+    book.apply([quiet(now - 400 + i) for i in range(POLICY.clear_after + 2)], now=now + 5)
+    (alert,) = book.store.alerts()
+    assert alert.state == "open"
+    book.apply([quiet(now)], now=now + 5)
+    assert book.store.alerts()[0].state == "cleared"
+
+
+def test_a_recent_reading_clears_stale_but_counts_only_quietly_for_other_rules(book: AlertBook):
+    now = T0 + 3600
+    book.apply([hit(now - 1000)], now=now - 1000)  # a beyond-limits alert, left live
+    _gone_stale(book, now)
+    book.apply([quiet(now)], now=now + 5)
+    states = {a.rule: a.state for a in book.store.alerts()}
+    assert states == {"stale": "cleared", "beyond-limits": "open"}
+
+
 def test_a_stale_text_says_how_long_in_durations_not_seconds(book: AlertBook):
     # silent 2 h 5 min 12 s (7,512 s) where a reading was due within 40 min (2,400 s)
     stale = replace(sig("stale", T0 + 7512, value=86.5), statistic=7512.0, limit=2400.0)

@@ -95,7 +95,8 @@ def test_a_file_source_killed_mid_file_resumes_at_the_right_line(tmp_path):
 
 
 def test_lines_appended_later_are_read_and_a_silent_stream_goes_stale(tmp_path):
-    """A stream with an expected cadence that stops reporting opens a `stale` alert."""
+    """A stream with an expected cadence that stops reporting opens a `stale` alert, which
+    clears when a recent reading arrives."""
     import time as clock
 
     now = clock.time()
@@ -115,6 +116,13 @@ stale_after = 3
         write_rows(data, [(now - 9, "pump-7/pressure", 5.1)], header=False)
         wait_until(lambda: count(db, "readings") == 31, what="appended row")
         wait_until(lambda: count(db, "alerts", "rule = 'stale'") == 1, timeout=30, what="stale")
+        # the stream speaks again: the stale alert clears with the first recent reading
+        write_rows(data, [(clock.time(), "pump-7/pressure", 5.2)], header=False)
+        wait_until(
+            lambda: count(db, "alerts", "rule = 'stale' AND state = 'cleared'") == 1,
+            timeout=30,
+            what="stale cleared",
+        )
     finally:
         assert svc.stop() == 0
     (stream,) = query(db, "SELECT stream FROM alerts WHERE rule = 'stale'")[0]

@@ -473,6 +473,7 @@ class AlertBook:
             batch = _Batch(self, {o.reading.stream for o in outcomes}, now, report)
             for outcome in outcomes:
                 fired = batch.take_signals(outcome.signals)
+                batch.heard_from(outcome.reading.stream, outcome.reading.time, fired)
                 if outcome.phase == "monitoring":
                     batch.count_quiet(outcome.reading.stream, outcome.reading.time, fired)
             batch.flush()
@@ -615,10 +616,28 @@ class _Batch:
                 )
         return fired
 
+    def heard_from(self, stream: str, time: float, fired: set[str]) -> None:
+        """A ``stale`` alert clears as soon as the stream is no longer silent by the measure that
+        opened it: an accepted reading no older at the batch's ``now`` than the silence allowed
+        (learning or monitoring alike). Readings sent late, from before that, leave it open: the
+        next check would only find the stream silent again."""
+        alert = self.live.get(stream, {}).get("stale")
+        if alert is None or "stale" in fired:
+            return
+        allowed = alert.signal.get("limit")
+        if allowed is None or self.now - time > allowed:
+            return
+        live = self.live[stream]
+        self.book._write(self.loaded.pop(alert.id), live.pop("stale"))
+        self.store.clear_alert(
+            alert.id, now=self.now, note=f"readings arrive again (one at {_iso(time)})"
+        )
+        self.report.cleared += 1
+
     def count_quiet(self, stream: str, time: float, fired: set[str]) -> None:
         live = self.live.get(stream, {})
         for rule, alert in list(live.items()):
-            if rule in fired:
+            if rule in fired or rule == "stale":  # silence is ended by readings, not counted
                 continue
             verdict = judge_quiet(alert, time, self.policy.clear_after)
             if verdict == "replayed":
