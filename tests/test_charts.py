@@ -21,7 +21,7 @@ import re
 import struct
 import subprocess
 import xml.etree.ElementTree as ET
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from html.parser import HTMLParser
 from pathlib import Path
 from urllib.parse import unquote, urlparse
@@ -43,7 +43,12 @@ from limitwatch.charts import (
     cluster_flags,
     spans,
 )
-from limitwatch.cli_charts import flags_from_alerts, limits_in_force, parse_since
+from limitwatch.cli_charts import (
+    flags_from_alerts,
+    limits_in_force,
+    parse_since,
+    signal_flags,
+)
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
 from limitwatch.pipeline import Parsed, Pipeline
@@ -333,6 +338,34 @@ def test_every_beyond_limits_signal_is_marked(plant: Plant) -> None:
             assert len(inside) == a.signal_count  # the lifecycle counted every signal
     shift = [a for a in alerts if a.rule == "beyond-limits" and a.signal_count > 5]
     assert shift, "the sustained shift should have signalled beyond the limits many times"
+
+
+def test_every_signal_the_engine_gave_is_marked_and_nothing_else(plant: Plant) -> None:
+    # The store records each reading's signals; the same readings through a fresh monitor
+    # must give exactly the marks the chart draws, run rules at every signal included.
+    with plant.store() as store:
+        readings = store.recent_readings(PRESS)
+        alerts = [a for a in store.alerts() if a.stream == PRESS]
+        flags = signal_flags(alerts, readings, limits_in_force(readings, []))
+    monitor = StreamMonitor(PRESS, MonitorSettings(learn_count=LEARN))
+    expected = set()
+    for r in readings:
+        outcome = monitor.update(Reading(PRESS, r.time, r.value))
+        expected |= {(outcome.index, s.rule, s.chart) for s in outcome.signals}
+    assert expected, "the wild press reading must have signalled"
+    assert {(f.index, f.rule, f.chart) for f in flags} == expected
+
+
+def test_readings_from_before_signals_were_recorded_fall_back_on_the_alerts(plant: Plant) -> None:
+    with plant.store() as store:
+        readings = store.recent_readings(GEARBOX)
+        history = store.baseline_history(GEARBOX)
+        alerts = [a for a in store.alerts() if a.stream == GEARBOX]
+    limits = limits_in_force(readings, history)
+    unrecorded = [replace(r, signals=None) for r in readings]
+    assert signal_flags(alerts, unrecorded, limits) == flags_from_alerts(alerts, readings, limits)
+    recorded = signal_flags(alerts, readings, limits)
+    assert set(flags_from_alerts(alerts, readings, limits)) <= set(recorded)
 
 
 def test_limits_typed_into_the_config_are_recovered_from_the_z_scores() -> None:

@@ -194,6 +194,28 @@ def test_an_older_file_is_upgraded_in_place_keeping_its_data(tmp_path: Path):
         assert "file_offsets" in store.db.table_names()
 
 
+def test_each_reading_keeps_the_rules_that_signalled_on_it_and_old_ones_say_unknown(
+    tmp_path: Path,
+):
+    path = tmp_path / "v3.db"
+    old = sqlite_utils.Database(path)
+    migrate(old, now=T0, target=3)
+    old.execute("INSERT INTO readings (stream, time, value) VALUES ('kiln-1/temp', ?, 4.5)", (T0,))
+    old.close()
+    with Store.open(path, now=T0) as store:
+        quiet = Outcome(Reading("kiln-1/temp", T0 + 60, 4.6), True, index=1, phase="monitoring")
+        loud = Outcome(
+            Reading("kiln-1/temp", T0 + 120, 9.9),
+            True,
+            index=2,
+            phase="monitoring",
+            signals=(signal("kiln-1/temp"), signal("kiln-1/temp", rule="trend")),
+        )
+        store.add_readings([quiet, loud], now=T0 + 120)
+        got = [r.signals for r in store.recent_readings("kiln-1/temp")]
+    assert got == [None, (), ("beyond-limits", "trend")]
+
+
 def test_a_file_from_a_newer_limitwatch_is_refused_untouched(tmp_path: Path):
     path = tmp_path / "new.db"
     Store.open(path).close()

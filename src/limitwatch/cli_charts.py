@@ -9,8 +9,10 @@ is each monitored reading's ``z = (value - center) / sigma`` under the limits in
 ``z``. Limits that no stored version reproduces (a baseline typed into the config) are recovered
 from two readings' values and z-scores.
 
-Likewise the store keeps alerts, not every signal: an alert holds its first and last signalling
-reading. :func:`flags_from_alerts` marks both, and for the two rules that keep no state
+Each stored reading records the rules that signalled on it, and :func:`signal_flags` marks
+exactly those. Readings stored before that record existed (a database from an older limitwatch)
+fall back on the alerts: an alert holds its first and last signalling reading.
+:func:`flags_from_alerts` marks both, and for the two rules that keep no state
 (``beyond-limits``, ``mr-beyond-limit``) every reading between them that crossed the same limit,
 which the rule must have signalled too.
 
@@ -59,6 +61,7 @@ from limitwatch.durations import DurationError, parse_duration
 from limitwatch.ingest.timeparse import TimeFormatError, parse_time
 from limitwatch.report import IMAGE_SIZE, AlertRow, Section, image_name, render_page
 from limitwatch.stats.constants import D2, MR_UCL_SIGMA
+from limitwatch.stats.rules import DETECTORS
 from limitwatch.store import Alert, Store, StoredReading
 from limitwatch.store import Baseline as StoredBaseline
 from limitwatch.textout import num
@@ -184,6 +187,30 @@ def limits_in_force(
     return out
 
 
+def signal_flags(
+    alerts: Sequence[Alert],
+    readings: Sequence[StoredReading],
+    limits: Sequence[charts.LimitSet],
+) -> list[charts.Flag]:
+    """Every rule that signalled on each reading in ``readings``, as recorded with the reading;
+    for readings stored before signals were recorded, what :func:`flags_from_alerts` can tell."""
+    out = [
+        charts.Flag(r.index, rule, _chart_of(rule))
+        for r in readings
+        if r.signals and r.index is not None
+        for rule in r.signals
+    ]
+    older = [r for r in readings if r.signals is None]
+    if older:
+        out += flags_from_alerts(alerts, older, limits)
+    return sorted(set(out), key=lambda f: (f.index, f.chart, f.rule))
+
+
+def _chart_of(rule: str) -> str:
+    detector = DETECTORS.get(rule)
+    return "x" if detector is None else detector.chart
+
+
 def flags_from_alerts(
     alerts: Sequence[Alert],
     readings: Sequence[StoredReading],
@@ -305,10 +332,12 @@ def gather(
             f"v{history[-1].version} ({history[-1].reason}) is stored but no reading drawn here "
             "was judged against it yet."
         )
+    unrecorded = any(r.signals is None for r in readings)
     partial = {
         a.rule: a.signal_count
         for a in alerts
-        if a.rule not in _EVERY_SIGNAL_MARKED
+        if unrecorded
+        and a.rule not in _EVERY_SIGNAL_MARKED
         and a.signal_count > 2
         and a.first_index is not None
         and a.first_index >= (readings[0].index or 0 if readings else 0)
@@ -316,14 +345,14 @@ def gather(
     if partial:
         counts = ", ".join(f"{rule} {n}" for rule, n in sorted(partial.items()))
         notes.append(
-            "Run rules mark each alert's first and last signal only (the store keeps no "
-            f"others); the alerts counted {counts} signals."
+            "Readings stored by an older limitwatch do not record their signals: there, run "
+            f"rules mark each alert's first and last signal only; the alerts counted {counts}."
         )
     return charts.ChartData(
         stream=stream,
         points=to_points(readings),
         limits=tuple(limits),
-        flags=tuple(flags_from_alerts(alerts, readings, limits)),
+        flags=tuple(signal_flags(alerts, readings, limits)),
         window=window,
         notes=tuple(notes),
     )

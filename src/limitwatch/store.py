@@ -280,6 +280,15 @@ MIGRATIONS: tuple[Migration, ...] = (
             )""",
         ),
     ),
+    Migration(
+        4,
+        "the rules that signalled on each reading",
+        (
+            # Space-separated rule ids; '' when none did. NULL marks readings stored before this
+            # column existed, for which only the alerts tell (their first and last signal).
+            "ALTER TABLE readings ADD COLUMN signals TEXT",
+        ),
+    ),
 )
 
 
@@ -416,6 +425,9 @@ class StoredReading:
     phase: str | None
     z: float | None
     mr: float | None
+    signals: tuple[str, ...] | None = None
+    """The rules that signalled on this reading (empty: none); None for a reading stored before
+    limitwatch recorded them."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -743,15 +755,16 @@ class Store:
             if not o.accepted:
                 continue
             r = o.reading
-            rows.append((r.stream, r.time, r.value, r.seq, o.index, o.phase, o.z, o.mr))
+            fired = " ".join(dict.fromkeys(s.rule for s in o.signals)) if o.signals else ""
+            rows.append((r.stream, r.time, r.value, r.seq, o.index, o.phase, o.z, o.mr, fired))
             if r.stream not in latest or r.time > latest[r.stream].reading.time:
                 latest[r.stream] = o
         if not rows:
             return 0
         with self.transaction():
             cur = self.db.conn.executemany(
-                """INSERT INTO readings (stream, time, value, seq, idx, phase, z, mr)
-                VALUES (?, ?, ?, ?, ?, ?, ?, ?)
+                """INSERT INTO readings (stream, time, value, seq, idx, phase, z, mr, signals)
+                VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)
                 ON CONFLICT (stream, time) DO NOTHING""",
                 rows,
             )
@@ -793,6 +806,7 @@ class Store:
                 phase=r["phase"],
                 z=r["z"],
                 mr=r["mr"],
+                signals=None if r["signals"] is None else tuple(r["signals"].split()),
             )
             for r in rows
         ]
