@@ -453,3 +453,38 @@ def test_report_page_escapes_and_keeps_names_apart() -> None:
     assert "&lt;x&gt;" in html and "<x>" not in html
     ids = re.findall(r'id="([^"]+)"', html)
     assert len(ids) == len(set(ids)) == 2
+
+
+def test_rule_labels_never_overlap_even_when_clusters_crowd_together() -> None:
+    # Clusters three readings apart at alternating heights, each with a label several lines
+    # tall: the first placement alone let neighbours at different heights collide.
+    pytest.importorskip("matplotlib")
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    from matplotlib.text import Text
+
+    from limitwatch import charts
+
+    rng = np.random.default_rng(11)
+    values = [20.0 + float(v) for v in rng.normal(0.0, 3.0, 70)]
+    pts = tuple(Point(i, T0 + STEP * i, values[i], None, i < 30) for i in range(70))
+    limits = (LimitSet(1, 30, 20.0, 3.0, 29.0, 11.0, 3.384, 11.06, 30, "mean", title="learned"),)
+    rules = ["beyond-limits", "four-of-five-zone-b", "run-one-side", "two-of-three-zone-a"]
+    flags = []
+    for k, start in enumerate(range(32, 68, 3)):
+        values[start] = 30.0 + 4.0 * (k % 3)  # peaks at different heights
+        flags += [Flag(start, rule) for rule in rules[: 2 + k % 3]]
+    pts = tuple(replace(p, value=values[p.index]) for p in pts)
+    fig = Figure(figsize=(12, 8), dpi=100)
+    FigureCanvasAgg(fig)
+    charts._draw(fig, ChartData("pack-9/downtime", pts, limits, tuple(flags)))
+    renderer = fig.canvas.get_renderer()
+    boxes = []
+    for axis in fig.axes:
+        for text in axis.texts:
+            if any(rule in text.get_text() for rule in rules):
+                text.update_positions(renderer)
+                boxes.append(Text.get_window_extent(text, renderer))
+    assert len(boxes) >= 4
+    clashes = [(a, b) for i, a in enumerate(boxes) for b in boxes[i + 1 :] if a.overlaps(b)]
+    assert clashes == []

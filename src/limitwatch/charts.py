@@ -580,6 +580,7 @@ def _draw(fig: Any, data: ChartData) -> None:
         plans.append((axis, seen, placed_labels, chart_id == "mr"))
 
     # Value ranges with room for the labels, then the labels themselves.
+    drawn: list[tuple[Any, bool]] = []
     for axis, seen, placed_labels, floored in plans:
         lo, hi = (min(seen), max(seen)) if seen else (0.0, 1.0)
         height_pt = axis.get_position().height * fig.get_figheight() * 72.0
@@ -613,7 +614,10 @@ def _draw(fig: Any, data: ChartData) -> None:
                     annotation_clip=False,
                     zorder=5,
                 )
-            _label(axis, text, ((x0 + x1) / 2.0, y), offset, up, bracket=len(group) > 1)
+            drawn.append(
+                (_label(axis, text, ((x0 + x1) / 2.0, y), offset, up, bracket=len(group) > 1), up)
+            )
+    _unoverlap(fig, drawn)
 
     if placed:
         _margin_labels(fig, ax, mr_ax, placed[-1][0])
@@ -726,12 +730,12 @@ def _margin_labels(fig: Any, ax: Any, mr_ax: Any, last: LimitSet) -> None:
 
 def _label(
     axis: Any, text: str, xy: tuple[float, float], offset: float, up: bool, *, bracket: bool
-) -> None:
+) -> Any:
     """A rule label ``offset`` points above (or below) ``xy``; a bracket label sits on a bracket
     drawn a few points off the cluster's extreme reading, hence the small extra lift. A label
     lifted clear of another keeps a thin leader to its reading."""
     sign = 1.0 if up else -1.0
-    axis.annotate(
+    return axis.annotate(
         text,
         xy=xy,
         xytext=(0, sign * (offset + (4.0 if bracket else 0.0))),
@@ -743,18 +747,50 @@ def _label(
         linespacing=1.15,
         annotation_clip=False,
         bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.85},
-        arrowprops=None
-        if offset <= 9.0
-        else {
+        arrowprops={  # a leader, shown only once the label is lifted clear of another
             "arrowstyle": "-",
             "color": FLAG,
             "lw": 0.5,
-            "alpha": 0.7,
+            "alpha": 0.7 if offset > 9.0 else 0.0,
             "shrinkA": 0.0,
             "shrinkB": 7.0 if bracket else 4.0,
         },
         zorder=6,
     )
+
+
+def _unoverlap(fig: Any, labels: Sequence[tuple[Any, bool]]) -> None:
+    """Lift (or lower) labels that still overlap one drawn before them on the same side.
+
+    The first placement estimates text widths and measures offsets from each cluster's own
+    extreme reading, so two neighbouring clusters at different heights can still collide; here
+    the real extents are measured once the value ranges are final, and a label overlapping an
+    earlier one moves away from the data until it is clear.
+    """
+    from matplotlib.text import Text
+
+    renderer = fig.canvas.get_renderer()
+    points_per_pixel = 72.0 / fig.dpi
+
+    def text_box(annotation: Any) -> Any:  # the text alone; an annotation's own includes its leader
+        annotation.update_positions(renderer)
+        return Text.get_window_extent(annotation, renderer).padded(2.0)
+
+    done: dict[tuple[int, bool], list[Any]] = {}
+    for annotation, up in labels:
+        side = done.setdefault((id(annotation.axes), up), [])
+        for _ in range(len(side) + 1):
+            box = text_box(annotation)
+            clash = [b for b in side if box.overlaps(b)]
+            if not clash:
+                break
+            shift = max(b.y1 for b in clash) - box.y0 if up else box.y1 - min(b.y0 for b in clash)
+            dx, dy = annotation.xyann
+            dy += (shift + 1.0) * points_per_pixel * (1.0 if up else -1.0)
+            annotation.xyann = (dx, dy)
+            if annotation.arrow_patch is not None:
+                annotation.arrow_patch.set_alpha(0.7)
+        side.append(text_box(annotation))
 
 
 def _caption(fig: Any, data: ChartData) -> None:
