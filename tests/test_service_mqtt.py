@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 import os
 import signal
+import subprocess
 import threading
 import time
 
@@ -18,6 +19,7 @@ import pytest
 from limitwatch.config import load_config
 from limitwatch.engine import StreamMonitor
 from limitwatch.model import Reading
+from tests.helpers import CLI
 from tests.receivers import WebhookReceiver, make_ca
 from tests.service_harness import (
     Publisher,
@@ -223,6 +225,27 @@ def test_a_signal_to_the_whole_process_group_stops_the_service_cleanly(broker, t
     finally:
         assert again.stop() == 0
     assert count(db, "readings") == 60 and count(db, "dead_letters") == 0
+
+
+def test_a_second_service_on_the_same_database_is_refused_and_a_crash_leaves_no_lock(
+    broker, tmp_path
+):
+    config = mqtt_config(tmp_path, broker.port)
+    first = ServiceProcess(config).start()
+    wait_until(lambda: service_up(first), what="first connected")
+    pid = first.process.pid
+    second = subprocess.run(
+        [str(CLI), "serve", "--config", str(config)], capture_output=True, text=True, timeout=60
+    )
+    assert second.returncode == 1
+    assert f"process {pid}" in second.stderr and "service.db" in second.stderr, second.stderr
+    assert first.alive()
+    first.kill()  # kill -9: the kernel drops the lock with the process
+    third = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: third.logs().count("connected to") >= 2, what="third connected")
+    finally:
+        assert third.stop() == 0
 
 
 def test_broker_restart_while_running_loses_nothing(broker, tmp_path):

@@ -41,6 +41,7 @@ from limitwatch.ingest.files import FileLine, FileSource
 from limitwatch.ingest.mqtt import Delivery, MqttSettings
 from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline
 from limitwatch.secrets import resolve_secret
@@ -86,6 +87,7 @@ class Service:
         self.outbox: OutboxWorker | None = None
         self.scheduler: BackgroundScheduler | None = None
         self.status: StatusServer | None = None
+        self._lock: InstanceLock | None = None
 
     # -- settings lookups ---
 
@@ -111,6 +113,9 @@ class Service:
         cfg = self.config
         now = self.clock()
         self.started_at = now
+        lock = InstanceLock(cfg.store.path)
+        lock.acquire()  # before anything is read: a second service must not even restore
+        self._lock = lock
         self.store = Store.open(cfg.store.path, now=now)
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._stored_baseline)
@@ -230,6 +235,9 @@ class Service:
             self.status.close()
         if self.store is not None:
             self.store.close()
+        if self._lock is not None:
+            self._lock.release()
+            self._lock = None
 
     # -- the worker ---
 
