@@ -79,7 +79,8 @@ class Service:
         self._offsets: dict[str, dict[str, int]] = {}
         self.last_commit: float | None = None
         self._heartbeat: float | None = None
-        """``time.monotonic()`` when the worker last came round its loop; None until it runs."""
+        """``time.monotonic()`` when the worker last came round its loop or committed a batch
+        (a file backlog is read in many batches within one job); None until it runs."""
         self.started_at: float | None = None
         self.store: Store | None = None
         self.pipeline: Pipeline | None = None
@@ -319,6 +320,7 @@ class Service:
         now = self.clock()
         result = self.pipeline.process(items, now, file_offsets=offsets)
         self.last_commit = now
+        self._heartbeat = time.monotonic()
         m = self.metrics
         m.batch_seconds.observe(time.perf_counter() - started)
         m.batch_size.observe(len(items))

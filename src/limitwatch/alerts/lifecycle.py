@@ -492,6 +492,7 @@ class AlertBook:
     def tick(self, now: float) -> BookReport:
         """Queue the reminders and escalations due at ``now`` (and opened notices a shelf held)."""
         report = BookReport()
+        changed = False
         with self.store.transaction():
             shelves = self.store.active_shelves(now)
             for alert in self.store.alerts(state="open"):
@@ -500,7 +501,9 @@ class AlertBook:
                     continue
                 updated = self._owe(alert, notices, shelves, now, report)
                 self._write(alert, updated)
-                self.forget()
+                changed = True
+        if changed:  # what is kept of these alerts is older than what was just written
+            self.forget()
         return report
 
     # ---- shared steps
