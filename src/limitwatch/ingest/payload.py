@@ -357,7 +357,7 @@ class PayloadParser:
     def _parse(self, stream: str, payload: bytes, received_at: float) -> Reading:
         if self._fields is None:
             try:
-                text = payload.decode("utf-8-sig")
+                text = _utf8(payload)
             except UnicodeDecodeError:
                 raise PayloadError(
                     "not-a-number", f"payload {_show(payload)} is not UTF-8 text"
