@@ -196,10 +196,6 @@ class MqttProcess:
         self._down: Connection | None = None
         self._reader: threading.Thread | None = None
 
-    @property
-    def pid(self) -> int | None:
-        return None if self._process is None else int(self._process.pid)
-
     def start(self) -> None:
         with self._lock:
             self._spawn()
