@@ -415,7 +415,15 @@ def test_metrics_and_health_endpoints(broker, tmp_path):
             text = reply.read().decode()
         assert 'limitwatch_readings_total{result="accepted"} 25.0' in text
         assert "limitwatch_batch_seconds_bucket" in text
+        assert 'limitwatch_connection_restarts{source="gateway"} 0.0' in text
+        assert "limitwatch_worker_last_round_seconds " in text
         broker.stop()
+
+        def metrics_say_down() -> bool:  # /metrics alone: nobody asks /health meanwhile
+            with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as reply:
+                return 'limitwatch_source_connected{source="gateway"} 0.0' in reply.read().decode()
+
+        wait_until(metrics_say_down, what="/metrics to show the source down")
 
         def degraded() -> bool:
             try:

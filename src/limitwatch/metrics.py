@@ -56,6 +56,17 @@ class Metrics:
         self.source_connected = Gauge(
             "limitwatch_source_connected", "1 when a source is connected.", ["source"], registry=r
         )
+        self.connection_restarts = Gauge(
+            "limitwatch_connection_restarts",
+            "Times an MQTT source's connection process died and was started again, since start.",
+            ["source"],
+            registry=r,
+        )
+        self.worker_last_round = Gauge(
+            "limitwatch_worker_last_round_seconds",
+            "Seconds since the worker last came round its loop or committed a batch.",
+            registry=r,
+        )
 
     def text(self) -> bytes:
         return generate_latest(self.registry)

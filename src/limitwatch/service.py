@@ -138,6 +138,7 @@ class Service:
 
         self.scheduler = self._make_scheduler()
         self.scheduler.start()
+        self.metrics.worker_last_round.set_function(self._since_last_round)
         if cfg.service.metrics_listen:
             self.status = StatusServer(cfg.service.metrics_listen, self.metrics, self.health)
             self.status.start()
@@ -175,6 +176,14 @@ class Service:
         self._mqtt_parsers[source.name] = SourceParser(source)
         client = MqttProcess(settings, self.intake)
         self.mqtt[source.name] = client
+        # Read when /metrics is scraped, so the figures are current whether or not anyone
+        # asked /health.
+        self.metrics.source_connected.labels(source.name).set_function(
+            lambda: 1.0 if client.connected.is_set() else 0.0
+        )
+        self.metrics.connection_restarts.labels(source.name).set_function(
+            lambda: float(client.restarts)
+        )
         client.start()
 
     def _make_scheduler(self) -> BackgroundScheduler:
@@ -408,13 +417,14 @@ class Service:
 
     # -- health ---
 
+    def _since_last_round(self) -> float:
+        beat = self._heartbeat
+        return 0.0 if beat is None else time.monotonic() - beat
+
     def health(self) -> dict[str, Any]:
         sources = {name: c.connected.is_set() for name, c in self.mqtt.items()}
-        for name, ok in sources.items():
-            self.metrics.source_connected.labels(name).set(1 if ok else 0)
         broken = self.pipeline is not None and self.pipeline.broken
-        beat = self._heartbeat
-        quiet = None if beat is None else round(time.monotonic() - beat, 3)
+        quiet = None if self._heartbeat is None else round(self._since_last_round(), 3)
         stalled = quiet is not None and quiet > self.config.service.stall_after
         ok = all(sources.values()) and not broken and not stalled
         return {
