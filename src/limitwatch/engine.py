@@ -37,7 +37,6 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from functools import partial
 from typing import Any, Literal
 
 from limitwatch.model import Outcome, Phase, Reading, StreamSignal
@@ -90,10 +89,7 @@ class MonitorSettings:
         object.__setattr__(
             self,
             "_makers",
-            tuple(
-                tuple(partial(DETECTORS[s.rule], **dict(s.params)) for s in chart)
-                for chart in (self.x_specs, self.mr_specs)
-            ),
+            tuple(tuple(s.maker() for s in chart) for chart in (self.x_specs, self.mr_specs)),
         )
         object.__setattr__(self, "detectors_key", _detectors_key(self))
         if self.learn_count < self.min_points:

@@ -58,8 +58,9 @@ import inspect
 import math
 import operator
 import re
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 from types import MappingProxyType
 from typing import Any, ClassVar
 
@@ -599,6 +600,11 @@ class RuleSpec:
     def build(self) -> Detector:
         """A fresh detector; every stream gets its own."""
         return DETECTORS[self.rule](**dict(self.params))
+
+    def maker(self) -> Callable[[], Detector]:
+        """:meth:`build` ready-made, for callers that build the same detector many times (a
+        restart builds one per stream): the parameters are unpacked once."""
+        return partial(DETECTORS[self.rule], **dict(self.params))
 
     def __str__(self) -> str:
         if not self.params:
