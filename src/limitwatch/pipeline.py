@@ -34,7 +34,7 @@ from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline
-from limitwatch.store import Store
+from limitwatch.store import CONFIG_AUTHOR, Store, same_numbers
 
 log = logging.getLogger("limitwatch.pipeline")
 
@@ -77,13 +77,13 @@ class Pipeline:
         store: Store,
         settings_for: Callable[[str], MonitorSettings],
         book: AlertBook,
-        stored_baseline: Callable[[str], Baseline | None] | None = None,
+        typed_baseline: Callable[[str], Baseline | None] | None = None,
         checkpoint_every: float = CHECKPOINT_EVERY_S,
     ) -> None:
         self.store = store
         self.book = book
         self._settings_for = settings_for
-        self._stored_baseline = stored_baseline or (lambda stream: None)
+        self._typed_baseline = typed_baseline or (lambda stream: None)
         self.checkpoint_every = checkpoint_every
         self.monitors: dict[str, StreamMonitor] = {}
         self.broken = False
@@ -114,11 +114,42 @@ class Pipeline:
         finally:
             if collecting:
                 gc.enable()
+        self._record_unnumbered()
         if caught_up:
             log.info(
                 "applied the readings committed after the checkpoints of %d streams", caught_up
             )
         return len(self.monitors)
+
+    def _record_unnumbered(self) -> None:
+        """Record the baselines in force that the store has never numbered.
+
+        Databases written before the store numbered every version hold monitors whose typed-in
+        baseline (version 1) has no row, so an operator's refit was numbered 1 too and never
+        adopted. Recording the monitor's version makes the next refit come out above it.
+        """
+        versions = self.store.baseline_versions()
+        missing = [
+            m
+            for m in self.monitors.values()
+            if m.baseline is not None and versions.get(m.stream, 0) < m.baseline_version
+        ]
+        if not missing:
+            return
+        with self.store.transaction():
+            for m in missing:
+                assert m.baseline is not None
+                typed = self._typed_baseline(m.stream) is not None
+                self.store.add_baseline(
+                    m.stream,
+                    m.baseline.to_dict(),
+                    now=0.0 if m.last_time is None else m.last_time,
+                    by=CONFIG_AUTHOR if typed else "limitwatch",
+                    reason="in force at a restart but never recorded",
+                    method=m.baseline.method,
+                    version=m.baseline_version,
+                )
+        log.info("recorded %d baselines in force that the store had not numbered", len(missing))
 
     def _catch_up(self) -> int:
         """Apply again the readings committed after each stream's checkpoint (there are some
@@ -144,14 +175,46 @@ class Pipeline:
             behind += 1
         return behind
 
-    def monitor(self, stream: str) -> StreamMonitor:
+    def monitor(self, stream: str, now: float = 0.0) -> StreamMonitor:
         monitor = self.monitors.get(stream)
         if monitor is None:
-            baseline = self._stored_baseline(stream)
-            monitor = StreamMonitor(stream, self._settings_for(stream), baseline=baseline)
+            found = self.baseline_in_force(stream, now)
+            baseline, version = (None, 1) if found is None else found
+            monitor = StreamMonitor(
+                stream, self._settings_for(stream), baseline=baseline, baseline_version=version
+            )
             self.monitors[stream] = monitor
             self._new.add(stream)
         return monitor
+
+    def baseline_in_force(self, stream: str, now: float) -> tuple[Baseline, int] | None:
+        """The baseline a new monitor of ``stream`` starts from, with its store version.
+
+        The store is the only numberer of baseline versions. A baseline typed into the config
+        is recorded as a version the first time it is used, and again whenever the config's
+        numbers change; otherwise the newest stored version (an operator's refit included)
+        is in force. So a refit always gets a number above the one the monitor holds, and
+        the refits job adopts it.
+        """
+        typed = self._typed_baseline(stream)
+        if typed is not None:
+            numbers = typed.to_dict()
+            recorded = self.store.latest_baseline_by(stream, CONFIG_AUTHOR)
+            if recorded is None or not same_numbers(recorded.numbers, numbers):
+                stored = self.store.add_baseline(
+                    stream,
+                    numbers,
+                    now=now,
+                    by=CONFIG_AUTHOR,
+                    reason="typed into the config",
+                    method=typed.method,
+                )
+                log.info("stream %s: the config's baseline is version %d", stream, stored.version)
+                return typed, stored.version
+        current = self.store.current_baseline(stream)
+        if current is None:
+            return None
+        return Baseline.from_dict(current.numbers), current.version
 
     def _due(self, touched: dict[str, StreamMonitor], fitted: list[str], now: float) -> list[str]:
         """Streams whose checkpoint this batch writes: new ones and fresh fits at once, the
@@ -209,7 +272,7 @@ class Pipeline:
                 dead_rows.append((item.source, item.raw, _reason(reason, item.detail)))
                 result.dead.append((item.source, reason))
                 continue
-            monitor = self.monitor(item.reading.stream)
+            monitor = self.monitor(item.reading.stream, now)
             outcome = monitor.update(item.reading)
             if not outcome.accepted:
                 reason = outcome.reason or "refused"
@@ -249,6 +312,19 @@ class Pipeline:
     def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:
         baseline = monitor.baseline
         assert baseline is not None and outcome.index is not None
+        current = self.store.current_baseline(monitor.stream)
+        if current is not None and current.version >= monitor.baseline_version:
+            # An operator refitted the stream while it was still learning, before the refits
+            # job adopted it: the operator's explicit choice wins over the automatic fit, which
+            # is not recorded (its number is taken).
+            monitor.set_baseline(Baseline.from_dict(current.numbers), version=current.version)
+            log.warning(
+                "stream %s: finished learning after an operator stored baseline version %d; "
+                "that version is in force and the learned fit is dropped",
+                monitor.stream,
+                current.version,
+            )
+            return
         first = outcome.index - baseline.n + 1
         self.store.add_baseline(
             monitor.stream,

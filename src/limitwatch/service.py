@@ -95,13 +95,8 @@ class Service:
     def settings_for(self, stream: str) -> MonitorSettings:
         return self.config.stream_settings(stream).monitor_settings()
 
-    def _stored_baseline(self, stream: str) -> Baseline | None:
-        typed = self.config.stream_settings(stream).typed_baseline()
-        if typed is not None:
-            return typed
-        assert self.store is not None
-        stored = self.store.current_baseline(stream)
-        return None if stored is None else Baseline.from_dict(stored.numbers)
+    def _typed_baseline(self, stream: str) -> Baseline | None:
+        return self.config.stream_settings(stream).typed_baseline()
 
     def _cadence_for(self, stream: str) -> tuple[float | None, float]:
         s = self.config.stream_settings(stream)
@@ -119,7 +114,7 @@ class Service:
         self._lock = lock
         self.store = Store.open(cfg.store.path, now=now)
         self.book = AlertBook(self.store, cfg.alert_policy())
-        self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._stored_baseline)
+        self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
         restored = self.pipeline.restore()
         log.info("restored %d streams from %s", restored, cfg.store.path)
 

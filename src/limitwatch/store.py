@@ -112,6 +112,15 @@ class NotificationNotFound(StoreError, LookupError):
     """No outbox row has the given id."""
 
 
+CONFIG_AUTHOR = "config"
+"""``created_by`` of a baseline typed into the config file."""
+
+
+def same_numbers(a: Mapping[str, Any], b: Mapping[str, Any]) -> bool:
+    """Whether two baselines' numbers are the same, as stored (NaN equal to NaN)."""
+    return json.dumps(dict(a), sort_keys=True) == json.dumps(dict(b), sort_keys=True)
+
+
 class BaselineVersionConflict(StoreError):
     """A baseline version was given that is not newer than the stream's current one."""
 
@@ -958,6 +967,15 @@ class Store:
     def current_baseline(self, stream: str) -> Baseline | None:
         row = self._one(
             "SELECT * FROM baselines WHERE stream = ? ORDER BY version DESC LIMIT 1", (stream,)
+        )
+        return None if row is None else Baseline._from_row(row)
+
+    def latest_baseline_by(self, stream: str, by: str) -> Baseline | None:
+        """The newest baseline of ``stream`` recorded by ``by`` (e.g. the config's)."""
+        row = self._one(
+            "SELECT * FROM baselines WHERE stream = ? AND created_by = ? "
+            "ORDER BY version DESC LIMIT 1",
+            (stream, by),
         )
         return None if row is None else Baseline._from_row(row)
 
