@@ -267,6 +267,10 @@ class StoreSection(_Section):
     path: ConfigPath = Path("limitwatch.db")
     keep_readings_for: PositiveDuration | None = None
     keep_readings_per_stream: int | None = Field(None, ge=1)
+    keep_dead_letters_for: PositiveDuration = 30 * 86400.0
+    """Dead letters older than this are dropped by the hourly retention job."""
+    keep_dead_letters: int = Field(100_000, ge=1)
+    """At most this many dead letters are kept (the newest)."""
 
 
 class ServiceSection(_Section):

@@ -61,6 +61,9 @@ class Job:
 
 _STOP = Job("stop")
 
+RETENTION_EVERY_S = 3600.0
+"""How often old readings and dead letters are pruned."""
+
 
 class Service:
     def __init__(self, config: Config, clock: Callable[[], float] = time.time) -> None:
@@ -214,8 +217,8 @@ class Service:
         scheduler.add_job(
             ask("refits"), "interval", seconds=cfg.service.refit_check_every, id="refits"
         )
-        if cfg.store.keep_readings_for or cfg.store.keep_readings_per_stream:
-            scheduler.add_job(ask("retention"), "interval", seconds=3600, id="retention")
+        # Always: dead letters are bounded by default even when readings are kept for ever.
+        scheduler.add_job(ask("retention"), "interval", seconds=RETENTION_EVERY_S, id="retention")
         return scheduler
 
     def _job_event(self, event: JobExecutionEvent) -> None:
@@ -364,12 +367,26 @@ class Service:
             for stream in self.pipeline.adopt_new_baselines(now):
                 log.info("stream %s: adopted a new stored baseline", stream)
         elif job.kind == "retention":
-            cfg = self.config.store
+            self.prune(now)
+
+    def prune(self, now: float) -> tuple[int, int]:
+        """The retention job: drop readings and dead letters past the ``[store]`` limits;
+        return (readings, dead letters) deleted."""
+        assert self.pipeline is not None and self.store is not None
+        cfg = self.config.store
+        readings = 0
+        if cfg.keep_readings_for is not None or cfg.keep_readings_per_stream is not None:
             # Readings newer than a stream's checkpoint are part of its state until the next one.
             self.pipeline.checkpoint_all(now)
-            self.store.prune_readings(
+            readings = self.store.prune_readings(
                 now, max_age_s=cfg.keep_readings_for, max_per_stream=cfg.keep_readings_per_stream
             )
+        letters = self.store.prune_dead_letters(
+            now, max_age_s=cfg.keep_dead_letters_for, max_count=cfg.keep_dead_letters
+        )
+        if readings or letters:
+            log.info("retention: dropped %d readings and %d dead letters", readings, letters)
+        return readings, letters
 
     def poll_files(self, name: str) -> int:
         """Read every new complete line of a file source, committing in batches; return the
