@@ -14,6 +14,13 @@ Threads and who owns what:
   dead notifier never holds up ingestion;
 * the status server answers ``/metrics`` and ``/health``.
 
+Time: every "now" (commits, jobs, file rows, MQTT receipt times) comes from a
+:class:`~limitwatch.clocks.ServiceClock`, which never goes backwards when the wall clock is
+stepped back; the worker looks for steps every round, logs a WARNING naming the size, and plans
+the scheduled jobs again from the monotonic clock (APScheduler plans on the wall clock, and
+after a step back would otherwise run nothing until the wall clock made the step up).
+``/health`` lists each job's last run and turns ``degraded`` when one is overdue.
+
 SIGTERM or SIGINT: intake stops, the batch in hand is finished, committed and acknowledged,
 sources disconnect cleanly (saying ``offline`` on their status topic), the process exits 0.
 Anything still queued but unacknowledged stays with the broker for the next start.
@@ -28,6 +35,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED, JobExecutionEvent
@@ -35,12 +43,14 @@ from apscheduler.schedulers.background import BackgroundScheduler
 
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
+from limitwatch.clocks import ServiceClock, describe_step
 from limitwatch.config import Config, FileSourceConfig, MqttSourceConfig
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.files import FileLine, FileSource
 from limitwatch.ingest.mqtt import Delivery, MqttSettings
 from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline
@@ -58,17 +68,43 @@ class Job:
     kind: str
     source: str | None = None
 
+    @property
+    def id(self) -> str:
+        """The scheduler's id for the job, and its name in ``/health``."""
+        return self.kind if self.source is None else f"{self.kind}:{self.source}"
+
 
 _STOP = Job("stop")
 
 RETENTION_EVERY_S = 3600.0
 """How often old readings and dead letters are pruned."""
 
+JOB_GRACE_S = 60.0
+"""A job is overdue in ``/health`` once it has not run for its interval plus the larger of
+this and its interval (a file poll reading a long backlog holds the other jobs up a while)."""
+
 
 class Service:
-    def __init__(self, config: Config, clock: Callable[[], float] = time.time) -> None:
+    def __init__(
+        self,
+        config: Config,
+        clock: Callable[[], float] = time.time,
+        monotonic: Callable[[], float] = time.monotonic,
+    ) -> None:
+        """``clock`` (the wall clock) and ``monotonic`` are there to be replaced in tests, so
+        that a test can step the wall clock by hours without waiting."""
         self.config = config
-        self.clock = clock
+        self.timekeeper = ServiceClock(clock, monotonic)
+        self.clock = self.timekeeper.now
+        """The service's time: the wall clock, except that it never goes backwards."""
+        self.monotonic = monotonic
+        self._job_every: dict[str, float] = {}
+        """Scheduled job id -> interval in seconds."""
+        self._job_fired: dict[str, float] = {}
+        """Job id -> monotonic time the scheduler last queued it."""
+        self._job_ran: dict[str, tuple[float, float]] = {}
+        """Job id -> (monotonic time, service time) the worker last carried it out."""
+        self._started_mono = monotonic()
         # SimpleQueue is written in C, without Queue's Python-level locks and conditions: a put
         # and a get cost about a twentieth as much, paid for every reading. Nothing here needs
         # Queue's size bound or task tracking.
@@ -117,6 +153,7 @@ class Service:
         cfg = self.config
         now = self.clock()
         self.started_at = now
+        self._started_mono = self.monotonic()
         lock = InstanceLock(cfg.store.path)
         lock.acquire()  # before anything is read: a second service must not even restore
         self._lock = lock
@@ -197,29 +234,55 @@ class Service:
         )
         scheduler.add_listener(self._job_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED)
 
-        def ask(kind: str, source: str | None = None) -> Callable[[], None]:
-            return lambda: self.intake.put(Job(kind, source))
+        def every(seconds: float, kind: str, source: str | None = None, **options: Any) -> None:
+            job = Job(kind, source)
+
+            def ask() -> None:
+                self._job_fired[job.id] = self.monotonic()
+                self.intake.put(job)
+
+            self._job_every[job.id] = seconds
+            scheduler.add_job(ask, "interval", seconds=seconds, id=job.id, **options)
 
         for name, source in ((s.name, s) for s in cfg.sources if isinstance(s, FileSourceConfig)):
-            scheduler.add_job(
-                ask("poll-files", name),
-                "interval",
-                seconds=source.poll_every,
-                id=f"poll:{name}",
-                next_run_time=_now_dt(),
-            )
-        scheduler.add_job(
-            ask("stale-check"), "interval", seconds=cfg.service.stale_check_every, id="stale"
-        )
-        scheduler.add_job(
-            ask("alert-tick"), "interval", seconds=cfg.service.alert_tick_every, id="alert-tick"
-        )
-        scheduler.add_job(
-            ask("refits"), "interval", seconds=cfg.service.refit_check_every, id="refits"
-        )
+            every(source.poll_every, "poll-files", name, next_run_time=_now_dt())
+        every(cfg.service.stale_check_every, "stale-check")
+        every(cfg.service.alert_tick_every, "alert-tick")
+        every(cfg.service.refit_check_every, "refits")
         # Always: dead letters are bounded by default even when readings are kept for ever.
-        scheduler.add_job(ask("retention"), "interval", seconds=RETENTION_EVERY_S, id="retention")
+        every(RETENTION_EVERY_S, "retention")
         return scheduler
+
+    def _watch_clock(self) -> None:
+        """Notice a step of the wall clock; say so and plan the jobs again."""
+        step = self.timekeeper.step()
+        if step is None:
+            return
+        log.warning(
+            "the wall clock stepped %s; receipt times go on from the last one given out "
+            "(now %.1f s ahead of the wall clock, catching up) and the scheduled jobs are "
+            "planned again",
+            describe_step(step),
+            self.timekeeper.ahead_s(),
+        )
+        self._replan()
+
+    def _replan(self) -> None:
+        """Set each job's next run from the monotonic clock: one interval after the scheduler
+        last queued it. APScheduler keeps next run times on the wall clock, so after a step
+        back of two hours it would wait two hours before running anything."""
+        scheduler = self.scheduler
+        if scheduler is None or not scheduler.running:
+            return
+        mono = self.monotonic()
+        wall_now = _now_dt()  # the scheduler's own clock, whatever the service was given
+        for job in scheduler.get_jobs():
+            every = self._job_every.get(job.id)
+            if every is None or job.next_run_time is None:  # not ours, or paused
+                continue
+            since = mono - self._job_fired.get(job.id, self._started_mono)
+            wait = min(every, max(0.0, every - since))
+            scheduler.modify_job(job.id, next_run_time=wall_now + timedelta(seconds=wait))
 
     def _job_event(self, event: JobExecutionEvent) -> None:
         if event.exception is not None:
@@ -259,6 +322,7 @@ class Service:
         next start restores without applying any reading again."""
         while not self._stopping.is_set():
             self._heartbeat = time.monotonic()
+            self._watch_clock()
             batch, jobs = self._take()
             if batch:
                 self._process_deliveries(batch)
@@ -283,7 +347,8 @@ class Service:
         # batch_wait counts from when the first reading arrived, not from when the worker got
         # to it: a reading that queued while the previous batch was being committed has
         # already waited, and waiting the whole batch_wait again would double its delay.
-        waited = self.clock() - first.received_at if isinstance(first, Delivery) else 0.0
+        stamped = first.received_at if isinstance(first, Delivery) else None
+        waited = 0.0 if stamped is None else self.timekeeper.wall() - stamped
         deadline = time.monotonic() + min(cfg.batch_wait, max(0.0, cfg.batch_wait - waited))
         item = first
         while True:
@@ -310,7 +375,10 @@ class Service:
 
     def _parse_delivery(self, d: Delivery) -> Parsed:
         try:
-            reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, d.received_at)
+            # The connection process stamped the wall clock; a step back since must not make
+            # a reading timed at receipt older than the one before it.
+            received = self.timekeeper.receipt(d.received_at)
+            reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, received)
         except PayloadError as exc:
             return Parsed(d.source, _envelope(d), error=exc.reason, detail=str(exc))
         return Parsed(d.source, _envelope(d), reading=reading)
@@ -368,6 +436,7 @@ class Service:
                 log.info("stream %s: adopted a new stored baseline", stream)
         elif job.kind == "retention":
             self.prune(now)
+        self._job_ran[job.id] = (self.monotonic(), now)
 
     def prune(self, now: float) -> tuple[int, int]:
         """The retention job: drop readings and dead letters past the ``[store]`` limits;
@@ -443,7 +512,9 @@ class Service:
         broken = self.pipeline is not None and self.pipeline.broken
         quiet = None if self._heartbeat is None else round(self._since_last_round(), 3)
         stalled = quiet is not None and quiet > self.config.service.stall_after
-        ok = all(sources.values()) and not broken and not stalled
+        jobs = self._job_health()
+        overdue = any(j["overdue"] for j in jobs.values())
+        ok = all(sources.values()) and not broken and not stalled and not overdue
         return {
             "status": "ok" if ok else "degraded",
             "worker": "stalled" if stalled else "failed" if broken else "running",
@@ -453,7 +524,28 @@ class Service:
             "queue_depth": self.intake.qsize(),
             "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
             "last_commit": self.last_commit,
+            "jobs": jobs,
+            "clock": {
+                "steps_seen": self.timekeeper.steps,
+                "ahead_of_wall_s": round(self.timekeeper.ahead_s(), 3),
+            },
         }
+
+    def _job_health(self) -> dict[str, dict[str, Any]]:
+        """Each scheduled job's interval, last run (ISO 8601, service time) and whether it is
+        overdue, measured on the monotonic clock so that a clock step neither hides nor fakes
+        a late job."""
+        mono = self.monotonic()
+        out: dict[str, dict[str, Any]] = {}
+        for job_id, every in self._job_every.items():
+            ran = self._job_ran.get(job_id)
+            since = mono - (self._started_mono if ran is None else ran[0])
+            out[job_id] = {
+                "every_s": every,
+                "last_run": None if ran is None else format_time(ran[1]),
+                "overdue": since > every + max(every, JOB_GRACE_S),
+            }
+        return out
 
 
 def _envelope(d: Delivery) -> bytes:
@@ -461,9 +553,7 @@ def _envelope(d: Delivery) -> bytes:
     return d.topic.encode() + b"\n" + d.payload
 
 
-def _now_dt() -> Any:
-    from datetime import UTC, datetime
-
+def _now_dt() -> datetime:
     return datetime.now(UTC)
 
 
