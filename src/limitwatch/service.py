@@ -57,6 +57,8 @@ from limitwatch.pipeline import BatchResult, Parsed, Pipeline
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
+from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
+from limitwatch.streamcap import StreamCap
 
 log = logging.getLogger("limitwatch.service")
 
@@ -105,6 +107,7 @@ class Service:
         self._job_ran: dict[str, tuple[float, float]] = {}
         """Job id -> (monotonic time, service time) the worker last carried it out."""
         self._started_mono = monotonic()
+        self.stream_cap = StreamCap({s.name: s.max_streams for s in config.sources}, monotonic)
         # SimpleQueue is written in C, without Queue's Python-level locks and conditions: a put
         # and a get cost about a twentieth as much, paid for every reading. Nothing here needs
         # Queue's size bound or task tracking.
@@ -179,6 +182,10 @@ class Service:
         self.scheduler = self._make_scheduler()
         self.scheduler.start()
         self.metrics.worker_last_round.set_function(self._since_last_round)
+        for name in self.stream_cap.limits:
+            self.metrics.source_streams.labels(name).set_function(
+                lambda name=name: float(self.stream_cap.count(name))
+            )
         if cfg.service.metrics_listen:
             self.status = StatusServer(cfg.service.metrics_listen, self.metrics, self.health)
             self.status.start()
@@ -381,7 +388,20 @@ class Service:
             reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, received)
         except PayloadError as exc:
             return Parsed(d.source, _envelope(d), error=exc.reason, detail=str(exc))
+        refused = self._refuse_new_stream(d.source, reading.stream)
+        if refused is not None:
+            return Parsed(d.source, _envelope(d), error=TOO_MANY_STREAMS, detail=refused)
         return Parsed(d.source, _envelope(d), reading=reading)
+
+    def _refuse_new_stream(self, source: str, stream: str) -> str | None:
+        """Why a reading for ``stream`` is refused (its source already feeds ``max_streams``
+        streams and this one would be new), or None when it may go on."""
+        assert self.pipeline is not None
+        cap = self.stream_cap
+        if cap.admit(source, stream, exists=stream in self.pipeline.monitors):
+            return None
+        self.metrics.streams_refused.labels(source).inc()
+        return f"stream {stream[:200]!r} would be more than max_streams = {cap.limits[source]}"
 
     def _process_deliveries(self, batch: list[Delivery]) -> None:
         items = [self._parse_delivery(d) for d in batch]
@@ -499,6 +519,11 @@ class Service:
             reading = parser.parse(line.record, self.clock())
         except PayloadError as exc:
             return Parsed(line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}")
+        refused = self._refuse_new_stream(line.source, reading.stream)
+        if refused is not None:
+            return Parsed(
+                line.source, line.raw, error=TOO_MANY_STREAMS, detail=f"{where}: {refused}"
+            )
         return Parsed(line.source, line.raw, reading=reading)
 
     # -- health ---
