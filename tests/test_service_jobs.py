@@ -292,3 +292,32 @@ def test_after_a_real_step_of_the_process_clock_the_scheduler_keeps_running_jobs
         assert any("stepped back by 2h" in r.getMessage() for r in caplog.records)
         stale_ran = service._job_ran["stale-check"]
         wait_until(lambda: service._job_ran["stale-check"] != stale_ran, what="a stale check")
+
+
+def test_a_restart_after_the_clock_stepped_back_goes_on_from_the_last_commit(
+    broker, tmp_path: Path, caplog: pytest.LogCaptureFixture
+):
+    """The clock is stepped back two hours while the service is down: after the restart,
+    readings timed at receipt are still later than the stored ones, so none is refused."""
+    caplog.set_level(logging.INFO, logger="limitwatch")
+    config = load_config(mqtt_clock_config(tmp_path, broker.port, free_port()))
+    db = tmp_path / "service.db"
+
+    def deliver(service: Service, wall, values: list[str]) -> None:
+        for value in values:
+            service.intake.put(
+                Delivery("gateway", "plant/line-1/level", value.encode(), wall(), 0, 0, False)
+            )
+            time.sleep(0.01)
+
+    with running(Service(config)) as service:
+        deliver(service, time.time, ["20.0", "20.1", "20.2"])
+        wait_until(lambda: count(db, "readings") == 3, what="readings of the first run")
+    back = lambda: time.time() - 7200  # noqa: E731
+    with running(Service(config, clock=back)) as service:
+        deliver(service, back, ["20.3", "20.4"])
+        wait_until(lambda: count(db, "readings") == 5, what="readings after the restart")
+    assert count(db, "dead_letters") == 0
+    times = [t for (t,) in query(db, "SELECT time FROM readings ORDER BY rowid")]
+    assert all(b > a for a, b in itertools.pairwise(times))
+    assert any("behind the store's last commit by 1h 59m" in r.getMessage() for r in caplog.records)

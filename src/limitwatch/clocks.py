@@ -14,7 +14,10 @@ hours; and it hid silent streams from the stale check for as long.
   clock has caught up with it, and then follows the wall clock again. After a step back of
   S seconds that takes S / (1 - CATCH_UP_RATE) seconds (four hours for a two-hour step); in
   that time the service's times run ahead of the wall clock, by less and less;
-* a step forward is followed at once (times must not go back, but they may jump ahead).
+* a step forward is followed at once (times must not go back, but they may jump ahead);
+* a restart goes on from the last time the previous run committed, when the wall clock is
+  behind it by at most :data:`CARRY_ON_AT_MOST_S` (a clock stepped back while the service was
+  down); further behind than that, the stored time is taken to be the wrong one.
 
 So receipt times never go backwards and silence (``now`` minus a stream's last receipt time)
 is measured on one clock: a stale stream is noticed through a step back, at worst
@@ -55,6 +58,11 @@ STEP_TOLERANCE_S = 1.0
 """Smallest difference between wall and monotonic elapsed time reported as a step. NTP's
 gradual corrections change the wall clock's rate by at most 500 parts per million, a
 thousand times less than this over the half second between two looks."""
+
+CARRY_ON_AT_MOST_S = 86400.0
+"""Furthest ahead of the wall clock a restart goes on from the previous run's last time. A
+store written while the clock was a year fast must not hold the service's time a year ahead
+for two years."""
 
 RECEIPT_TICK_S = 1e-6
 """Least gap between two receipt times given out: one stream's readings need distinct times."""
@@ -107,6 +115,16 @@ class ServiceClock:
             if now < floor:
                 now = self._last = floor
             return now
+
+    def carry_on_from(self, time_: float) -> bool:
+        """Never give out a time earlier than ``time_`` (the last time a previous run of the
+        service committed); True when that is ahead of the wall clock, which then has to
+        catch up with it as after a step back."""
+        with self._lock:
+            if time_ <= self._last:
+                return False
+            self._last, self._last_mono = time_, self.monotonic()
+            return time_ > self.wall()
 
     def step(self) -> float | None:
         """Seconds the wall clock jumped (negative: back) since the last call, beyond what the

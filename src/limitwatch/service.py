@@ -43,7 +43,7 @@ from apscheduler.schedulers.background import BackgroundScheduler
 
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
-from limitwatch.clocks import ServiceClock, describe_step
+from limitwatch.clocks import CARRY_ON_AT_MOST_S, ServiceClock, describe_step
 from limitwatch.config import Config, FileSourceConfig, MqttSourceConfig
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.files import FileLine, FileSource
@@ -161,6 +161,7 @@ class Service:
         lock.acquire()  # before anything is read: a second service must not even restore
         self._lock = lock
         self.store = Store.open(cfg.store.path, now=now)
+        self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._stored_baseline)
         restored = self.pipeline.restore()
@@ -190,6 +191,29 @@ class Service:
             self.status = StatusServer(cfg.service.metrics_listen, self.metrics, self.health)
             self.status.start()
             log.info("metrics and health on http://%s:%d/", *self.status.address)
+
+    def _carry_on_from(self, last: float | None) -> None:
+        """After a restart, go on from the last time the previous run committed when the wall
+        clock is now behind it (stepped back while the service was down), so readings timed at
+        receipt are not older than the ones stored."""
+        if last is None:
+            return
+        behind = last - self.timekeeper.wall()
+        if behind > CARRY_ON_AT_MOST_S:
+            log.warning(
+                "the store's last commit is %s ahead of the wall clock, more than the %d s the "
+                "service will go on from; readings timed at receipt are refused as out-of-order "
+                "until the clock passes it (check the clock)",
+                describe_step(-behind).removeprefix("back by "),
+                CARRY_ON_AT_MOST_S,
+            )
+            return
+        if self.timekeeper.carry_on_from(last):
+            log.warning(
+                "the wall clock is behind the store's last commit by %s (stepped back while the "
+                "service was down?); the service's time goes on from that commit, catching up",
+                describe_step(-behind).removeprefix("back by "),
+            )
 
     def _start_mqtt(self, source: MqttSourceConfig) -> None:
         password = resolve_secret(

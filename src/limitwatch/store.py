@@ -901,6 +901,13 @@ class Store:
         )
         return [Reading(stream, t, v, seq) for t, v, seq in rows]
 
+    def last_service_time(self) -> float | None:
+        """The latest service time at which a batch with accepted readings committed (the
+        newest ``last_seen``), or None for an empty store: a restart goes on from it if the
+        wall clock was stepped back meanwhile."""
+        row = self.db.conn.execute("SELECT max(last_seen) FROM streams").fetchone()
+        return None if row[0] is None else float(row[0])
+
     def stream_last_times(self) -> dict[str, float | None]:
         """Each stream's latest committed reading time."""
         return dict(self.db.conn.execute("SELECT id, last_time FROM streams"))
