@@ -150,10 +150,10 @@ def describe_step(seconds: float) -> str:
     >>> describe_step(-7200.0)
     'back by 2h 0m 0s (7200.0 s)'
     >>> describe_step(95.5)
-    'forward by 0h 1m 35s (95.5 s)'
+    'forward by 0h 1m 36s (95.5 s)'
     """
     size = abs(seconds)
-    whole = int(size)
+    whole = round(size)  # the two clocks are read a moment apart: 7199.99 s is a 2 h step
     hours, rest = divmod(whole, 3600)
     return (
         f"{'back' if seconds < 0 else 'forward'} by {hours}h {rest // 60}m {rest % 60}s "
