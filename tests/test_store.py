@@ -7,6 +7,7 @@ connection, so it sees only what was committed to the file.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import sqlite3
@@ -20,6 +21,7 @@ from hypothesis import strategies as st
 
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.store import (
+    DEAD_LETTER_KEEP_BYTES,
     MIGRATIONS,
     AlertAlreadyAcknowledged,
     AlertAlreadyCleared,
@@ -435,6 +437,69 @@ def test_dead_letters_keep_the_raw_payload(fresh_db: Store):
     newest, oldest = fresh_db.dead_letters()
     assert (newest.payload, newest.reason) == ("12;;", "no value column")
     assert (oldest.payload, oldest.source) == (b"\xff\x00temp", "mqtt:plant/line-1")
+
+
+def test_a_10_mb_dead_letter_keeps_a_bounded_prefix_with_its_size_and_hash(fresh_db: Store):
+    huge = b"{" + b"7" * (10 * 1024 * 1024) + b"}"
+    text = "\u00e9" * 3000  # 6000 bytes of UTF-8: over the bound although under it in characters
+    with fresh_db.transaction():
+        fresh_db.add_dead_letter("mqtt:plant", huge, "oversize", now=T0)
+        fresh_db.add_dead_letter("file:a.csv", text, "bad-json", now=T0 + 1)
+        fresh_db.add_dead_letter("file:a.csv", "12;;", "missing-field", now=T0 + 2)
+    short, cut_text, cut = fresh_db.dead_letters()
+    assert cut.payload == huge[:DEAD_LETTER_KEEP_BYTES] and cut.truncated
+    assert cut.payload_size == len(huge) == 10 * 1024 * 1024 + 2
+    assert cut.payload_sha256 == hashlib.sha256(huge).hexdigest()
+    assert cut_text.payload == text.encode()[:DEAD_LETTER_KEEP_BYTES]
+    assert cut_text.payload_size == 6000 and cut_text.truncated
+    assert cut_text.payload_sha256 == hashlib.sha256(text.encode()).hexdigest()
+    assert (short.payload, short.payload_size, short.truncated) == ("12;;", 4, False)
+    # what the file holds, read by another connection
+    stored = raw(fresh_db).execute("SELECT max(length(payload)) FROM dead_letters").fetchone()[0]
+    assert stored <= DEAD_LETTER_KEEP_BYTES
+
+
+def test_dead_letters_are_pruned_by_age_then_by_count(tmp_path: Path):
+    path = tmp_path / "letters.db"
+    with Store.open(path, now=T0) as store:
+        with store.transaction():
+            for i in range(50):  # one an hour
+                store.add_dead_letter("src", f"bad {i}", "bad-json", now=T0 + 3600 * i)
+        now = T0 + 3600 * 49
+        # older than 24 h: letters 0..24 (letter 25 is exactly 24 h old and stays)
+        assert store.prune_dead_letters(now, max_age_s=24 * 3600) == 25
+        assert store.prune_dead_letters(now, max_count=10) == 15
+        assert store.prune_dead_letters(now, max_age_s=24 * 3600, max_count=10) == 0
+    left = [r[0] for r in sqlite3.connect(path).execute("SELECT payload FROM dead_letters")]
+    assert left == [f"bad {i}" for i in range(40, 50)]
+
+
+def test_upgrading_cuts_dead_letters_stored_whole_and_keeps_their_size_and_hash(tmp_path: Path):
+    path = tmp_path / "v4.db"
+    old = sqlite_utils.Database(path)
+    migrate(old, now=T0, target=4)
+    big = bytes(range(256)) * 4000  # 1,024,000 bytes
+    old.execute(
+        "INSERT INTO dead_letters (source, received_at, reason, payload) VALUES (?, ?, ?, ?)",
+        ("mqtt:plant", T0, "oversize", big),
+    )
+    old.execute(
+        "INSERT INTO dead_letters (source, received_at, reason, payload) VALUES (?, ?, ?, ?)",
+        ("file:a.csv", T0 + 1, "bad-json", "{oops"),
+    )
+    old.execute(
+        "INSERT INTO dead_letters (source, received_at, reason, payload) VALUES (?, ?, ?, NULL)",
+        ("file:a.csv", T0 + 2, "unreadable-line"),
+    )
+    old.close()
+    with Store.open(path, now=T0 + 60) as store:
+        assert store.schema_version() == MIGRATIONS[-1].version
+        empty, small, cut = store.dead_letters()
+    assert cut.payload == big[:DEAD_LETTER_KEEP_BYTES] and cut.truncated
+    assert (cut.payload_size, cut.payload_sha256) == (len(big), hashlib.sha256(big).hexdigest())
+    assert (small.payload, small.payload_size) == ("{oops", 5)
+    assert small.payload_sha256 == hashlib.sha256(b"{oops").hexdigest()
+    assert (empty.payload, empty.payload_size, empty.payload_sha256) == (None, None, None)
 
 
 # --------------------------------------------------------------------------- alerts

@@ -267,6 +267,10 @@ class StoreSection(_Section):
     path: ConfigPath = Path("limitwatch.db")
     keep_readings_for: PositiveDuration | None = None
     keep_readings_per_stream: int | None = Field(None, ge=1)
+    keep_dead_letters_for: PositiveDuration = 30 * 86400.0
+    """Dead letters older than this are dropped by the hourly retention job."""
+    keep_dead_letters: int = Field(100_000, ge=1)
+    """At most this many dead letters are kept (the newest)."""
 
 
 class ServiceSection(_Section):
@@ -563,6 +567,8 @@ class MqttSourceConfig(_Section):
     """Where ``online``/``offline`` is published, retained; filled in as
     ``limitwatch/<client_id>/status`` when left out (so it is None only on a failed load)."""
     max_payload_bytes: int = Field(65536, ge=1, le=268_435_455)
+    max_streams: int = Field(10_000, ge=1)
+    """Most streams this source may feed; readings for further new streams are refused."""
     reconnect_min_s: int = Field(1, ge=1, le=3600)
     reconnect_max_s: int = Field(60, ge=1, le=86400)
     topics: list[MqttTopic] = Field(min_length=1)
@@ -652,6 +658,8 @@ class FileSourceConfig(_Section):
     stream_fixed: str | None = Field(None, min_length=1)
     seq: str | None = Field(None, min_length=1)
     start_at: Literal["beginning", "end"] = "beginning"
+    max_streams: int = Field(10_000, ge=1)
+    """Most streams this source may feed; rows for further new streams are refused."""
 
     @field_validator("glob")
     @classmethod

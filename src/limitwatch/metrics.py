@@ -67,6 +67,18 @@ class Metrics:
             "Seconds since the worker last came round its loop or committed a batch.",
             registry=r,
         )
+        self.source_streams = Gauge(
+            "limitwatch_source_streams",
+            "Streams each source has fed since start (capped by its max_streams).",
+            ["source"],
+            registry=r,
+        )
+        self.streams_refused = Counter(
+            "limitwatch_streams_refused",
+            "Readings refused because their source already fed max_streams streams.",
+            ["source"],
+            registry=r,
+        )
 
     def text(self) -> bytes:
         return generate_latest(self.registry)

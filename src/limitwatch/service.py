@@ -14,6 +14,13 @@ Threads and who owns what:
   dead notifier never holds up ingestion;
 * the status server answers ``/metrics`` and ``/health``.
 
+Time: every "now" (commits, jobs, file rows, MQTT receipt times) comes from a
+:class:`~limitwatch.clocks.ServiceClock`, which never goes backwards when the wall clock is
+stepped back; the worker looks for steps every round, logs a WARNING naming the size, and plans
+the scheduled jobs again from the monotonic clock (APScheduler plans on the wall clock, and
+after a step back would otherwise run nothing until the wall clock made the step up).
+``/health`` lists each job's last run and turns ``degraded`` when one is overdue.
+
 SIGTERM or SIGINT: intake stops, the batch in hand is finished, committed and acknowledged,
 sources disconnect cleanly (saying ``offline`` on their status topic), the process exits 0.
 Anything still queued but unacknowledged stays with the broker for the next start.
@@ -28,6 +35,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED, JobExecutionEvent
@@ -35,18 +43,22 @@ from apscheduler.schedulers.background import BackgroundScheduler
 
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
+from limitwatch.clocks import CARRY_ON_AT_MOST_S, ServiceClock, describe_step
 from limitwatch.config import Config, FileSourceConfig, MqttSourceConfig
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.files import FileLine, FileSource
 from limitwatch.ingest.mqtt import Delivery, MqttSettings
 from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
+from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
+from limitwatch.streamcap import StreamCap
 
 log = logging.getLogger("limitwatch.service")
 
@@ -58,14 +70,44 @@ class Job:
     kind: str
     source: str | None = None
 
+    @property
+    def id(self) -> str:
+        """The scheduler's id for the job, and its name in ``/health``."""
+        return self.kind if self.source is None else f"{self.kind}:{self.source}"
+
 
 _STOP = Job("stop")
 
+RETENTION_EVERY_S = 3600.0
+"""How often old readings and dead letters are pruned."""
+
+JOB_GRACE_S = 60.0
+"""A job is overdue in ``/health`` once it has not run for its interval plus the larger of
+this and its interval (a file poll reading a long backlog holds the other jobs up a while)."""
+
 
 class Service:
-    def __init__(self, config: Config, clock: Callable[[], float] = time.time) -> None:
+    def __init__(
+        self,
+        config: Config,
+        clock: Callable[[], float] = time.time,
+        monotonic: Callable[[], float] = time.monotonic,
+    ) -> None:
+        """``clock`` (the wall clock) and ``monotonic`` are there to be replaced in tests, so
+        that a test can step the wall clock by hours without waiting."""
         self.config = config
-        self.clock = clock
+        self.timekeeper = ServiceClock(clock, monotonic)
+        self.clock = self.timekeeper.now
+        """The service's time: the wall clock, except that it never goes backwards."""
+        self.monotonic = monotonic
+        self._job_every: dict[str, float] = {}
+        """Scheduled job id -> interval in seconds."""
+        self._job_fired: dict[str, float] = {}
+        """Job id -> monotonic time the scheduler last queued it."""
+        self._job_ran: dict[str, tuple[float, float]] = {}
+        """Job id -> (monotonic time, service time) the worker last carried it out."""
+        self._started_mono = monotonic()
+        self.stream_cap = StreamCap({s.name: s.max_streams for s in config.sources}, monotonic)
         # SimpleQueue is written in C, without Queue's Python-level locks and conditions: a put
         # and a get cost about a twentieth as much, paid for every reading. Nothing here needs
         # Queue's size bound or task tracking.
@@ -109,10 +151,12 @@ class Service:
         cfg = self.config
         now = self.clock()
         self.started_at = now
+        self._started_mono = self.monotonic()
         lock = InstanceLock(cfg.store.path)
         lock.acquire()  # before anything is read: a second service must not even restore
         self._lock = lock
         self.store = Store.open(cfg.store.path, now=now)
+        self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
         restored = self.pipeline.restore()
@@ -134,10 +178,37 @@ class Service:
         self.scheduler = self._make_scheduler()
         self.scheduler.start()
         self.metrics.worker_last_round.set_function(self._since_last_round)
+        for name in self.stream_cap.limits:
+            self.metrics.source_streams.labels(name).set_function(
+                lambda name=name: float(self.stream_cap.count(name))
+            )
         if cfg.service.metrics_listen:
             self.status = StatusServer(cfg.service.metrics_listen, self.metrics, self.health)
             self.status.start()
             log.info("metrics and health on http://%s:%d/", *self.status.address)
+
+    def _carry_on_from(self, last: float | None) -> None:
+        """After a restart, go on from the last time the previous run committed when the wall
+        clock is now behind it (stepped back while the service was down), so readings timed at
+        receipt are not older than the ones stored."""
+        if last is None:
+            return
+        behind = last - self.timekeeper.wall()
+        if behind > CARRY_ON_AT_MOST_S:
+            log.warning(
+                "the store's last commit is %s ahead of the wall clock, more than the %d s the "
+                "service will go on from; readings timed at receipt are refused as out-of-order "
+                "until the clock passes it (check the clock)",
+                describe_step(-behind).removeprefix("back by "),
+                CARRY_ON_AT_MOST_S,
+            )
+            return
+        if self.timekeeper.carry_on_from(last):
+            log.warning(
+                "the wall clock is behind the store's last commit by %s (stepped back while the "
+                "service was down?); the service's time goes on from that commit, catching up",
+                describe_step(-behind).removeprefix("back by "),
+            )
 
     def _start_mqtt(self, source: MqttSourceConfig) -> None:
         password = resolve_secret(
@@ -189,29 +260,55 @@ class Service:
         )
         scheduler.add_listener(self._job_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED)
 
-        def ask(kind: str, source: str | None = None) -> Callable[[], None]:
-            return lambda: self.intake.put(Job(kind, source))
+        def every(seconds: float, kind: str, source: str | None = None, **options: Any) -> None:
+            job = Job(kind, source)
+
+            def ask() -> None:
+                self._job_fired[job.id] = self.monotonic()
+                self.intake.put(job)
+
+            self._job_every[job.id] = seconds
+            scheduler.add_job(ask, "interval", seconds=seconds, id=job.id, **options)
 
         for name, source in ((s.name, s) for s in cfg.sources if isinstance(s, FileSourceConfig)):
-            scheduler.add_job(
-                ask("poll-files", name),
-                "interval",
-                seconds=source.poll_every,
-                id=f"poll:{name}",
-                next_run_time=_now_dt(),
-            )
-        scheduler.add_job(
-            ask("stale-check"), "interval", seconds=cfg.service.stale_check_every, id="stale"
-        )
-        scheduler.add_job(
-            ask("alert-tick"), "interval", seconds=cfg.service.alert_tick_every, id="alert-tick"
-        )
-        scheduler.add_job(
-            ask("refits"), "interval", seconds=cfg.service.refit_check_every, id="refits"
-        )
-        if cfg.store.keep_readings_for or cfg.store.keep_readings_per_stream:
-            scheduler.add_job(ask("retention"), "interval", seconds=3600, id="retention")
+            every(source.poll_every, "poll-files", name, next_run_time=_now_dt())
+        every(cfg.service.stale_check_every, "stale-check")
+        every(cfg.service.alert_tick_every, "alert-tick")
+        every(cfg.service.refit_check_every, "refits")
+        # Always: dead letters are bounded by default even when readings are kept for ever.
+        every(RETENTION_EVERY_S, "retention")
         return scheduler
+
+    def _watch_clock(self) -> None:
+        """Notice a step of the wall clock; say so and plan the jobs again."""
+        step = self.timekeeper.step()
+        if step is None:
+            return
+        log.warning(
+            "the wall clock stepped %s; receipt times go on from the last one given out "
+            "(now %.1f s ahead of the wall clock, catching up) and the scheduled jobs are "
+            "planned again",
+            describe_step(step),
+            self.timekeeper.ahead_s(),
+        )
+        self._replan()
+
+    def _replan(self) -> None:
+        """Set each job's next run from the monotonic clock: one interval after the scheduler
+        last queued it. APScheduler keeps next run times on the wall clock, so after a step
+        back of two hours it would wait two hours before running anything."""
+        scheduler = self.scheduler
+        if scheduler is None or not scheduler.running:
+            return
+        mono = self.monotonic()
+        wall_now = _now_dt()  # the scheduler's own clock, whatever the service was given
+        for job in scheduler.get_jobs():
+            every = self._job_every.get(job.id)
+            if every is None or job.next_run_time is None:  # not ours, or paused
+                continue
+            since = mono - self._job_fired.get(job.id, self._started_mono)
+            wait = min(every, max(0.0, every - since))
+            scheduler.modify_job(job.id, next_run_time=wall_now + timedelta(seconds=wait))
 
     def _job_event(self, event: JobExecutionEvent) -> None:
         if event.exception is not None:
@@ -251,6 +348,7 @@ class Service:
         next start restores without applying any reading again."""
         while not self._stopping.is_set():
             self._heartbeat = time.monotonic()
+            self._watch_clock()
             batch, jobs = self._take()
             if batch:
                 self._process_deliveries(batch)
@@ -275,7 +373,8 @@ class Service:
         # batch_wait counts from when the first reading arrived, not from when the worker got
         # to it: a reading that queued while the previous batch was being committed has
         # already waited, and waiting the whole batch_wait again would double its delay.
-        waited = self.clock() - first.received_at if isinstance(first, Delivery) else 0.0
+        stamped = first.received_at if isinstance(first, Delivery) else None
+        waited = 0.0 if stamped is None else self.timekeeper.wall() - stamped
         deadline = time.monotonic() + min(cfg.batch_wait, max(0.0, cfg.batch_wait - waited))
         item = first
         while True:
@@ -302,10 +401,26 @@ class Service:
 
     def _parse_delivery(self, d: Delivery) -> Parsed:
         try:
-            reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, d.received_at)
+            # The connection process stamped the wall clock; a step back since must not make
+            # a reading timed at receipt older than the one before it.
+            received = self.timekeeper.receipt(d.received_at)
+            reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, received)
         except PayloadError as exc:
             return Parsed(d.source, _envelope(d), error=exc.reason, detail=str(exc))
+        refused = self._refuse_new_stream(d.source, reading.stream)
+        if refused is not None:
+            return Parsed(d.source, _envelope(d), error=TOO_MANY_STREAMS, detail=refused)
         return Parsed(d.source, _envelope(d), reading=reading)
+
+    def _refuse_new_stream(self, source: str, stream: str) -> str | None:
+        """Why a reading for ``stream`` is refused (its source already feeds ``max_streams``
+        streams and this one would be new), or None when it may go on."""
+        assert self.pipeline is not None
+        cap = self.stream_cap
+        if cap.admit(source, stream, exists=stream in self.pipeline.monitors):
+            return None
+        self.metrics.streams_refused.labels(source).inc()
+        return f"stream {stream[:200]!r} would be more than max_streams = {cap.limits[source]}"
 
     def _process_deliveries(self, batch: list[Delivery]) -> None:
         items = [self._parse_delivery(d) for d in batch]
@@ -359,12 +474,27 @@ class Service:
             for stream in self.pipeline.adopt_new_baselines(now):
                 log.info("stream %s: adopted a new stored baseline", stream)
         elif job.kind == "retention":
-            cfg = self.config.store
+            self.prune(now)
+        self._job_ran[job.id] = (self.monotonic(), now)
+
+    def prune(self, now: float) -> tuple[int, int]:
+        """The retention job: drop readings and dead letters past the ``[store]`` limits;
+        return (readings, dead letters) deleted."""
+        assert self.pipeline is not None and self.store is not None
+        cfg = self.config.store
+        readings = 0
+        if cfg.keep_readings_for is not None or cfg.keep_readings_per_stream is not None:
             # Readings newer than a stream's checkpoint are part of its state until the next one.
             self.pipeline.checkpoint_all(now)
-            self.store.prune_readings(
+            readings = self.store.prune_readings(
                 now, max_age_s=cfg.keep_readings_for, max_per_stream=cfg.keep_readings_per_stream
             )
+        letters = self.store.prune_dead_letters(
+            now, max_age_s=cfg.keep_dead_letters_for, max_count=cfg.keep_dead_letters
+        )
+        if readings or letters:
+            log.info("retention: dropped %d readings and %d dead letters", readings, letters)
+        return readings, letters
 
     def poll_files(self, name: str) -> int:
         """Read every new complete line of a file source, committing in batches; return the
@@ -408,6 +538,11 @@ class Service:
             reading = parser.parse(line.record, self.clock())
         except PayloadError as exc:
             return Parsed(line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}")
+        refused = self._refuse_new_stream(line.source, reading.stream)
+        if refused is not None:
+            return Parsed(
+                line.source, line.raw, error=TOO_MANY_STREAMS, detail=f"{where}: {refused}"
+            )
         return Parsed(line.source, line.raw, reading=reading)
 
     # -- health ---
@@ -421,7 +556,9 @@ class Service:
         broken = self.pipeline is not None and self.pipeline.broken
         quiet = None if self._heartbeat is None else round(self._since_last_round(), 3)
         stalled = quiet is not None and quiet > self.config.service.stall_after
-        ok = all(sources.values()) and not broken and not stalled
+        jobs = self._job_health()
+        overdue = any(j["overdue"] for j in jobs.values())
+        ok = all(sources.values()) and not broken and not stalled and not overdue
         return {
             "status": "ok" if ok else "degraded",
             "worker": "stalled" if stalled else "failed" if broken else "running",
@@ -431,7 +568,28 @@ class Service:
             "queue_depth": self.intake.qsize(),
             "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
             "last_commit": self.last_commit,
+            "jobs": jobs,
+            "clock": {
+                "steps_seen": self.timekeeper.steps,
+                "ahead_of_wall_s": round(self.timekeeper.ahead_s(), 3),
+            },
         }
+
+    def _job_health(self) -> dict[str, dict[str, Any]]:
+        """Each scheduled job's interval, last run (ISO 8601, service time) and whether it is
+        overdue, measured on the monotonic clock so that a clock step neither hides nor fakes
+        a late job."""
+        mono = self.monotonic()
+        out: dict[str, dict[str, Any]] = {}
+        for job_id, every in self._job_every.items():
+            ran = self._job_ran.get(job_id)
+            since = mono - (self._started_mono if ran is None else ran[0])
+            out[job_id] = {
+                "every_s": every,
+                "last_run": None if ran is None else format_time(ran[1]),
+                "overdue": since > every + max(every, JOB_GRACE_S),
+            }
+        return out
 
 
 def _envelope(d: Delivery) -> bytes:
@@ -439,9 +597,7 @@ def _envelope(d: Delivery) -> bytes:
     return d.topic.encode() + b"\n" + d.payload
 
 
-def _now_dt() -> Any:
-    from datetime import UTC, datetime
-
+def _now_dt() -> datetime:
     return datetime.now(UTC)
 
 

@@ -30,6 +30,7 @@ takes the write lock at the start, so reads made inside a batch see no concurren
 
 from __future__ import annotations
 
+import hashlib
 import itertools
 import json
 import math
@@ -126,6 +127,20 @@ class BaselineVersionConflict(StoreError):
 
 
 # --------------------------------------------------------------------------- migrations
+
+DEAD_LETTER_KEEP_BYTES = 4096
+"""How much of a refused payload a dead letter keeps. Enough to read what went wrong with a
+JSON document or a CSV line; a 10 MB message sent by mistake (or on purpose) must not become
+10 MB of database per copy. The whole payload's size and SHA-256 are kept beside the prefix,
+so a copy kept elsewhere can still be matched to its dead letter."""
+
+
+def _payload_bytes(payload: bytes | str) -> bytes:
+    return payload.encode("utf-8", "surrogatepass") if isinstance(payload, str) else payload
+
+
+def _sha256_hex(payload: bytes | str | None) -> str | None:
+    return None if payload is None else hashlib.sha256(_payload_bytes(payload)).hexdigest()
 
 
 @dataclass(frozen=True, slots=True)
@@ -298,6 +313,22 @@ MIGRATIONS: tuple[Migration, ...] = (
             "ALTER TABLE readings ADD COLUMN signals TEXT",
         ),
     ),
+    Migration(
+        5,
+        "dead letters keep a bounded prefix with the payload's size and SHA-256",
+        (
+            "ALTER TABLE dead_letters ADD COLUMN payload_size INTEGER",
+            "ALTER TABLE dead_letters ADD COLUMN payload_sha256 TEXT",
+            # Rows written before: measure and hash them whole, then cut the long ones down.
+            """UPDATE dead_letters SET
+                payload_size = length(CAST(payload AS BLOB)),
+                payload_sha256 = lw_sha256(payload)
+            WHERE payload IS NOT NULL""",
+            f"""UPDATE dead_letters
+            SET payload = substr(CAST(payload AS BLOB), 1, {DEAD_LETTER_KEEP_BYTES})
+            WHERE length(CAST(payload AS BLOB)) > {DEAD_LETTER_KEEP_BYTES}""",
+        ),
+    ),
 )
 
 
@@ -337,6 +368,8 @@ def migrate(
             f"{known}. It was written by a newer limitwatch: upgrade limitwatch, or open a "
             "different database file."
         )
+    # Used by migration 5 to hash dead letters stored before it.
+    db.conn.create_function("lw_sha256", 1, _sha256_hex, deterministic=True)
     applied: list[int] = []
     for step in MIGRATIONS:
         if step.version > target:
@@ -617,13 +650,26 @@ class Notification:
 
 @dataclass(frozen=True, slots=True)
 class DeadLetter:
-    """Input that could not be used, kept verbatim with the reason."""
+    """Input that could not be used, with the reason: the payload verbatim up to
+    :data:`DEAD_LETTER_KEEP_BYTES`, and the whole payload's size and SHA-256."""
 
     id: int
     source: str
     received_at: float
     reason: str
     payload: bytes | str | None
+    """The payload, or its first :data:`DEAD_LETTER_KEEP_BYTES` bytes when it was longer."""
+    payload_size: int | None = None
+    """Bytes in the whole payload as received (UTF-8 for text)."""
+    payload_sha256: str | None = None
+    """Hex SHA-256 of the whole payload."""
+
+    @property
+    def truncated(self) -> bool:
+        """True when :attr:`payload` is only the start of what was received."""
+        if self.payload is None or self.payload_size is None:
+            return False
+        return len(_payload_bytes(self.payload)) < self.payload_size
 
 
 # --------------------------------------------------------------------------- the store
@@ -864,6 +910,13 @@ class Store:
         )
         return [Reading(stream, t, v, seq) for t, v, seq in rows]
 
+    def last_service_time(self) -> float | None:
+        """The latest service time at which a batch with accepted readings committed (the
+        newest ``last_seen``), or None for an empty store: a restart goes on from it if the
+        wall clock was stepped back meanwhile."""
+        row = self.db.conn.execute("SELECT max(last_seen) FROM streams").fetchone()
+        return None if row[0] is None else float(row[0])
+
     def stream_last_times(self) -> dict[str, float | None]:
         """Each stream's latest committed reading time."""
         return dict(self.db.conn.execute("SELECT id, last_time FROM streams"))
@@ -1014,12 +1067,52 @@ class Store:
     def add_dead_letter(
         self, source: str, payload: bytes | str | None, reason: str, *, now: float
     ) -> int:
-        """Keep input that could not be used, verbatim, with the reason; return its id."""
+        """Keep input that could not be used, with the reason; return its id.
+
+        The payload is kept verbatim when it fits in :data:`DEAD_LETTER_KEEP_BYTES`; a longer
+        one keeps that many leading bytes (as bytes: a cut may split a UTF-8 character), and
+        every dead letter records the whole payload's size and SHA-256."""
+        size = digest = None
+        if payload is not None:
+            whole = _payload_bytes(payload)
+            size = len(whole)
+            digest = hashlib.sha256(whole).hexdigest()
+            if size > DEAD_LETTER_KEEP_BYTES:
+                payload = whole[:DEAD_LETTER_KEEP_BYTES]
         cur = self.db.execute(
-            "INSERT INTO dead_letters (source, received_at, reason, payload) VALUES (?, ?, ?, ?)",
-            (source, now, reason, payload),
+            """INSERT INTO dead_letters
+                (source, received_at, reason, payload, payload_size, payload_sha256)
+            VALUES (?, ?, ?, ?, ?, ?)""",
+            (source, now, reason, payload, size, digest),
         )
         return int(cur.lastrowid)
+
+    def prune_dead_letters(
+        self, now: float, *, max_age_s: float | None = None, max_count: int | None = None
+    ) -> int:
+        """Drop dead letters received before ``now - max_age_s``, then all but the newest
+        ``max_count``; return how many went. Dead letters are for finding out what a gateway
+        or an export sends wrong, not an archive: without a bound, a gateway sending bad
+        messages for months fills the disk."""
+        if max_count is not None and max_count < 0:
+            raise ValueError(f"max_count must be 0 or more, not {max_count}")
+        deleted = 0
+        with self.transaction():
+            if max_age_s is not None:
+                cur = self.db.execute(
+                    "DELETE FROM dead_letters WHERE received_at < ?", (now - max_age_s,)
+                )
+                deleted += cur.rowcount
+            if max_count is not None:
+                # ids grow with arrival (AUTOINCREMENT), so the newest are the highest ids
+                cur = self.db.execute(
+                    """DELETE FROM dead_letters WHERE id <= (
+                        SELECT id FROM dead_letters ORDER BY id DESC LIMIT 1 OFFSET ?
+                    )""",
+                    (max_count,),
+                )
+                deleted += cur.rowcount
+        return deleted
 
     def dead_letters(self, *, limit: int = 100) -> list[DeadLetter]:
         """The newest dead letters, newest first."""
