@@ -412,16 +412,21 @@ class Service:
 
     def _parse_line(self, line: FileLine, parser: RowParser) -> Parsed:
         where = f"{line.path} at byte {line.end_offset - len(line.raw)}"
+        at = (line.file_id, line.end_offset)
         if line.record is None:
-            return Parsed(line.source, line.raw, error=line.reason, detail=f"{where}: {line.error}")
+            detail = f"{where}: {line.error}"
+            return Parsed(line.source, line.raw, error=line.reason, detail=detail, position=at)
         try:
             reading = parser.parse(line.record, self.clock())
         except PayloadError as exc:
-            return Parsed(line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}")
+            return Parsed(
+                line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}", position=at
+            )
         except Exception as exc:  # a parser bug must not stop the service: a dead letter
             log.exception("source %s: a line of %s could not be parsed", line.source, line.path)
-            return Parsed(line.source, line.raw, error="parse-error", detail=_failure(exc))
-        return Parsed(line.source, line.raw, reading=reading)
+            detail = f"{where}: {_failure(exc)}"
+            return Parsed(line.source, line.raw, error="parse-error", detail=detail, position=at)
+        return Parsed(line.source, line.raw, reading=reading, position=at)
 
     # -- health ---
 
