@@ -449,3 +449,16 @@ def test_sqlite_refuses_a_lone_surrogate_so_the_parser_must():
     conn = sqlite3.connect(":memory:")
     with pytest.raises(UnicodeEncodeError):
         conn.execute("SELECT ?", ("\ud800",))
+
+
+def test_a_stream_template_whose_own_text_is_no_stream_id_is_a_config_error():
+    from limitwatch.config import MqttTopic
+
+    def entry(template: str) -> MqttTopic:
+        return MqttTopic.model_validate({"filter": "a/+", "stream": template, "payload": "number"})
+
+    with pytest.raises(ValueError, match=r"control character U\+0007"):
+        entry("site\a/{2}")
+    with pytest.raises(ValueError, match="characters long"):
+        entry("x" * 300 + "{2}")
+    assert entry("site/{2}").stream == "site/{2}"

@@ -535,6 +535,11 @@ class MqttTopic(_Section):
         topic_filter = info.data.get("filter")
         if topic_filter is not None:
             TopicMapper(topic_filter, value)  # StreamTemplateError is a ValueError
+        # The template's own text is part of every stream id it makes (topics are checked as
+        # they arrive); a control character here would refuse every message.
+        problem = stream_id_problem(re.sub(r"\{[^{}]*\}", "", value))
+        if problem is not None:
+            raise ValueError(f"the text of this stream template {problem}")
         return value
 
     @field_validator("time", "seq")
