@@ -225,3 +225,39 @@ def test_poison_lines_are_dead_letters_and_the_file_is_read_on(tmp_path):
     finally:
         assert svc.stop() == 0
     assert "Traceback" not in svc.logs()
+
+
+def test_a_store_failure_stops_the_service_with_an_error_line_not_a_traceback(tmp_path):
+    """When the store itself fails (here: another program holds the write lock past the busy
+    timeout of 5 s), the monitors are ahead of the database and only a restart is safe: the
+    service exits 1 with a timestamped ERROR line, and the next start reads the line again."""
+    import sqlite3
+
+    config = file_config(tmp_path, poll="200ms")
+    data = tmp_path / "data" / "export.csv"
+    write_rows(data, [(T0 + 60 * i, "press-3/force", 40.0 + (i % 4) * 0.2) for i in range(5)])
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings") == 5, what="first rows")
+        lock = sqlite3.connect(db, isolation_level=None)
+        lock.execute("BEGIN IMMEDIATE")
+        try:
+            write_rows(data, [(T0 + 60 * 5, "press-3/force", 40.1)], header=False)
+            assert svc.process is not None
+            assert svc.process.wait(timeout=30) == 1
+        finally:
+            lock.execute("ROLLBACK")
+            lock.close()
+    finally:
+        if svc.alive():
+            svc.stop()
+    logs = svc.logs()
+    assert "Traceback" not in logs
+    (line,) = [x for x in logs.splitlines() if " ERROR limitwatch.service: stopping:" in x]
+    assert line[:4].isdigit() and "database is locked" in line  # starts with its time stamp
+    again = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings") == 6, what="the line read again after restart")
+    finally:
+        assert again.stop() == 0
