@@ -360,7 +360,7 @@ def test_a_row_the_database_refuses_is_a_store_refused_dead_letter_and_the_rest_
     assert pipe.process([_good("b", 50)], now=T0).dead == []
 
 
-def test_an_engine_failure_is_an_engine_error_dead_letter_naming_the_stream(fresh_db):
+def test_an_engine_failure_is_an_engine_error_dead_letter_naming_the_stream(fresh_db, caplog):
     """A stored baseline written before sigma was checked (subnormal) cannot be loaded; the
     readings of its stream are dead letters that say why, and every other stream goes on."""
     numbers = Baseline.from_limits(center=1.0, sigma=0.5).to_dict()
@@ -380,6 +380,32 @@ def test_an_engine_failure_is_an_engine_error_dead_letter_naming_the_stream(fres
     (letter,) = fresh_db.dead_letters()
     assert "'old/flow'" in letter.reason and "normal positive number" in letter.reason
     assert "old/flow" not in pipe.monitors
+    # decided inside the batch (nothing had moved), not by applying it again item by item
+    assert "one at a time" not in caplog.text and "no monitor can be made" in caplog.text
+
+
+def test_an_engine_failure_after_the_monitor_moved_is_undone_from_the_store(fresh_db, caplog):
+    """A checkpoint edited by hand (its count no longer matches its detectors' positions): the
+    detectors raise after the monitor moved. The batch is applied again one item at a time,
+    the monitor is rebuilt from the store, and only that reading is a dead letter."""
+    pipe = pipeline(fresh_db)
+    pipe.process([_good("a", i) for i in range(10)], now=T0)
+    pipe.checkpoint_all(now=T0)
+    state = fresh_db.load_checkpoint("a")
+    assert state is not None and state["baseline"] is not None
+    state["count"] += 7
+    with fresh_db.transaction():
+        fresh_db.save_checkpoint("a", state, now=T0)
+    again = pipeline(fresh_db)
+    again.restore()
+    before = again.monitors["a"].snapshot()
+    result = again.process([_good("b", 1), _good("a", 20), _good("b", 2)], now=T0)
+    assert [reason for _, reason in result.dead] == ["engine-error"]
+    assert [o.reading.stream for o in result.outcomes] == ["b", "b"]
+    (letter,) = fresh_db.dead_letters()
+    assert "stream 'a'" in letter.reason and "expected reading position" in letter.reason
+    assert again.monitors["a"].snapshot() == before
+    assert "one at a time" in caplog.text
 
 
 def test_a_failure_of_the_store_itself_still_breaks_the_pipeline(fresh_db):

@@ -109,6 +109,8 @@ class Pipeline:
         ``now``) it first did; oldest first, since a dict keeps insertion order."""
         self._new: set[str] = set()
         """Monitors created since the last commit, which have no checkpoint yet."""
+        self._unusable_streams: set[str] = set()
+        """Streams whose monitor could not be made, already reported in the log."""
 
     # -- state ---
 
@@ -263,8 +265,18 @@ class Pipeline:
                 dead_rows.append((item.source, item.raw, _reason(reason, item.detail)))
                 result.dead.append((item.source, reason))
                 continue
-            seen.add(item.reading.stream)  # before the engine runs: it may be what fails
-            monitor = self.monitor(item.reading.stream)
+            stream = item.reading.stream
+            try:
+                monitor = self.monitor(stream)
+            except Exception as exc:
+                if _store_failed(exc):
+                    raise
+                # Nothing moved yet, so this item alone is a dead letter, here in the batch.
+                detail = self._unusable(stream, item.reading, exc)
+                dead_rows.append((item.source, item.raw, _reason("engine-error", detail)))
+                result.dead.append((item.source, "engine-error"))
+                continue
+            seen.add(stream)  # before the engine runs: it may be what fails
             outcome = monitor.update(item.reading)
             if not outcome.accepted:
                 reason = outcome.reason or "refused"
@@ -323,6 +335,14 @@ class Pipeline:
         stream = reading.stream
         try:
             monitor = self.monitor(stream)
+        except Exception as exc:
+            if _store_failed(exc):
+                self.broken = True
+                raise PipelineBroken(f"reading stream {stream!r} failed: {exc}") from exc
+            detail = self._unusable(stream, reading, exc)
+            self._dead_alone(item, "engine-error", detail, now, result)
+            return
+        try:
             outcome = monitor.update(reading)
         except Exception as exc:
             log.exception("stream %s: the engine failed on the reading at %s", stream, reading.time)
@@ -362,6 +382,14 @@ class Pipeline:
         result.signals.extend(outcome.signals)
         result.opened += report.opened
         result.queued += report.queued
+
+    def _unusable(self, stream: str, reading: Reading, exc: Exception) -> str:
+        """A stream whose monitor cannot be made (a stored baseline this version refuses, say):
+        said once in the log, and in every one of its dead letters."""
+        if stream not in self._unusable_streams:
+            self._unusable_streams.add(stream)
+            log.error("stream %s: no monitor can be made for it: %s", stream, _words(exc))
+        return f"stream {stream!r} at {reading.time}: {_words(exc)}"
 
     def _dead_alone(
         self, item: Parsed, reason: str, detail: str, now: float, result: BatchResult
