@@ -202,7 +202,10 @@ def _decimal(raw: str, what: str) -> float:
 
 
 def _show(value: Any, limit: int = 60) -> str:
-    text = repr(value)
+    try:
+        text = repr(value)
+    except (RecursionError, ValueError):  # nested past the interpreter's limit; a huge int
+        return f"<a {type(value).__name__} too large to show>"
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
