@@ -44,7 +44,7 @@ import sqlite3
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
-from limitwatch.alerts.lifecycle import AlertBook
+from limitwatch.alerts.lifecycle import AlertBook, BookReport
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError
@@ -233,7 +233,7 @@ class Pipeline:
         items = list(items)
         seen: set[str] = set()
         try:
-            return self._process_batch(items, now, file_offsets, seen)
+            result, due, report = self._process_batch(items, now, file_offsets, seen)
         except Exception as exc:
             if _store_failed(exc):
                 self.broken = True
@@ -243,9 +243,14 @@ class Pipeline:
                 len(items),
                 _words(exc),
             )
-        for stream in seen:
-            self._rebuild(stream)
-        return self._one_by_one(items, now, file_offsets)
+            for stream in seen:
+                self._rebuild(stream)
+            return self._one_by_one(items, now, file_offsets)
+        # Committed: nothing after this point may send the batch round again.
+        self._saved(due)
+        result.opened = report.opened
+        result.queued = report.queued
+        return result
 
     def _process_batch(
         self,
@@ -253,7 +258,9 @@ class Pipeline:
         now: float,
         file_offsets: dict[str, dict[str, int]] | None,
         seen: set[str],
-    ) -> BatchResult:
+    ) -> tuple[BatchResult, list[str], BookReport]:
+        """Evaluate the batch and commit it in one transaction; return the result, the streams
+        whose checkpoints it wrote and the alert book's report."""
         result = BatchResult()
         dead_rows: list[tuple[str, bytes, str]] = []
         touched: dict[str, StreamMonitor] = {}
@@ -304,10 +311,7 @@ class Pipeline:
             for source, offsets in (file_offsets or {}).items():
                 if offsets:
                     self.store.save_file_offsets(source, offsets, now=now)
-        self._saved(due)
-        result.opened = report.opened
-        result.queued = report.queued
-        return result
+        return result, due, report
 
     # -- one item at a time, after a batch failed as a whole ---
 
