@@ -445,7 +445,7 @@ def test_a_line_over_the_limit_is_a_dead_letter_and_reading_goes_on(tmp_path):
     assert [x.record for x in got] == [{"v": 1}, None, {"v": 2}]
     overlong = got[1]
     assert overlong.reason == "line-too-long" and len(overlong.raw) == KEPT_PREFIX
-    assert overlong.end_offset == 9 + len(long_line)
+    assert (overlong.start, overlong.end_offset) == (9, 9 + len(long_line))
     assert list(offsets.values()) == [path.stat().st_size]
 
 

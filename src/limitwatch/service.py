@@ -411,7 +411,8 @@ class Service:
         return used
 
     def _parse_line(self, line: FileLine, parser: RowParser) -> Parsed:
-        where = f"{line.path} at byte {line.end_offset - len(line.raw)}"
+        start = line.end_offset - len(line.raw) if line.start is None else line.start
+        where = f"{line.path} at byte {start}"
         at = (line.file_id, line.end_offset)
         if line.record is None:
             detail = f"{where}: {line.error}"

@@ -50,6 +50,8 @@ class FileLine:
     """Why a line could not be read as a row; it becomes a dead letter."""
     reason: str = "unreadable-line"
     """The dead letter's reason code when there is an ``error``."""
+    start: int | None = None
+    """Byte offset where the line starts, given when ``raw`` is only the start of the line."""
 
 
 def file_identity(stat: os.stat_result) -> str:
@@ -145,6 +147,7 @@ class FileSource:
                 f"the line is {overlong_end - offset} bytes long, over the limit of {MAX_READ} "
                 f"bytes (the dead letter keeps its first {KEPT_PREFIX})",
                 "line-too-long",
+                offset,
             )
             offset = overlong_end
         end = data.rfind(b"\n")
