@@ -408,6 +408,23 @@ def test_an_engine_failure_after_the_monitor_moved_is_undone_from_the_store(fres
     assert "one at a time" in caplog.text
 
 
+def test_a_checkpoint_that_cannot_be_caught_up_does_not_stop_the_start(fresh_db, caplog):
+    """The same hand-edited checkpoint, with readings committed after it: a restart cannot
+    apply them, says so, and starts that stream afresh; the other streams are restored."""
+    pipe = pipeline(fresh_db)
+    pipe.process([_good("a", i) for i in range(10)] + [_good("b", i) for i in range(3)], T0)
+    pipe.checkpoint_all(now=T0)
+    state = fresh_db.load_checkpoint("a")
+    assert state is not None
+    state["count"] += 7
+    with fresh_db.transaction():
+        fresh_db.save_checkpoint("a", state, now=T0)
+    pipe.process([_good("a", 10)], now=T0)  # committed after the checkpoint, not in it
+    again = pipeline(fresh_db)
+    assert again.restore() == 1 and set(again.monitors) == {"b"}
+    assert "stream a: the readings after its checkpoint cannot be applied" in caplog.text
+
+
 def test_a_failure_of_the_store_itself_still_breaks_the_pipeline(fresh_db):
     pipe = pipeline(fresh_db)
     pipe.process([_good("a", 1)], now=T0)

@@ -160,15 +160,25 @@ class Pipeline:
                 continue
             if monitor.last_time is not None and last_time <= monitor.last_time:
                 continue
-            for reading in self.store.readings_after(stream, monitor.last_time):
-                outcome = monitor.update(reading)
-                if not outcome.accepted:  # the config's bounds changed since, say
-                    log.warning(
-                        "stream %s: a committed reading at %s was refused again (%s)",
-                        stream,
-                        reading.time,
-                        outcome.reason,
-                    )
+            try:
+                for reading in self.store.readings_after(stream, monitor.last_time):
+                    outcome = monitor.update(reading)
+                    if not outcome.accepted:  # the config's bounds changed since, say
+                        log.warning(
+                            "stream %s: a committed reading at %s was refused again (%s)",
+                            stream,
+                            reading.time,
+                            outcome.reason,
+                        )
+            except ValueError as exc:  # a detector refusing its state (an edited checkpoint)
+                log.error(
+                    "stream %s: the readings after its checkpoint cannot be applied (%s); "
+                    "it starts afresh",
+                    stream,
+                    _words(exc),
+                )
+                del self.monitors[stream]
+                continue
             self._unsaved[stream] = -math.inf  # due at once
             behind += 1
         return behind
