@@ -170,6 +170,18 @@ def test_replay_refuses_out_of_order_rows_and_says_which_line(tmp_path):
     assert "line 32" in result.stderr and "out-of-order" in result.stderr
 
 
+def test_replay_refuses_a_huge_value_in_words_not_with_a_traceback(tmp_path):
+    """1e308 against a sigma of about 0.006 gave an infinite z, and the detectors raised."""
+    rows = [[i, 10 + (i % 3) * 0.005] for i in range(25)] + [[25, 1e308], [26, 10.0], [27, 11.0]]
+    path = write_csv(tmp_path / "t.csv", ["t", "v"], rows)
+    result = run_cli("replay", str(path), "--value", "v", "--time", "t", "--baseline-first", "20")
+    assert result.returncode == 0, result.stderr
+    assert "Traceback" not in result.stderr
+    assert "line 27: reading 1e+308" in result.stderr and "off-scale" in result.stderr
+    assert "too far from the center line" in result.stderr
+    assert "beyond-limits" in result.stdout  # the stream is still judged after it
+
+
 def test_replay_bad_time_names_line_and_column(tmp_path):
     path = tmp_path / "t.csv"
     path.write_text("t,v\n2027-01-01T00:00:00Z,1\nyesterday,2\n")

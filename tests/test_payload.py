@@ -377,10 +377,91 @@ def test_json_lines_use_dotted_paths():
     assert reason(lambda: parser.parse([1, 2], RECEIVED)) == "bad-json"  # type: ignore[arg-type]
 
 
+# -- inputs that once escaped the parser as exceptions and stopped the service (issue 11) ------
+
+
+def test_json_nested_a_thousand_levels_deep_is_bad_json_not_a_recursion_error():
+    deep = b'{"value": ' + b"[" * 1000 + b"]" * 1000 + b"}"  # about 2 KB, under the size limit
+    parser = PayloadParser(topic(), max_payload_bytes=65536)
+    assert reason(lambda: parser.parse(TOPIC, deep, RECEIVED)) == "bad-json"
+
+
+def test_a_sequence_number_of_5000_digits_is_bad_seq_not_a_digit_limit_error():
+    parser = json_parser(seq="n")
+    payload = json.dumps({"value": 1.0, "n": "9" * 5000}).encode()
+    parser.max_payload_bytes = None
+    assert reason(lambda: parser.parse(TOPIC, payload, RECEIVED)) == "bad-seq"
+    # leading zeros are not significant digits
+    padded = json.dumps({"value": 1.0, "n": "0" * 40 + "17"}).encode()
+    assert parser.parse(TOPIC, padded, RECEIVED).seq == 17
+
+
+def test_a_5000_digit_number_in_a_payload_is_bad_json():
+    parser = json_parser()
+    parser.max_payload_bytes = None
+    assert reason(lambda: parser.parse(TOPIC, b'{"value": ' + b"9" * 5000 + b"}", 0.0)) == (
+        "bad-json"
+    )
+
+
+FUTURE = "9999-12-31T23:59:59Z"
+
+
+def test_a_reading_dated_past_the_future_tolerance_is_refused_as_in_the_future():
+    mqtt = PayloadParser(topic(time="t"), max_payload_bytes=1024, future_tolerance=300.0)
+    ahead = json.dumps({"value": 1.0, "t": FUTURE}).encode()
+    assert reason(lambda: mqtt.parse(TOPIC, ahead, RECEIVED)) == "in-the-future"
+    with pytest.raises(PayloadError, match="future_tolerance"):
+        mqtt.parse(TOPIC, ahead, RECEIVED)
+    # a sender's clock a little ahead is fine, up to the tolerance and not past it
+    near = json.dumps({"value": 1.0, "t": RECEIVED + 300.0}).encode()
+    assert mqtt.parse(TOPIC, near, RECEIVED).time == RECEIVED + 300.0
+    over = json.dumps({"value": 1.0, "t": RECEIVED + 301.0}).encode()
+    assert reason(lambda: mqtt.parse(TOPIC, over, RECEIVED)) == "in-the-future"
+    rows = RowParser(file_source(), future_tolerance=60.0)
+    row = {"time": FUTURE, "stream": "a", "value": "1"}
+    assert reason(lambda: rows.parse(row, RECEIVED)) == "in-the-future"
+
+
+@pytest.mark.parametrize(
+    ("stream", "why"),
+    [
+        ("oven-1\ud800", r"lone surrogate U\+D800"),
+        ("oven-1\nline-2", r"control character U\+000A"),
+        ("oven\x1b[31m", r"control character U\+001B"),
+        ("oven\x85x", r"control character U\+0085"),
+        ("x" * 257, "characters long; a stream id has at most 256"),
+    ],
+)
+def test_unusable_stream_ids_are_refused_at_every_edge(stream, why):
+    jsonl = RowParser(file_source(format="jsonl"))
+    record = {"time": T2027, "stream": stream, "value": 1.0}
+    with pytest.raises(PayloadError, match=why) as info:
+        jsonl.parse(record, RECEIVED)
+    assert info.value.reason_code == "bad-stream"
+    # (pydantic refuses a lone surrogate in any config text by itself)
+    with pytest.raises(ValueError, match="unicode" if "\ud800" in stream else why):
+        file_source(stream=None, stream_fixed=stream)
+    # an MQTT topic level (a broker may pass control characters on) and the whole topic
+    if "\ud800" not in stream:  # a topic is decoded UTF-8: it cannot hold a lone surrogate
+        single = PayloadParser(topic(), max_payload_bytes=None)
+        source = SourceParser(_two_entry_source())
+        for parser, prefix, payload in (
+            (single, "quillmoor", b'{"value": 1}'),
+            (source, "gw", b'{"v": 1}'),
+        ):
+            for _ in range(2):  # the second time from the remembered route
+                with pytest.raises(PayloadError, match=why) as info:
+                    parser.parse(f"{prefix}/{stream}/temp", payload, RECEIVED)
+                assert info.value.reason_code == "bad-stream"
+    assert len("x" * 256) == 256 and jsonl.parse({**record, "stream": "x" * 256}, 0.0)
+
+
 def test_every_reason_code_is_exercised_by_these_tests():
     covered = {expected for _, _, expected in BAD} | {
         "unmapped-topic",
         "bad-time",
+        "in-the-future",
         "bad-seq",
         "bad-stream",
     }

@@ -12,7 +12,7 @@ from limitwatch.ingest.timeparse import format_time, parse_time
 from limitwatch.model import Reading
 from tests.service_harness import ServiceProcess, checkpoints, count, query, wait_until
 
-T0 = 1_798_761_600.0
+T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z: in the past, as the service wants readings
 
 
 def file_config(folder, batch_max: int = 50, poll: str = "1s", extra: str = ""):
@@ -176,3 +176,91 @@ def test_health_turns_503_while_the_worker_is_stuck_and_recovers_after(tmp_path)
         assert svc.alive()
     finally:
         assert svc.stop() == 0
+
+
+def test_poison_lines_are_dead_letters_and_the_file_is_read_on(tmp_path):
+    """JSON lines that once ended the service, or stopped their file for good (issue 11):
+    each becomes a dead letter with its reason, the offset moves past it, the good lines
+    after it are stored, and the process stays up."""
+    import json
+
+    from limitwatch.ingest.files import MAX_READ
+
+    config = file_config(tmp_path, poll="200ms")
+    text = config.read_text().replace('glob = "data/*.csv"', 'glob = "data/*.jsonl"')
+    text = text.replace('format = "csv"', 'format = "jsonl"').replace('"iso8601"', '"epoch_s"')
+    config.write_text(text)
+
+    def line(i: int, **change) -> bytes:
+        record = {"time": T0 + 60 * i, "stream": "oven-2/zone-temp", "value": 180.0 + i % 4}
+        return json.dumps({**record, **change}).encode() + b"\n"
+
+    poison = [
+        (b'{"value": ' + b"[" * 1000 + b"]" * 1000 + b"}\n", "unreadable-line"),  # nesting
+        (b'{"value": ' + b"9" * 5000 + b"}\n", "unreadable-line"),  # 5,000 digits
+        (line(26, stream="\ud800"), "bad-stream"),  # a lone surrogate failed the commit
+        (line(27, time=253402300799), "in-the-future"),  # 9999-12-31 blinded the stream
+        (line(28, value=1e308), "off-scale"),  # z overflowed inside the detectors
+        (b'{"value": "' + b"x" * MAX_READ + b'"}\n', "line-too-long"),  # stopped the file
+    ]
+    data = tmp_path / "data" / "export.jsonl"
+    data.write_bytes(
+        b"".join(line(i) for i in range(25))
+        + b"".join(p for p, _ in poison)
+        + b"".join(line(i) for i in range(30, 40))
+    )
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings") == 35, what="every good line stored")
+        wait_until(lambda: count(db, "dead_letters") == len(poison), what="the dead letters")
+        reasons = sorted(r[0].split(":")[0] for r in query(db, "SELECT reason FROM dead_letters"))
+        assert reasons == sorted(w for _, w in poison)
+        kept = query(db, "SELECT length(payload) FROM dead_letters WHERE reason LIKE 'line-too%'")
+        assert kept == [(1024,)]
+        (where,) = query(db, "SELECT reason FROM dead_letters WHERE reason LIKE 'line-too%'")
+        start = len(b"".join(line(i) for i in range(25))) + sum(len(p) for p, _ in poison[:-1])
+        assert f"export.jsonl at byte {start}:" in where[0]
+        assert [r[0] for r in query(db, "SELECT byte_offset FROM file_offsets")] == [
+            data.stat().st_size
+        ]
+        assert svc.alive()
+    finally:
+        assert svc.stop() == 0
+    assert "Traceback" not in svc.logs()
+
+
+def test_a_store_failure_stops_the_service_with_an_error_line_not_a_traceback(tmp_path):
+    """When the store itself fails (here: another program holds the write lock past the busy
+    timeout of 5 s), the monitors are ahead of the database and only a restart is safe: the
+    service exits 1 with a timestamped ERROR line, and the next start reads the line again."""
+    import sqlite3
+
+    config = file_config(tmp_path, poll="200ms")
+    data = tmp_path / "data" / "export.csv"
+    write_rows(data, [(T0 + 60 * i, "press-3/force", 40.0 + (i % 4) * 0.2) for i in range(5)])
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings") == 5, what="first rows")
+        lock = sqlite3.connect(db, isolation_level=None)
+        lock.execute("BEGIN IMMEDIATE")
+        try:
+            write_rows(data, [(T0 + 60 * 5, "press-3/force", 40.1)], header=False)
+            assert svc.process is not None
+            assert svc.process.wait(timeout=30) == 1
+        finally:
+            lock.execute("ROLLBACK")
+            lock.close()
+    finally:
+        if svc.alive():
+            svc.stop()
+    logs = svc.logs()
+    assert "Traceback" not in logs
+    (line,) = [x for x in logs.splitlines() if " ERROR limitwatch.service: stopping:" in x]
+    assert line[:4].isdigit() and "database is locked" in line  # starts with its time stamp
+    again = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings") == 6, what="the line read again after restart")
+    finally:
+        assert again.stop() == 0

@@ -32,7 +32,7 @@ from tests.service_harness import (
     wait_until,
 )
 
-T0 = 1_798_761_600.0  # 2027-01-01T00:00:00Z
+T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z: in the past, as the service wants readings
 
 
 def reading_messages(streams: list[str], n: int, seed: int = 3, wild_at: int | None = None):
@@ -273,7 +273,7 @@ def test_broker_restart_while_running_loses_nothing(broker, tmp_path):
 BAD = [
     (b"not json", "bad-json"),
     (json.dumps({"v": "hot", "t": T0 + 1, "seq": 1}).encode(), "not-a-number"),
-    (b'{"v": NaN, "t": 1798761602, "seq": 2}', "not-finite"),
+    (b'{"v": NaN, "t": 1767225602, "seq": 2}', "not-finite"),
     (json.dumps({"t": T0 + 3, "seq": 3}).encode(), "missing-field"),
     (json.dumps({"v": 1.0, "t": "tuesday", "seq": 4}).encode(), "bad-time"),
     (json.dumps({"v": 1.0, "t": T0 + 5, "seq": -5}).encode(), "bad-seq"),
@@ -435,3 +435,50 @@ def test_metrics_and_health_endpoints(broker, tmp_path):
         wait_until(degraded, what="health 503 while the broker is down")
     finally:
         assert svc.stop() == 0
+
+
+def test_poison_messages_are_dead_letters_and_monitoring_goes_on_across_a_restart(
+    broker, tmp_path
+):
+    """Each of these once ended the service, and, never acknowledged, came back after every
+    restart (issue 11). Now each is a dead letter with its reason, the good readings around
+    them are stored, the process stays up, and a restart does not see them again."""
+    config = mqtt_config(tmp_path, broker.port, rules="limits")
+    db = tmp_path / "service.db"
+    topic = "plant/line-4/flow/reading"
+
+    def reading(i: int, **change) -> str:
+        return json.dumps({"v": 50.0 + (i % 3) * 0.5, "t": T0 + 60 * i, "seq": i, **change})
+
+    poison = [
+        (topic, b'{"v": ' + b"[" * 1000 + b"]" * 1000 + b"}", "bad-json"),  # RecursionError
+        (topic, reading(21, seq="9" * 5000), "bad-seq"),  # the interpreter's digit limit
+        (topic, reading(22, v=1e308), "off-scale"),  # z overflowed inside the detectors
+        (topic, reading(23, t=253402300799), "in-the-future"),  # 9999-12-31 blinded the stream
+        (f"plant/{'x' * 300}/flow/reading", reading(1), "bad-stream"),  # a 300-character id
+    ]
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: service_up(svc), what="service connected")
+        pub = Publisher(broker.port)
+        pub.send_all([(topic, reading(i)) for i in range(1, 21)])  # learning: 20 readings
+        pub.send_all([(t, p) for t, p, _ in poison])
+        pub.send_all([(topic, reading(i)) for i in range(24, 30)])
+        pub.close()
+        wait_until(lambda: count(db, "readings") == 26, what="every good reading stored")
+        letters = query(db, "SELECT reason FROM dead_letters")
+        assert sorted(r[0].split(":")[0] for r in letters) == sorted(w for _, _, w in poison)
+        assert svc.alive()
+        phase = query(db, "SELECT phase FROM readings WHERE seq = 29")[0][0]
+        assert phase == "monitoring", "the huge reading came after learning, and was refused"
+    finally:
+        assert svc.stop() == 0
+    again = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: again.logs().count("connected to") >= 2, what="reconnected")
+        time.sleep(1.0)  # anything the broker still held would arrive now
+        assert again.alive()
+    finally:
+        assert again.stop() == 0
+    assert count(db, "dead_letters") == len(poison) and count(db, "readings") == 26
+    assert "Traceback" not in svc.logs()

@@ -64,7 +64,9 @@ from limitwatch.localbroker import mosquitto_path, private_broker
 ALL_DETECTORS = "nelson,ewma,cusum"
 """Every run test of Nelson's eight, the moving-range limit, EWMA and CUSUM."""
 
-T0 = 1_798_761_600.0  # 2027-01-01T00:00:00Z, the invented plant's first reading
+T0 = 1_767_225_600.0
+"""2026-01-01T00:00:00Z, the invented plant's first reading: in the past, since the service refuses
+readings stamped later than the clock by more than [service] future_tolerance."""
 
 
 @dataclass(frozen=True)

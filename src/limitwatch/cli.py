@@ -15,7 +15,7 @@ from typing import Any
 import click
 
 from limitwatch import __version__
-from limitwatch.engine import MonitorSettings
+from limitwatch.engine import REFUSAL_WORDS, MonitorSettings
 from limitwatch.ingest.csvfile import InputFileError, Row, read_rows
 from limitwatch.ingest.replay import replay
 from limitwatch.stats.autocorrelation import ESTIMATOR, Ar1Fit, fit_ar1
@@ -385,7 +385,8 @@ def replay_cmd(
             refused += 1
             click.echo(
                 f"refused: {file}, line {step.row.line}: reading {num(reading)} "
-                f"for stream {step.row.stream!r}: {outcome.reason}",
+                f"for stream {step.row.stream!r}: {outcome.reason}: "
+                f"{REFUSAL_WORDS.get(outcome.reason or '', 'refused')}",
                 err=True,
             )
             continue

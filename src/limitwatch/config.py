@@ -82,13 +82,14 @@ from limitwatch.alerts.lifecycle import SEVERITIES, AlertPolicy, NoticeKind, Sev
 from limitwatch.durations import parse_duration
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.payload import field_path
+from limitwatch.ingest.streamid import stream_id_problem
 from limitwatch.ingest.topics import (
     TopicMapper,
     filters_overlap,
     validate_filter,
     validate_topic_name,
 )
-from limitwatch.stats.baseline import Baseline
+from limitwatch.stats.baseline import Baseline, sigma_problem
 from limitwatch.stats.constants import D2
 from limitwatch.stats.rules import DETECTORS, parse_rules
 
@@ -286,6 +287,10 @@ class ServiceSection(_Section):
     stall_after: PositiveDuration = 60.0
     """``/health`` answers 503 when the worker has not come round its loop for this long (it
     does at least twice a second when idle)."""
+    future_tolerance: PositiveDuration = 300.0
+    """A reading stamped later than its receive time by more than this is refused
+    (``in-the-future``): senders' clocks drift a little, but one reading dated years ahead
+    would make every real one look out of order and its stream never look stale."""
 
     @field_validator("metrics_listen")
     @classmethod
@@ -325,6 +330,9 @@ class BaselineInput(_Section):
     def _one_spread(self) -> BaselineInput:
         if (self.sigma is None) == (self.mr_bar is None):
             raise _fail((("sigma",), "give exactly one of sigma and mr_bar (average moving range)"))
+        problem = sigma_problem(self.sigma_value)
+        if problem is not None:
+            raise _fail((("sigma" if self.sigma is not None else "mr_bar",), problem))
         return self
 
     @property
@@ -531,6 +539,11 @@ class MqttTopic(_Section):
         topic_filter = info.data.get("filter")
         if topic_filter is not None:
             TopicMapper(topic_filter, value)  # StreamTemplateError is a ValueError
+        # The template's own text is part of every stream id it makes (topics are checked as
+        # they arrive); a control character here would refuse every message.
+        problem = stream_id_problem(re.sub(r"\{[^{}]*\}", "", value))
+        if problem is not None:
+            raise ValueError(f"the text of this stream template {problem}")
         return value
 
     @field_validator("time", "seq")
@@ -672,6 +685,14 @@ class FileSourceConfig(_Section):
         # CSV columns are plain header names; JSON lines are read by dotted paths.
         if value is not None and info.data.get("format") == "jsonl":
             field_path(value)
+        return value
+
+    @field_validator("stream_fixed")
+    @classmethod
+    def _fixed(cls, value: str | None) -> str | None:
+        problem = None if value is None else stream_id_problem(value)
+        if problem is not None:
+            raise ValueError(f"this stream id {problem}")
         return value
 
     @model_validator(mode="after")

@@ -8,6 +8,11 @@ and the tests all run exactly the same code.
 
 Conventions worth knowing:
 
+* A reading is checked in full before anything moves: one that cannot be judged is refused
+  with a reason and leaves the monitor exactly as it was. Besides order and bounds, that is a
+  reading ``off-scale``: its moving range overflows, or it lies more than :data:`Z_LIMIT`
+  sigmas from the center line (past that, double precision no longer charts it; 1e308 against
+  a sigma of 0.01 would be an infinite z).
 * Readings must arrive in time order. A reading at or before the previous one is refused with a
   reason and changes nothing: ``duplicate`` when it repeats the previous reading (same time and
   value, or a sequence number already seen), ``out-of-order`` otherwise. A monitoring aid that
@@ -40,9 +45,28 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from limitwatch.model import Outcome, Phase, Reading, StreamSignal
-from limitwatch.stats.baseline import Baseline, BaselineError, fit_baseline
+from limitwatch.stats.baseline import Baseline, BaselineError, check_usable, fit_baseline
 from limitwatch.stats.rules import DETECTORS, RuleSpec, parse_rules
 from limitwatch.stats.signal import Detector
+
+Z_LIMIT = 1e100
+"""Farthest a reading may lie from the center line, in sigmas (and largest moving range, in
+sigmas), to be judged; a farther one is refused as ``off-scale``. Far past any real reading
+(ten sigmas out is already extraordinary) and far below overflow: every detector's state then
+stays finite, since CUSUM, which sums one z per reading, would need 1e208 readings to
+overflow."""
+
+REFUSAL_WORDS: dict[str, str] = {
+    "duplicate": "it repeats a reading already applied (same time and value, or a sequence "
+    "number already seen)",
+    "out-of-order": "it is not later than the stream's last reading",
+    "not-finite": "the value or time is not a finite number",
+    "below-lower-bound": "the value is below the stream's lower_bound",
+    "above-upper-bound": "the value is above the stream's upper_bound",
+    "off-scale": f"the value is too far from the center line to be judged (its distance or "
+    f"moving range is over {Z_LIMIT:g} sigmas, or overflows)",
+}
+"""Each refusal reason in a sentence, for people reading a replay or a dead letter."""
 
 SNAPSHOT_FORMAT = 2
 """Checkpoint layout written by :meth:`StreamMonitor.snapshot`. Format 1 (every detector's
@@ -184,10 +208,10 @@ class StreamMonitor:
     def set_baseline(self, baseline: Baseline, version: int | None = None) -> None:
         """Lock a baseline (fitted, stored or refitted) and start every detector afresh: run
         tests counted against old limits mean nothing against new ones."""
-        if not (baseline.sigma > 0 and math.isfinite(baseline.sigma)):
-            raise BaselineError(
-                f"stream {self.stream!r}: baseline sigma must be positive, got {baseline.sigma}"
-            )
+        try:
+            check_usable(baseline)
+        except BaselineError as exc:
+            raise BaselineError(f"stream {self.stream!r}: baseline refused: {exc}") from None
         self.baseline = baseline
         self.baseline_version = self.baseline_version + 1 if version is None else version
         self._center = baseline.center
@@ -230,23 +254,36 @@ class StreamMonitor:
             gap = self.settings.max_gap
             if gap is None or reading.time - self._last_time <= gap:  # type: ignore[operator]
                 mr = abs(value - last_value)
+        # Everything the detectors will be given is computed before anything moves.
+        learning = self.baseline is None
+        z = mr_sigma = 0.0
+        if learning:
+            if mr is not None and not _isfinite(mr):
+                return Outcome(reading, False, "off-scale", None, "learning")
+        else:
+            sigma = self._sigma
+            z = (value - self._center) / sigma
+            if mr is not None:
+                mr_sigma = mr / sigma
+            # written so that an infinite or NaN z or moving range is refused too
+            if not (-Z_LIMIT <= z <= Z_LIMIT and mr_sigma <= Z_LIMIT):
+                return Outcome(reading, False, "off-scale", None, "monitoring")
+
         self.count = index + 1
         self._last_time = reading.time
         self._last_value = value
         if reading.seq is not None:
             self._last_seq = reading.seq
 
-        if self.baseline is None:
+        if learning:
             return self._learn(reading, index, mr)
 
-        z = (value - self._center) / self._sigma
         signals: tuple[StreamSignal, ...] = ()  # most readings raise none: no list to build
         for detector in self._x_detectors:
             hit = detector.update(index, z)
             if hit is not None:
                 signals += (self._place(hit, reading, mr),)
         if mr is not None:
-            mr_sigma = mr / self._sigma
             for detector in self._mr_detectors:
                 hit = detector.update(index, mr_sigma)
                 if hit is not None:
@@ -371,6 +408,9 @@ class StreamMonitor:
             restored = [type(d).from_snapshot(s) for d, s in zip(fresh, saved, strict=True)]
             split = len(self._x_detectors)
             self._x_detectors, self._mr_detectors = tuple(restored[:split]), tuple(restored[split:])
+
+
+_isfinite = math.isfinite
 
 
 def _chart(spec: RuleSpec) -> str:

@@ -50,8 +50,8 @@ class StreamSignal:
 @dataclass(slots=True)
 class Outcome:
     """What one reading did. A refused reading has ``accepted=False`` and a ``reason`` naming why
-    (``duplicate``, ``out-of-order``, ``not-finite``, ``below-lower-bound``, ``above-upper-bound``);
-    it changed no state.
+    (``duplicate``, ``out-of-order``, ``not-finite``, ``below-lower-bound``, ``above-upper-bound``,
+    ``off-scale``; see ``limitwatch.engine.REFUSAL_WORDS``); it changed no state.
 
     Treat it as read-only. It is not ``frozen`` only because one is made for every reading, and a
     frozen dataclass's ``__init__`` (a guarded ``object.__setattr__`` per field) took a fifth of

@@ -17,9 +17,22 @@ of what it wrote to disk. After a crash, :meth:`Pipeline.restore` applies the re
 after each checkpoint again (the engine is deterministic), so the monitors stand exactly where
 the last commit left them.
 
-If the commit fails, the in-memory monitors are ahead of the database; the pipeline then refuses
-to go on (:class:`PipelineBroken`) and the service exits, so a restart resumes from the last
-commit and the broker redelivers what was never acknowledged.
+One bad reading must never stop monitoring, and with at-least-once delivery a reading that
+stops the service comes back after every restart. So no reading's failure leaves
+:meth:`Pipeline.process` as an exception. If the engine raises for a reading, or the batch's
+commit fails for a reason that is not the store's own (the database refuses one row, say), the
+batch is rolled back, the monitors it touched are rebuilt from the store (checkpoint plus the
+readings committed after it, as a restart does), and its items are applied again one
+transaction each; the one that fails again becomes a dead letter (``engine-error`` or
+``store-refused``) and the rest are kept. The monitors therefore always equal what is
+committed, and the caller acknowledges only after :meth:`Pipeline.process` returns, in
+arrival order, as before.
+
+A failure of the store itself (an I/O error, a full disk, a locked or damaged database: any
+``sqlite3.OperationalError`` or ``DatabaseError`` other than a refused row) leaves the monitors
+ahead of the database; the pipeline then refuses to go on (:class:`PipelineBroken`) and the
+service exits, so a restart resumes from the last commit and the broker redelivers what was
+never acknowledged.
 """
 
 from __future__ import annotations
@@ -27,13 +40,14 @@ from __future__ import annotations
 import gc
 import logging
 import math
+import sqlite3
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
-from limitwatch.alerts.lifecycle import AlertBook
+from limitwatch.alerts.lifecycle import AlertBook, BookReport
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Outcome, Reading, StreamSignal
-from limitwatch.stats.baseline import Baseline
+from limitwatch.stats.baseline import Baseline, BaselineError
 from limitwatch.store import CONFIG_AUTHOR, Store, same_numbers
 
 log = logging.getLogger("limitwatch.pipeline")
@@ -57,6 +71,9 @@ class Parsed:
     reading: Reading | None = None
     error: str | None = None
     detail: str = ""
+    position: tuple[str, int] | None = None
+    """For a file line: (file identity, offset after the line), committed with the item when
+    a batch is applied one item at a time."""
 
 
 @dataclass
@@ -92,6 +109,8 @@ class Pipeline:
         ``now``) it first did; oldest first, since a dict keeps insertion order."""
         self._new: set[str] = set()
         """Monitors created since the last commit, which have no checkpoint yet."""
+        self._unusable_streams: set[str] = set()
+        """Streams whose monitor could not be made, already reported in the log."""
 
     # -- state ---
 
@@ -108,7 +127,17 @@ class Pipeline:
         gc.disable()
         try:
             for stream, state in self.store.iter_checkpoints():
-                monitor = StreamMonitor.restore(state, self._settings_for(stream))
+                try:
+                    monitor = StreamMonitor.restore(state, self._settings_for(stream))
+                except (ValueError, KeyError, TypeError) as exc:
+                    # e.g. a baseline this version refuses (a subnormal sigma): one stream's
+                    # checkpoint must not keep the service from starting
+                    log.error(
+                        "stream %s: its checkpoint cannot be restored (%s); it starts afresh",
+                        stream,
+                        _words(exc),
+                    )
+                    continue
                 self.monitors[monitor.stream] = monitor  # one copy of the id, the monitor's
             caught_up = self._catch_up()
         finally:
@@ -162,15 +191,25 @@ class Pipeline:
                 continue
             if monitor.last_time is not None and last_time <= monitor.last_time:
                 continue
-            for reading in self.store.readings_after(stream, monitor.last_time):
-                outcome = monitor.update(reading)
-                if not outcome.accepted:  # the config's bounds changed since, say
-                    log.warning(
-                        "stream %s: a committed reading at %s was refused again (%s)",
-                        stream,
-                        reading.time,
-                        outcome.reason,
-                    )
+            try:
+                for reading in self.store.readings_after(stream, monitor.last_time):
+                    outcome = monitor.update(reading)
+                    if not outcome.accepted:  # the config's bounds changed since, say
+                        log.warning(
+                            "stream %s: a committed reading at %s was refused again (%s)",
+                            stream,
+                            reading.time,
+                            outcome.reason,
+                        )
+            except ValueError as exc:  # a detector refusing its state (an edited checkpoint)
+                log.error(
+                    "stream %s: the readings after its checkpoint cannot be applied (%s); "
+                    "it starts afresh",
+                    stream,
+                    _words(exc),
+                )
+                del self.monitors[stream]
+                continue
             self._unsaved[stream] = -math.inf  # due at once
             behind += 1
         return behind
@@ -258,9 +297,43 @@ class Pipeline:
         now: float,
         file_offsets: dict[str, dict[str, int]] | None = None,
     ) -> BatchResult:
-        """Evaluate and commit; raise :class:`PipelineBroken` if the commit fails."""
+        """Evaluate and commit; raise :class:`PipelineBroken` only if the store itself fails.
+
+        Any other failure (the engine raising for a reading, the database refusing a row)
+        makes that one item a dead letter; see the module's description."""
         if self.broken:
             raise PipelineBroken("an earlier commit failed; restart the service")
+        items = list(items)
+        seen: set[str] = set()
+        try:
+            result, due, report = self._process_batch(items, now, file_offsets, seen)
+        except Exception as exc:
+            if _store_failed(exc):
+                self.broken = True
+                raise PipelineBroken(f"batch commit failed: {_words(exc)}") from exc
+            log.warning(
+                "a batch of %d items failed as a whole (%s); applying them one at a time",
+                len(items),
+                _words(exc),
+            )
+            for stream in seen:
+                self._rebuild(stream)
+            return self._one_by_one(items, now, file_offsets)
+        # Committed: nothing after this point may send the batch round again.
+        self._saved(due)
+        result.opened = report.opened
+        result.queued = report.queued
+        return result
+
+    def _process_batch(
+        self,
+        items: list[Parsed],
+        now: float,
+        file_offsets: dict[str, dict[str, int]] | None,
+        seen: set[str],
+    ) -> tuple[BatchResult, list[str], BookReport]:
+        """Evaluate the batch and commit it in one transaction; return the result, the streams
+        whose checkpoints it wrote and the alert book's report."""
         result = BatchResult()
         dead_rows: list[tuple[str, bytes, str]] = []
         touched: dict[str, StreamMonitor] = {}
@@ -272,7 +345,18 @@ class Pipeline:
                 dead_rows.append((item.source, item.raw, _reason(reason, item.detail)))
                 result.dead.append((item.source, reason))
                 continue
-            monitor = self.monitor(item.reading.stream, now)
+            stream = item.reading.stream
+            try:
+                monitor = self.monitor(stream, now)
+            except Exception as exc:
+                if _store_failed(exc):
+                    raise
+                # Nothing moved yet, so this item alone is a dead letter, here in the batch.
+                detail = self._unusable(stream, item.reading, exc)
+                dead_rows.append((item.source, item.raw, _reason("engine-error", detail)))
+                result.dead.append((item.source, "engine-error"))
+                continue
+            seen.add(stream)  # before the engine runs: it may be what fails
             outcome = monitor.update(item.reading)
             if not outcome.accepted:
                 reason = outcome.reason or "refused"
@@ -285,29 +369,152 @@ class Pipeline:
             result.signals.extend(outcome.signals)
             if outcome.baseline_fitted:
                 fitted.append((monitor, outcome))
+        with self.store.transaction():
+            self.store.add_readings(result.outcomes, now=now)
+            for source, raw, reason in dead_rows:
+                self.store.add_dead_letter(source, raw, reason, now=now)
+            for monitor, outcome in fitted:
+                self._record_learned(monitor, outcome, now)
+            report = self.book.apply(result.outcomes, now)
+            due = self._due(touched, [m.stream for m, _ in fitted], now)
+            if due:
+                self.store.save_checkpoints(
+                    {s: self.monitors[s].snapshot() for s in due}, now=now
+                )
+            for source, offsets in (file_offsets or {}).items():
+                if offsets:
+                    self.store.save_file_offsets(source, offsets, now=now)
+        return result, due, report
+
+    # -- one item at a time, after a batch failed as a whole ---
+
+    def _one_by_one(
+        self,
+        items: list[Parsed],
+        now: float,
+        file_offsets: dict[str, dict[str, int]] | None,
+    ) -> BatchResult:
+        result = BatchResult()
+        for item in items:
+            self._apply_alone(item, now, result)
+        offsets = {source: o for source, o in (file_offsets or {}).items() if o}
+        if offsets:
+            self._commit_or_break(
+                lambda: [self.store.save_file_offsets(s, o, now=now) for s, o in offsets.items()]
+            )
+        return result
+
+    def _apply_alone(self, item: Parsed, now: float, result: BatchResult) -> None:
+        reading = item.reading
+        if reading is None:
+            self._dead_alone(item, item.error or "unreadable", item.detail, now, result)
+            return
+        stream = reading.stream
+        try:
+            monitor = self.monitor(stream, now)
+        except Exception as exc:
+            if _store_failed(exc):
+                self.broken = True
+                raise PipelineBroken(f"reading stream {stream!r} failed: {exc}") from exc
+            detail = self._unusable(stream, reading, exc)
+            self._dead_alone(item, "engine-error", detail, now, result)
+            return
+        try:
+            outcome = monitor.update(reading)
+        except Exception as exc:
+            log.exception("stream %s: the engine failed on the reading at %s", stream, reading.time)
+            self._rebuild(stream)
+            detail = f"stream {stream!r} at {reading.time}: {_words(exc)}"
+            self._dead_alone(item, "engine-error", detail, now, result)
+            return
+        if not outcome.accepted:
+            detail = f"stream {stream!r} at {reading.time}"
+            self._dead_alone(item, outcome.reason or "refused", detail, now, result)
+            return
+        fitted = [stream] if outcome.baseline_fitted else []
+        due: list[str] = []
         try:
             with self.store.transaction():
-                self.store.add_readings(result.outcomes, now=now)
-                for source, raw, reason in dead_rows:
-                    self.store.add_dead_letter(source, raw, reason, now=now)
-                for monitor, outcome in fitted:
+                self.store.add_readings([outcome], now=now)
+                if fitted:
                     self._record_learned(monitor, outcome, now)
-                report = self.book.apply(result.outcomes, now)
-                due = self._due(touched, [m.stream for m, _ in fitted], now)
+                report = self.book.apply([outcome], now)
+                due = self._due({stream: monitor}, fitted, now)
                 if due:
                     self.store.save_checkpoints(
                         {s: self.monitors[s].snapshot() for s in due}, now=now
                     )
-                for source, offsets in (file_offsets or {}).items():
-                    if offsets:
-                        self.store.save_file_offsets(source, offsets, now=now)
+                self._save_position(item, now)
+        except Exception as exc:
+            if _store_failed(exc):
+                self.broken = True
+                raise PipelineBroken(f"commit failed: {_words(exc)}") from exc
+            log.warning("stream %s: the store refused the reading at %s", stream, reading.time)
+            self._rebuild(stream)
+            detail = f"stream {stream!r} at {reading.time}: {_words(exc)}"
+            self._dead_alone(item, "store-refused", detail, now, result)
+            return
+        self._saved(due)
+        result.outcomes.append(outcome)
+        result.signals.extend(outcome.signals)
+        result.opened += report.opened
+        result.queued += report.queued
+
+    def _unusable(self, stream: str, reading: Reading, exc: Exception) -> str:
+        """A stream whose monitor cannot be made (a stored baseline this version refuses, say):
+        said once in the log, and in every one of its dead letters."""
+        if stream not in self._unusable_streams:
+            self._unusable_streams.add(stream)
+            log.error("stream %s: no monitor can be made for it: %s", stream, _words(exc))
+        return f"stream {stream!r} at {reading.time}: {_words(exc)}"
+
+    def _dead_alone(
+        self, item: Parsed, reason: str, detail: str, now: float, result: BatchResult
+    ) -> None:
+        def write() -> None:
+            self.store.add_dead_letter(item.source, item.raw, _reason(reason, detail), now=now)
+            self._save_position(item, now)
+
+        self._commit_or_break(write)
+        result.dead.append((item.source, reason))
+
+    def _save_position(self, item: Parsed, now: float) -> None:
+        if item.position is not None:
+            file_id, offset = item.position
+            self.store.save_file_offsets(item.source, {file_id: offset}, now=now)
+
+    def _commit_or_break(self, write: Callable[[], object]) -> None:
+        """One transaction; if even this fails, the store cannot keep what it must."""
+        try:
+            with self.store.transaction():
+                write()
         except Exception as exc:
             self.broken = True
-            raise PipelineBroken(f"batch commit failed: {exc}") from exc
-        self._saved(due)
-        result.opened = report.opened
-        result.queued = report.queued
-        return result
+            raise PipelineBroken(f"commit failed: {_words(exc)}") from exc
+
+    def _rebuild(self, stream: str) -> None:
+        """Make the stream's monitor what the store says it is: its checkpoint plus the readings
+        committed after it (as :meth:`restore` does), or nothing for a stream never committed."""
+        self.monitors.pop(stream, None)
+        try:
+            state = self.store.load_checkpoint(stream)
+            if state is not None:
+                monitor = StreamMonitor.restore(state, self._settings_for(stream))
+                for reading in self.store.readings_after(stream, monitor.last_time):
+                    monitor.update(reading)
+                self.monitors[stream] = monitor
+                return
+        except Exception as exc:
+            if _store_failed(exc):
+                self.broken = True
+                raise PipelineBroken(f"reading stream {stream!r} back failed: {exc}") from exc
+            log.error(
+                "stream %s: its checkpoint cannot be restored (%s); it starts afresh",
+                stream,
+                _words(exc),
+            )
+        self._new.discard(stream)
+        self._unsaved.pop(stream, None)
 
     def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:
         baseline = monitor.baseline
@@ -353,7 +560,11 @@ class Pipeline:
             stored = self.store.current_baseline(stream)
             if stored is None:
                 continue
-            monitor.set_baseline(Baseline.from_dict(stored.numbers), version=stored.version)
+            try:
+                monitor.set_baseline(Baseline.from_dict(stored.numbers), version=stored.version)
+            except BaselineError as exc:
+                log.error("stream %s: stored baseline %d refused: %s", stream, stored.version, exc)
+                continue
             changed.append(stream)
         if changed:
             # At once: a baseline adopted from outside cannot be found again by replaying
@@ -404,5 +615,35 @@ class Pipeline:
         return out
 
 
+_ROW_REFUSED = (
+    sqlite3.IntegrityError,
+    sqlite3.DataError,
+    sqlite3.ProgrammingError,
+    sqlite3.InterfaceError,
+)
+"""What the database says about a row it will not take, as opposed to failing itself."""
+
+
+def _store_failed(exc: BaseException) -> bool:
+    """True when the store itself failed (I/O, disk full, locked, damaged), so that applying
+    the items again one at a time could not help; False for a refused row or any failure of
+    our own code, which one item may cause."""
+    if isinstance(exc, _ROW_REFUSED):
+        return False
+    return isinstance(exc, sqlite3.Error | OSError | MemoryError)
+
+
+def _words(exc: BaseException) -> str:
+    text = f"{type(exc).__name__}: {exc}"
+    return text if len(text) <= 300 else text[:297] + "..."
+
+
 def _reason(code: str, detail: str) -> str:
-    return f"{code}: {detail}" if detail else code
+    """The dead letter's reason text. It must be storable whatever the input held: a lone
+    surrogate (from a file name, say) would fail the commit, so such characters are escaped."""
+    text = f"{code}: {detail}" if detail else code
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        text = text.encode("utf-8", "backslashreplace").decode("utf-8")
+    return text

@@ -53,7 +53,7 @@ from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
-from limitwatch.pipeline import BatchResult, Parsed, Pipeline
+from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
@@ -172,7 +172,9 @@ class Service:
                 self.files[source.name] = FileSource(
                     source.name, source.glob, source.format, source.start_at
                 )
-                self._row_parsers[source.name] = RowParser(source)
+                self._row_parsers[source.name] = RowParser(
+                    source, future_tolerance=cfg.service.future_tolerance
+                )
                 self._offsets[source.name] = self.store.file_offsets(source.name)
 
         self.scheduler = self._make_scheduler()
@@ -239,7 +241,9 @@ class Service:
             reconnect_min_s=source.reconnect_min_s,
             reconnect_max_s=source.reconnect_max_s,
         )
-        self._mqtt_parsers[source.name] = SourceParser(source)
+        self._mqtt_parsers[source.name] = SourceParser(
+            source, future_tolerance=self.config.service.future_tolerance
+        )
         client = MqttProcess(settings, self.intake)
         self.mqtt[source.name] = client
         # Read when /metrics is scraped, so the figures are current whether or not anyone
@@ -407,6 +411,9 @@ class Service:
             reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, received)
         except PayloadError as exc:
             return Parsed(d.source, _envelope(d), error=exc.reason, detail=str(exc))
+        except Exception as exc:  # a parser bug must not stop the service: a dead letter
+            log.exception("source %s: a message on %r could not be parsed", d.source, d.topic)
+            return Parsed(d.source, _envelope(d), error="parse-error", detail=_failure(exc))
         refused = self._refuse_new_stream(d.source, reading.stream)
         if refused is not None:
             return Parsed(d.source, _envelope(d), error=TOO_MANY_STREAMS, detail=refused)
@@ -529,21 +536,32 @@ class Service:
         return used
 
     def _parse_line(self, line: FileLine, parser: RowParser) -> Parsed:
-        where = f"{line.path} at byte {line.end_offset - len(line.raw)}"
+        start = line.end_offset - len(line.raw) if line.start is None else line.start
+        where = f"{line.path} at byte {start}"
+        at = (line.file_id, line.end_offset)
         if line.record is None:
-            return Parsed(
-                line.source, line.raw, error="unreadable-line", detail=f"{where}: {line.error}"
-            )
+            detail = f"{where}: {line.error}"
+            return Parsed(line.source, line.raw, error=line.reason, detail=detail, position=at)
         try:
             reading = parser.parse(line.record, self.clock())
         except PayloadError as exc:
-            return Parsed(line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}")
+            return Parsed(
+                line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}", position=at
+            )
+        except Exception as exc:  # a parser bug must not stop the service: a dead letter
+            log.exception("source %s: a line of %s could not be parsed", line.source, line.path)
+            detail = f"{where}: {_failure(exc)}"
+            return Parsed(line.source, line.raw, error="parse-error", detail=detail, position=at)
         refused = self._refuse_new_stream(line.source, reading.stream)
         if refused is not None:
             return Parsed(
-                line.source, line.raw, error=TOO_MANY_STREAMS, detail=f"{where}: {refused}"
+                line.source,
+                line.raw,
+                error=TOO_MANY_STREAMS,
+                detail=f"{where}: {refused}",
+                position=at,
             )
-        return Parsed(line.source, line.raw, reading=reading)
+        return Parsed(line.source, line.raw, reading=reading, position=at)
 
     # -- health ---
 
@@ -594,7 +612,13 @@ class Service:
 
 def _envelope(d: Delivery) -> bytes:
     """What a dead letter keeps of an MQTT message: topic and payload, so it can be replayed."""
-    return d.topic.encode() + b"\n" + d.payload
+    return d.topic.encode("utf-8", "backslashreplace") + b"\n" + d.payload
+
+
+def _failure(exc: BaseException) -> str:
+    """An unexpected exception in words, bounded: the kind and the start of its message."""
+    text = f"{type(exc).__name__}: {exc}"
+    return text if len(text) <= 300 else text[:297] + "..."
 
 
 def _now_dt() -> datetime:
@@ -608,6 +632,15 @@ def serve(config: Config) -> int:
     try:
         service.start()
         service.run()
+    except PipelineBroken as exc:
+        # The store itself failed (disk full, an I/O error): the monitors are ahead of it, and
+        # only a restart from the last commit is safe. Nothing unacknowledged is lost.
+        log.error(
+            "stopping: %s; the next start resumes from the last commit, and the broker and the "
+            "file offsets give back what was not committed",
+            exc,
+        )
+        return 1
     finally:
         service.close()
     return 0

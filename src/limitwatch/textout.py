@@ -9,14 +9,17 @@ from collections.abc import Sequence
 def num(value: float | None, digits: int = 6) -> str:
     """A number with ``digits`` significant figures, without a trailing ``.0`` clutter.
 
-    >>> num(12.0), num(3.14159265, 4), num(None), num(1234567.891)
-    ('12', '3.142', '-', '1234568')
+    Whole digits are kept up to 1e15 (past it a double no longer holds every whole number, and
+    1e308 written out would be 309 digits).
+
+    >>> num(12.0), num(3.14159265, 4), num(None), num(1234567.891), num(1e308)
+    ('12', '3.142', '-', '1234568', '1e+308')
     """
     if value is None:
         return "-"
     if not math.isfinite(value):
         return str(value)
-    return f"{value:.{digits}g}" if abs(value) < 10**digits else f"{value:.0f}"
+    return f"{value:.0f}" if 10**digits <= abs(value) < 1e15 else f"{value:.{digits}g}"
 
 
 def table(headers: Sequence[str], rows: Sequence[Sequence[str]], max_width: int = 80) -> str:

@@ -24,7 +24,15 @@ from typing import Any, Literal
 log = logging.getLogger("limitwatch.files")
 
 MAX_READ = 4 * 1024 * 1024
-"""Bytes read per file per poll; the rest waits for the next poll, keeping batches bounded."""
+"""Bytes read per file per poll; the rest waits for the next poll, keeping batches bounded.
+It is also the longest line read as a row: a longer one is passed on as a ``line-too-long``
+dead letter and reading goes on after it (waiting for its end would stop the file for good)."""
+
+KEPT_PREFIX = 1024
+"""Bytes of an overlong line kept in its dead letter: enough to see what it was."""
+
+_SCAN = 1024 * 1024
+"""Bytes read at a time while looking for the end of an overlong line."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -40,6 +48,10 @@ class FileLine:
     raw: bytes
     error: str | None = None
     """Why a line could not be read as a row; it becomes a dead letter."""
+    reason: str = "unreadable-line"
+    """The dead letter's reason code when there is an ``error``."""
+    start: int | None = None
+    """Byte offset where the line starts, given when ``raw`` is only the start of the line."""
 
 
 def file_identity(stat: os.stat_result) -> str:
@@ -98,17 +110,46 @@ class FileSource:
             yield from self._read(path, ident, offset)
 
     def _read(self, path: str, ident: str, offset: int) -> Iterator[FileLine]:
-        try:
-            with open(path, "rb") as handle:
-                header = self._header(handle) if self.format == "csv" else None
-                if header is not None and offset == 0:
-                    offset = handle.tell()
-                    yield FileLine(self.name, path, ident, offset, None, b"")
-                handle.seek(offset)
-                data = handle.read(MAX_READ)
-        except OSError as exc:
-            log.warning("file %s could not be read: %s", path, exc)
-            return
+        while True:
+            overlong_end: int | None = None
+            try:
+                with open(path, "rb") as handle:
+                    header = self._header(handle) if self.format == "csv" else None
+                    if header is not None and offset == 0:
+                        offset = handle.tell()
+                        yield FileLine(self.name, path, ident, offset, None, b"")
+                    handle.seek(offset)
+                    data = handle.read(MAX_READ)
+                    if len(data) == MAX_READ and b"\n" not in data:
+                        overlong_end = _end_of_line(handle)
+                        if overlong_end is None:
+                            return  # its newline is not written yet: look again next poll
+            except OSError as exc:
+                log.warning("file %s could not be read: %s", path, exc)
+                return
+            if overlong_end is None:
+                break
+            log.warning(
+                "file %s: the line at byte %d is %d bytes long, over the limit of %d; "
+                "it goes to the dead letters and reading goes on after it",
+                path,
+                offset,
+                overlong_end - offset,
+                MAX_READ,
+            )
+            yield FileLine(
+                self.name,
+                path,
+                ident,
+                overlong_end,
+                None,
+                data[:KEPT_PREFIX],
+                f"the line is {overlong_end - offset} bytes long, over the limit of {MAX_READ} "
+                f"bytes (the dead letter keeps its first {KEPT_PREFIX})",
+                "line-too-long",
+                offset,
+            )
+            offset = overlong_end
         end = data.rfind(b"\n")
         if end < 0:
             return  # a partial line: wait for its newline
@@ -123,7 +164,7 @@ class FileSource:
             yield FileLine(self.name, path, ident, position, record, raw, error)
 
     def _header(self, handle: Any) -> list[str] | None:
-        first = handle.readline()
+        first = handle.readline(MAX_READ)
         if not first.endswith(b"\n"):
             return None
         try:
@@ -141,6 +182,10 @@ class FileSource:
                 record = json.loads(line)
             except json.JSONDecodeError as exc:
                 return None, f"not JSON: {exc.msg}"
+            except ValueError as exc:  # a number past the interpreter's 4,300-digit limit
+                return None, f"not JSON that can be read: {exc}"
+            except RecursionError:
+                return None, "not JSON that can be read: arrays or objects nest too deeply"
             if not isinstance(record, dict):
                 return None, "a JSON line must be an object"
             return record, None
@@ -153,6 +198,17 @@ class FileSource:
         if len(cells) != len(header):
             return None, f"expected {len(header)} columns, found {len(cells)}"
         return dict(zip(header, (c.strip() for c in cells), strict=True)), None
+
+
+def _end_of_line(handle: Any) -> int | None:
+    """Offset just after the next newline from the handle's position, or None before one."""
+    while True:
+        chunk = handle.read(_SCAN)
+        if not chunk:
+            return None
+        found = chunk.find(b"\n")
+        if found >= 0:
+            return int(handle.tell() - len(chunk) + found + 1)
 
 
 def _mtime_then_name(path: str) -> tuple[float, str]:

@@ -12,8 +12,12 @@ for counting and alerting) and a message a person can act on:
 ``not-a-number``    the value is not a decimal number
 ``not-finite``      the value is NaN or infinite (or too large for a float)
 ``bad-time``        the time stamp does not fit ``time_format`` or lies outside 1970..9999
+``in-the-future``   the time stamp is later than the receive time plus ``future_tolerance``
 ``bad-seq``         the sequence number is not a whole number from 0 to 2**63 - 1
-``bad-stream``      a file row names its stream with something other than text or a whole number
+``bad-stream``      the stream id is not usable: a file row names it with something other than
+                    text or a whole number, or the id (from a topic, a row or ``stream_fixed``)
+                    is too long, holds a control character or is not UTF-8 text (see
+                    :mod:`limitwatch.ingest.streamid`)
 ==================  =======================================================================
 
 Field paths (``value``, ``time``, ``seq`` and a file's ``stream``) are dotted: ``data.temp``
@@ -24,7 +28,10 @@ exact header instead, dots and all.
 Time stamps (``time_format``): ``epoch_s`` and ``epoch_ms`` want a number (or a text holding
 one), ``iso8601`` wants text such as ``2027-01-01T06:00:00Z`` (no offset means UTC, see
 :mod:`limitwatch.ingest.timeparse`), ``auto`` reads a number as epoch seconds and text as ISO
-8601. Without a configured time field the receive time is used.
+8601. Without a configured time field the receive time is used. With ``future_tolerance`` (the
+service passes ``[service] future_tolerance``), a time stamp later than the receive time by more
+than that is refused: one reading dated years ahead would otherwise make every real reading of
+its stream look out of order, and its silence never look stale.
 
 >>> from types import SimpleNamespace as NS
 >>> topic = NS(filter="gw/+/+", stream="{2}/{3}", payload="json", value="data.temp",
@@ -56,7 +63,8 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any, Literal, Protocol
 
-from limitwatch.ingest.timeparse import TimeFormatError, parse_time
+from limitwatch.ingest.streamid import stream_id_problem
+from limitwatch.ingest.timeparse import TimeFormatError, format_time, parse_time
 from limitwatch.ingest.topics import TopicMapper
 from limitwatch.model import Reading
 
@@ -80,6 +88,7 @@ REASONS: tuple[str, ...] = (
     "not-a-number",
     "not-finite",
     "bad-time",
+    "in-the-future",
     "bad-seq",
     "bad-stream",
 )
@@ -95,7 +104,9 @@ MAX_SEQ = 2**63 - 1
 
 _DECIMAL = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
 _NON_FINITE = re.compile(r"[+-]?(?:nan|inf|infinity)", re.IGNORECASE)
-_DIGITS = re.compile(r"\+?\d+")
+_DIGITS = re.compile(r"\+?0*(\d{1,19})")
+"""A whole number in text; the group holds its significant digits (at most 19: ``MAX_SEQ`` has
+19, and ``int()`` of a longer text is work for nothing, refused past 4,300 digits besides)."""
 
 
 class PayloadError(ValueError):
@@ -191,7 +202,10 @@ def _decimal(raw: str, what: str) -> float:
 
 
 def _show(value: Any, limit: int = 60) -> str:
-    text = repr(value)
+    try:
+        text = repr(value)
+    except (RecursionError, ValueError):  # nested past the interpreter's limit; a huge int
+        return f"<a {type(value).__name__} too large to show>"
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
@@ -259,8 +273,8 @@ def _seq(raw: Any, what: str) -> int:
         number = raw
     elif isinstance(raw, float) and math.isfinite(raw) and raw.is_integer():
         number = int(raw)
-    elif isinstance(raw, str) and _DIGITS.fullmatch(raw.strip()):
-        number = int(raw.strip())
+    elif isinstance(raw, str) and (digits := _DIGITS.fullmatch(raw.strip())) is not None:
+        number = int(digits.group(1))
     if number is None or not 0 <= number <= MAX_SEQ:
         raise PayloadError(
             "bad-seq", f"{what} {_show(raw)} is not a whole number from 0 to {MAX_SEQ}"
@@ -271,13 +285,29 @@ def _seq(raw: Any, what: str) -> int:
 class _Fields:
     """Value, time and sequence number out of one record: shared by MQTT JSON and file rows."""
 
-    __slots__ = ("_labels", "_seq", "_time", "_value", "flat", "names", "time_format")
+    __slots__ = (
+        "_labels",
+        "_seq",
+        "_time",
+        "_value",
+        "flat",
+        "future_tolerance",
+        "names",
+        "time_format",
+    )
 
     def __init__(
-        self, value: str, time: str | None, time_format: TimeFormat, seq: str | None, flat: bool
+        self,
+        value: str,
+        time: str | None,
+        time_format: TimeFormat,
+        seq: str | None,
+        flat: bool,
+        future_tolerance: float | None = None,
     ) -> None:
         # ``flat``: CSV rows, looked up by the exact column name.
         self.flat = flat
+        self.future_tolerance = future_tolerance
         self.names = {"value": value, "time": time, "seq": seq}
         # Error texts name the field; made once here, not for every reading.
         self._labels = {key: f"{key} field {name!r}" for key, name in self.names.items()}
@@ -306,6 +336,14 @@ class _Fields:
             moment = received_at
         else:
             moment = _time(self.get(record, self._time, "time"), self.time_format, labels["time"])
+            tolerance = self.future_tolerance
+            if tolerance is not None and moment > received_at + tolerance:
+                raise PayloadError(
+                    "in-the-future",
+                    f"{labels['time']} {format_time(moment)} is {moment - received_at:.0f} s "
+                    f"after the receive time {format_time(received_at)}, more than "
+                    f"future_tolerance ({tolerance:g} s); check the sender's clock",
+                )
         seq = None
         if self._seq is not None:
             seq = _seq(self.get(record, self._seq, "seq"), labels["seq"])
@@ -324,12 +362,20 @@ class PayloadParser:
 
     __slots__ = ("_fields", "json", "mapper", "max_payload_bytes")
 
-    def __init__(self, topic: TopicLike, *, max_payload_bytes: int | None = None) -> None:
+    def __init__(
+        self,
+        topic: TopicLike,
+        *,
+        max_payload_bytes: int | None = None,
+        future_tolerance: float | None = None,
+    ) -> None:
         self.mapper = TopicMapper(topic.filter, topic.stream)
         self.json = topic.payload == "json"
         self.max_payload_bytes = max_payload_bytes
         self._fields = (
-            _Fields(topic.value, topic.time, topic.time_format, topic.seq, flat=False)
+            _Fields(
+                topic.value, topic.time, topic.time_format, topic.seq, False, future_tolerance
+            )
             if self.json
             else None
         )
@@ -352,6 +398,7 @@ class PayloadParser:
                 f"topic {_show(topic)} does not give a stream through filter "
                 f"{self.mapper.filter!r} and template {self.mapper.template!r}",
             )
+        _check_stream(stream, f"topic {_show(topic)}")
         return self._parse(stream, payload, received_at)
 
     def _parse(self, stream: str, payload: bytes, received_at: float) -> Reading:
@@ -366,7 +413,12 @@ class PayloadParser:
         try:
             document = _JSON.decode(_utf8(payload))
         except (UnicodeDecodeError, ValueError) as exc:
+            # ValueError also covers a number past the interpreter's 4,300-digit limit
             raise PayloadError("bad-json", f"payload is not UTF-8 JSON: {exc}") from None
+        except RecursionError:
+            raise PayloadError(
+                "bad-json", "payload nests arrays or objects too deeply to be read"
+            ) from None
         moment, value, seq = self._fields.read(document, received_at)
         return Reading(stream, moment, value, seq)
 
@@ -382,6 +434,12 @@ def _utf8(payload: bytes) -> str:
     """UTF-8 text with a leading byte-order mark dropped; the same as the ``utf-8-sig`` codec,
     whose decoder runs in Python, by way of the one written in C."""
     return (payload[3:] if payload.startswith(_BOM) else payload).decode("utf-8")
+
+
+def _check_stream(stream: str, where: str) -> None:
+    problem = stream_id_problem(stream)
+    if problem is not None:
+        raise PayloadError("bad-stream", f"the stream id from {where} {problem}")
 
 
 def _check_size(payload: bytes, limit: int | None) -> None:
@@ -403,16 +461,20 @@ class SourceParser:
     'oven-1/energy'
     """
 
-    __slots__ = ("_routes", "max_payload_bytes", "parsers")
+    __slots__ = ("_refused", "_routes", "max_payload_bytes", "parsers")
 
     ROUTES_KEPT = 1 << 17
     """Most topics whose parser and stream are remembered; past it the memory starts afresh.
     A site's topics are its streams, so this covers 130,000 of them."""
 
-    def __init__(self, source: Any) -> None:
+    def __init__(self, source: Any, *, future_tolerance: float | None = None) -> None:
         self.max_payload_bytes: int | None = source.max_payload_bytes
-        self.parsers = tuple(PayloadParser(t) for t in source.topics)
+        self.parsers = tuple(
+            PayloadParser(t, future_tolerance=future_tolerance) for t in source.topics
+        )
         self._routes: dict[str, tuple[PayloadParser, str] | None] = {}
+        self._refused: dict[str, str] = {}
+        """Topics among ``_routes`` whose stream id is refused, with the reason."""
         """Topic -> (the entry that parses it, its stream), or None when no entry maps it.
         Every message on a topic maps the same way, and matching filters and filling in the
         template is work done again for each reading otherwise."""
@@ -431,7 +493,12 @@ class SourceParser:
                 break
         if len(self._routes) >= self.ROUTES_KEPT:
             self._routes.clear()
+            self._refused.clear()
         self._routes[topic] = found
+        if found is not None:
+            problem = stream_id_problem(found[1])
+            if problem is not None:
+                self._refused[topic] = problem
         return found
 
     def parse(self, topic: str, payload: bytes, received_at: float) -> Reading:
@@ -444,6 +511,10 @@ class SourceParser:
                 + ", ".join(repr(p.mapper.filter) for p in self.parsers),
             )
         parser, stream = found
+        if self._refused and topic in self._refused:
+            raise PayloadError(
+                "bad-stream", f"the stream id from topic {_show(topic)} {self._refused[topic]}"
+            )
         return parser._parse(stream, payload, received_at)
 
 
@@ -463,9 +534,15 @@ class RowParser:
 
     __slots__ = ("_fields", "_stream", "stream_fixed", "stream_name")
 
-    def __init__(self, source: FileSourceLike) -> None:
+    def __init__(self, source: FileSourceLike, *, future_tolerance: float | None = None) -> None:
         flat = source.format == "csv"
-        self._fields = _Fields(source.value, source.time, source.time_format, source.seq, flat)
+        self._fields = _Fields(
+            source.value, source.time, source.time_format, source.seq, flat, future_tolerance
+        )
+        if source.stream_fixed is not None:
+            problem = stream_id_problem(source.stream_fixed)
+            if problem is not None:
+                raise ValueError(f"stream_fixed {_show(source.stream_fixed)} {problem}")
         self.stream_fixed = source.stream_fixed
         self.stream_name = source.stream
         self._stream = None
@@ -495,5 +572,8 @@ class RowParser:
                 raise PayloadError(
                     "bad-stream", f"{label} {_show(raw)} is neither text nor a whole number"
                 )
+            problem = stream_id_problem(stream)
+            if problem is not None:
+                raise PayloadError("bad-stream", f"{label} {_show(raw)} {problem}")
         moment, value, seq = self._fields.read(record, received_at)
         return Reading(stream, moment, value, seq)

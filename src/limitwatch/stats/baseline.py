@@ -35,6 +35,7 @@ Box, G. E. P., Jenkins, G. M. and Reinsel, G. C., *Time Series Analysis* (sample
 from __future__ import annotations
 
 import math
+import sys
 from dataclasses import dataclass
 from typing import Any, Literal, get_args
 
@@ -71,6 +72,46 @@ ZONES: tuple[str, ...] = get_args(Zone)
 
 class BaselineError(ValueError):
     """The readings cannot give a trustworthy baseline; the message says why and what to do."""
+
+
+SMALLEST_SIGMA = sys.float_info.min
+"""The smallest normal double (about 2.2e-308). Below it a sigma is subnormal: it has lost
+precision, and a reading an ordinary distance from the center line divided by it overflows to
+infinity, which no detector can judge."""
+
+
+def sigma_problem(sigma: float) -> str | None:
+    """Why ``sigma`` cannot be a baseline's sigma, or None when it can.
+
+    >>> sigma_problem(0.5) is None
+    True
+    >>> sigma_problem(5e-324)[:46], sigma_problem(0.0)[-7:]
+    ('sigma must be a normal positive number (at lea', 'got 0.0')
+    """
+    if math.isfinite(sigma) and sigma >= SMALLEST_SIGMA:
+        return None
+    return (
+        f"sigma must be a normal positive number (at least {SMALLEST_SIGMA!r} and finite), "
+        f"got {sigma!r}"
+    )
+
+
+def check_usable(baseline: Baseline) -> None:
+    """Raise :class:`BaselineError` unless the engine can judge readings against ``baseline``:
+    a normal positive sigma and a finite center line and limits. Fitted, typed-in and stored
+    baselines all pass here, so a bad one is refused where it is made or read, never while a
+    reading is being judged."""
+    problem = sigma_problem(baseline.sigma)
+    if problem is None:
+        numbers = (baseline.center, baseline.lcl_raw, baseline.ucl_raw, baseline.mr_ucl)
+        if not all(math.isfinite(v) for v in numbers):
+            problem = (
+                f"center {baseline.center!r}, limits {baseline.lcl_raw!r} .. "
+                f"{baseline.ucl_raw!r} and MR limit {baseline.mr_ucl!r} must all be finite: "
+                "readings this large cannot be charted in double precision; rescale them"
+            )
+    if problem is not None:
+        raise BaselineError(problem)
 
 
 @dataclass(frozen=True, slots=True)
@@ -224,7 +265,7 @@ class Baseline:
         _check_method(data.get("method"))
         try:
             cap = data["capability"]
-            return cls(
+            baseline = cls(
                 center=float(data["center"]),
                 mr_bar=float(data["mr_bar"]),
                 mr_median=float(data["mr_median"]),
@@ -252,6 +293,8 @@ class Baseline:
             )
         except KeyError as exc:
             raise BaselineError(f"stored baseline is missing the key {exc.args[0]!r}") from exc
+        check_usable(baseline)
+        return baseline
 
     @classmethod
     def from_limits(
@@ -277,8 +320,9 @@ class Baseline:
         center, sigma = float(center), float(sigma)
         if not math.isfinite(center):
             raise BaselineError(f"center must be a finite number, got {center!r}")
-        if not (math.isfinite(sigma) and sigma > 0):
-            raise BaselineError(f"sigma must be a positive finite number, got {sigma!r}")
+        problem = sigma_problem(sigma)
+        if problem is not None:
+            raise BaselineError(problem)
         _check_method(method)
         lower_bound, upper_bound = _check_bounds(lower_bound, upper_bound)
         half = 3.0 * sigma
@@ -362,7 +406,7 @@ def _assemble(
             capability = compute_capability(center, sigma, sigma_overall, spec_lower, spec_upper)
         except ValueError as exc:
             raise BaselineError(str(exc)) from exc
-    return Baseline(
+    baseline = Baseline(
         center=center,
         mr_bar=mr_bar,
         mr_median=mr_median,
@@ -388,6 +432,8 @@ def _assemble(
         capability=capability,
         warnings=tuple(warnings),
     )
+    check_usable(baseline)
+    return baseline
 
 
 @dataclass(frozen=True, slots=True)
