@@ -322,3 +322,50 @@ def test_a_restart_after_the_clock_stepped_back_goes_on_from_the_last_commit(
     assert all(b > a for a, b in itertools.pairwise(times))
     said = r"behind the store's last commit by (1h 59m|2h 0m 0s)"
     assert any(re.search(said, r.getMessage()) for r in caplog.records)
+
+
+# --------------------------------------------------------------------------- failing jobs
+
+
+def test_a_failing_job_is_logged_and_the_worker_goes_on(tmp_path: Path, caplog) -> None:
+    """A fault injected into the stale check (the store is real): the worker logs it, counts
+    it, and keeps reading the export; only a failure of the store itself ends the service."""
+    config = load_config(write_config(tmp_path))
+    service = Service(config)
+    caplog.set_level(logging.ERROR, logger="limitwatch.service")
+    with running(service):
+        assert service.pipeline is not None
+
+        def broken(*_args: object) -> list:
+            raise RuntimeError("a bug in the stale check")
+
+        service.pipeline.stale_signals = broken  # type: ignore[method-assign]
+        wait_until(lambda: "a bug in the stale check" in caplog.text, timeout=30)
+        rows = "".join(f"{1_700_000_000 + i},oven/t,{i % 3}\n" for i in range(5))
+        (tmp_path / "data" / "a.csv").write_text("time,stream,value\n" + rows)
+        wait_until(lambda: count(tmp_path / "service.db", "readings") == 5, timeout=30)
+        failures = service.metrics.registry.get_sample_value(
+            "limitwatch_job_failures_total", {"job": "stale-check"}
+        )
+        assert failures is not None and failures >= 1
+
+
+def test_a_store_failure_in_a_job_stops_the_worker_as_broken(tmp_path: Path) -> None:
+    from limitwatch.pipeline import PipelineBroken
+
+    config = load_config(write_config(tmp_path))
+    service = Service(config)
+    service.start()
+    try:
+        assert service.pipeline is not None
+
+        def disk_gone(*_args: object) -> list:
+            raise sqlite3.OperationalError("disk I/O error")
+
+        service.pipeline.stale_signals = disk_gone  # type: ignore[method-assign]
+        from limitwatch.service import Job
+
+        with pytest.raises(PipelineBroken, match="disk I/O error"):
+            service._run_job_guarded(Job("stale-check"))
+    finally:
+        service.close()

@@ -79,6 +79,12 @@ class Metrics:
             ["source"],
             registry=r,
         )
+        self.job_failures = Counter(
+            "limitwatch_job_failures",
+            "Scheduled jobs (stale checks, reminders, refits, ...) that failed and will run again.",
+            ["job"],
+            registry=r,
+        )
 
     def text(self) -> bytes:
         return generate_latest(self.registry)

@@ -308,7 +308,7 @@ class Pipeline:
         try:
             result, due, report = self._process_batch(items, now, file_offsets, seen)
         except Exception as exc:
-            if _store_failed(exc):
+            if store_failed(exc):
                 self.broken = True
                 raise PipelineBroken(f"batch commit failed: {_words(exc)}") from exc
             log.warning(
@@ -349,7 +349,7 @@ class Pipeline:
             try:
                 monitor = self.monitor(stream, now)
             except Exception as exc:
-                if _store_failed(exc):
+                if store_failed(exc):
                     raise
                 # Nothing moved yet, so this item alone is a dead letter, here in the batch.
                 detail = self._unusable(stream, item.reading, exc)
@@ -413,7 +413,7 @@ class Pipeline:
         try:
             monitor = self.monitor(stream, now)
         except Exception as exc:
-            if _store_failed(exc):
+            if store_failed(exc):
                 self.broken = True
                 raise PipelineBroken(f"reading stream {stream!r} failed: {exc}") from exc
             detail = self._unusable(stream, reading, exc)
@@ -446,7 +446,7 @@ class Pipeline:
                     )
                 self._save_position(item, now)
         except Exception as exc:
-            if _store_failed(exc):
+            if store_failed(exc):
                 self.broken = True
                 raise PipelineBroken(f"commit failed: {_words(exc)}") from exc
             log.warning("stream %s: the store refused the reading at %s", stream, reading.time)
@@ -505,7 +505,7 @@ class Pipeline:
                 self.monitors[stream] = monitor
                 return
         except Exception as exc:
-            if _store_failed(exc):
+            if store_failed(exc):
                 self.broken = True
                 raise PipelineBroken(f"reading stream {stream!r} back failed: {exc}") from exc
             log.error(
@@ -624,7 +624,7 @@ _ROW_REFUSED = (
 """What the database says about a row it will not take, as opposed to failing itself."""
 
 
-def _store_failed(exc: BaseException) -> bool:
+def store_failed(exc: BaseException) -> bool:
     """True when the store itself failed (I/O, disk full, locked, damaged), so that applying
     the items again one at a time could not help; False for a refused row or any failure of
     our own code, which one item may cause."""

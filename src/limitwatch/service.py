@@ -53,7 +53,7 @@ from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
-from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken
+from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken, store_failed
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
@@ -359,7 +359,7 @@ class Service:
             for job in jobs:
                 if job is _STOP:
                     continue
-                self._run_job(job)
+                self._run_job_guarded(job)
         log.info("stopping: the last batch is committed and acknowledged")
         assert self.pipeline is not None
         if not self.pipeline.broken:
@@ -460,6 +460,20 @@ class Service:
         if result.queued and self.outbox is not None:
             self.outbox.wake()
         return result
+
+    def _run_job_guarded(self, job: Job) -> None:
+        """Run one job; a job's own failure is logged and the next run tries again, so a bug
+        in, say, the stale check never stops the readings. A failure of the store itself ends
+        the service the way a failed batch commit does (see :func:`serve`)."""
+        try:
+            self._run_job(job)
+        except PipelineBroken:
+            raise
+        except Exception as exc:
+            if store_failed(exc):
+                raise PipelineBroken(f"scheduled job {job.kind} failed: {exc}") from exc
+            self.metrics.job_failures.labels(job.kind).inc()
+            log.exception("scheduled job %s failed; its next run tries again", job.kind)
 
     def _run_job(self, job: Job) -> None:
         assert self.pipeline is not None and self.book is not None and self.store is not None
