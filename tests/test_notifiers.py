@@ -413,6 +413,37 @@ def test_smtp_sends_over_verified_starttls_with_login(
     assert " ".join(SAFETY_CAUTION.split()) in body
 
 
+HOSTILE_STREAM = "kiln-9\x1b[2J\x07/temp\nBcc: everyone@plant.test"
+
+
+def test_console_escapes_control_characters_in_the_stream_id(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    notifier = build_notifier({"type": "console", "name": "desk"})
+    notifier.deliver(payload(stream=HOSTILE_STREAM), event_id="12:opened:0")
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x07" not in out
+    assert "  stream:    kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test" in out.splitlines()
+
+
+def test_smtp_sends_an_alert_whose_stream_id_holds_a_newline(tmp_path: Path) -> None:
+    # A newline in a header cannot be sent: every retry failed until the notification expired.
+    ca = make_ca(tmp_path / "ca")
+    with smtp_receiver(tls=ca.server_context(tmp_path)) as (port, mails):
+        notifier = build_notifier(_mail_settings(port, ca.cert_path))
+        notifier.deliver(payload(stream=HOSTILE_STREAM), event_id="12:opened:0")
+    (mail,) = mails
+    assert mail.rcpt_tos == ["shift-lead@plant.test", "reliability@plant.test"]
+    msg = email.message_from_bytes(mail.content, policy=email.policy.default)
+    assert msg["Bcc"] is None
+    assert msg["Subject"] == (
+        "[limitwatch] warning: kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test beyond-limits"
+    )
+    body = msg.get_content()
+    assert "\x1b" not in body and "\x07" not in body
+    assert "kiln-9\\x1b[2J\\x07/temp\\x0aBcc" in body
+
+
 def test_smtp_refuses_a_server_certificate_from_an_unknown_ca(tmp_path: Path) -> None:
     ca = make_ca(tmp_path / "ca")
     ours = make_ca(tmp_path / "ours", "Our Plant CA")

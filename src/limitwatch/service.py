@@ -47,6 +47,7 @@ from limitwatch.pipeline import BatchResult, Parsed, Pipeline
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
+from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.service")
 
@@ -362,7 +363,7 @@ class Service:
                 self.outbox.wake()
         elif job.kind == "refits":
             for stream in self.pipeline.adopt_new_baselines(now):
-                log.info("stream %s: adopted a new stored baseline", stream)
+                log.info("stream %s: adopted a new stored baseline", printable(stream))
         elif job.kind == "retention":
             cfg = self.config.store
             # Readings newer than a stream's checkpoint are part of its state until the next one.
