@@ -117,6 +117,7 @@ __all__ = [
     "config_from_dict",
     "key_path",
     "load_config",
+    "split_address",
 ]
 
 # --------------------------------------------------------------------------- problems
@@ -328,16 +329,17 @@ class ServiceSection(_Section):
     @classmethod
     def _listen(cls, value: str | None) -> str | None:
         if value is not None:
-            _split_address(value)
+            split_address(value)
         return value
 
     @property
     def metrics_address(self) -> tuple[str, int] | None:
         """``(host, port)`` for the metrics and health listener, or None when it is off."""
-        return None if self.metrics_listen is None else _split_address(self.metrics_listen)
+        return None if self.metrics_listen is None else split_address(self.metrics_listen)
 
 
-def _split_address(text: str) -> tuple[str, int]:
+def split_address(text: str) -> tuple[str, int]:
+    """``host:port`` or ``[IPv6 address]:port`` as ``(host, port)``, brackets removed."""
     match = re.fullmatch(r"(\[[0-9A-Fa-f:.]+\]|[^:\[\]\s]+):(\d{1,5})", text.strip())
     if match is None or not 1 <= int(match.group(2)) <= 65535:
         raise ValueError(f"{text!r} is not host:port; write e.g. '127.0.0.1:9464' or '[::1]:9464'")
