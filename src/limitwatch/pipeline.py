@@ -35,6 +35,7 @@ from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
+from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.pipeline")
 
@@ -136,7 +137,7 @@ class Pipeline:
                 if not outcome.accepted:  # the config's bounds changed since, say
                     log.warning(
                         "stream %s: a committed reading at %s was refused again (%s)",
-                        stream,
+                        printable(stream),
                         reading.time,
                         outcome.reason,
                     )
