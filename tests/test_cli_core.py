@@ -99,7 +99,7 @@ def test_baseline_fit_excludes_a_wild_point_and_says_which(tmp_path):
         (
             "minutes\n1\n2\nabc\n",
             ["--value", "minutes"],
-            "line 4, column 'minutes': 'abc' is not a number",
+            "line 4, column 'minutes': value 'abc' is not a decimal number",
         ),
         ("minutes\n1\n2\n", ["--value", "mins"], "column 'mins' is not in the header"),
         ("", ["--value", "minutes"], "empty"),
@@ -188,3 +188,72 @@ def test_replay_bad_time_names_line_and_column(tmp_path):
     result = run_cli("replay", str(path), "--value", "v", "--time", "t")
     assert result.returncode == 1
     assert "line 3, column 't'" in result.stderr and "yesterday" in result.stderr
+
+
+# -- the offline commands read files by the service's rules ----------------------------------
+
+
+OFFLINE = [["baseline", "fit"], ["replay", "--time", "t"]]
+
+
+@pytest.mark.parametrize("command", OFFLINE, ids=["baseline-fit", "replay"])
+def test_an_unquoted_decimal_comma_is_refused_not_read_as_its_whole_part(tmp_path, command):
+    path = tmp_path / "export.csv"
+    rows = "".join(f"{60 * i},{10 + i % 3}.5\n" for i in range(30))
+    path.write_text("t,minutes\n" + rows + "1800,10,43\n")
+    result = run_cli(*command, str(path), "--value", "minutes")
+    assert result.returncode == 1, result.stdout
+    assert f"{path}, line 32: expected 2 columns, found 3" in result.stderr
+    assert "Traceback" not in result.stderr
+
+
+def _service_accepts(time_cell: str, value_cell: str) -> bool:
+    from types import SimpleNamespace
+
+    from limitwatch.ingest.payload import PayloadError, RowParser
+
+    source = SimpleNamespace(
+        name="f", format="csv", value="v", time="t", time_format="auto", seq=None,
+        stream=None, stream_fixed="s",
+    )  # fmt: skip
+    try:
+        RowParser(source).parse({"t": time_cell, "v": value_cell}, received_at=0.0)
+    except PayloadError:
+        return False
+    return True
+
+
+@pytest.mark.parametrize(
+    ("time_cell", "value_cell"),
+    [
+        ("1700000000", "1_05"),
+        ("1_700_000_000", "1.5"),
+        ("1700000000", "0x1p3"),
+        ("1700000000", "nan"),
+        ("1700000000", " 12.5 "),
+        ("2027-01-01T00:00:00Z", "-3e2"),
+        ("99999999999999", "1"),
+    ],
+)
+@pytest.mark.parametrize("command", OFFLINE, ids=["baseline-fit", "replay"])
+def test_offline_commands_refuse_exactly_what_the_service_refuses(
+    tmp_path, command, time_cell, value_cell
+):
+    path = tmp_path / "export.csv"
+    quiet = "".join(f"{1600000000 + 60 * i},{10 + i % 3}.5\n" for i in range(30))
+    path.write_text(f"t,v\n{quiet}{time_cell},{value_cell}\n")
+    result = run_cli(*command, str(path), "--value", "v")
+    accepted = result.returncode == 0
+    assert "Traceback" not in result.stderr
+    if "--time" not in command:  # baseline fit reads values only
+        time_cell = "1700000000"
+    assert accepted == _service_accepts(time_cell, value_cell), result.stderr
+    if not accepted:
+        assert "line 32, column" in result.stderr
+
+
+def test_underscore_separated_times_and_values_are_refused_by_the_service_too():
+    # Python's float() reads "1_700_000_000"; the service's one number rule does not.
+    assert not _service_accepts("1_700_000_000", "1.5")
+    assert not _service_accepts("1700000000", "1_05")
+    assert _service_accepts("1700000000", "1.05")

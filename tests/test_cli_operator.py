@@ -760,3 +760,33 @@ def test_every_command_and_group_has_help_text() -> None:
     # The installed script shows the same commands.
     listed = run_cli("--help").stdout
     assert all(name in listed for name in ("alerts", "ack", "log", "shelve", "streams"))
+
+
+# -- control characters in stream ids ----------------------------------------------------------
+
+HOSTILE = "kiln-9\x1b[2J\x07/temp\nFORGED LINE"
+CONTROL = set(map(chr, [*range(0x20), 0x7F]))
+
+
+def test_streams_and_alerts_escape_control_characters_in_stream_ids(tmp_path: Path) -> None:
+    # A gateway names the stream: ESC would drive the operator's terminal, BEL ring it, and a
+    # newline forge a row of the table.
+    plant = Plant(tmp_path / "hostile.db", base=time.time() - 3600)
+    rng = np.random.default_rng(7)
+    values = [round(float(v), 2) for v in rng.normal(50.0, 1.0, 30)]
+    values[28] = 80.0
+    with Store.open(plant.path, now=plant.base) as store:
+        _feed(plant, store, AlertBook(store, POLICY), HOSTILE, values, {28: ["beyond-limits"]})
+    for command in (["streams"], ["alerts"], ["alerts", "--state", "all"]):
+        result = plant.cli(*command)
+        assert result.returncode == 0, result.stderr
+        body = result.stdout.replace("\n", "")
+        assert not (set(body) & CONTROL), (command, result.stdout)
+        assert "kiln-9\\x1b[2J\\x07" in result.stdout
+        assert not any(line.startswith("FORGED") for line in result.stdout.splitlines())
+    alert_id = plant.json("alerts")[0]["id"]
+    assert plant.json("alerts")[0]["stream"] == HOSTILE  # machine output keeps the real id
+    for command in (["log", str(alert_id)], ["ack", str(alert_id), "--by", "night shift"]):
+        result = plant.cli(*command)
+        assert result.returncode == 0, result.stderr
+        assert not (set(result.stdout.replace("\n", "")) & CONTROL), (command, result.stdout)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import os
 
-from limitwatch.ingest.files import FileSource, file_identity
+from limitwatch.ingest.files import FileSource, file_identity, glob_folder
 
 
 def lines(source: FileSource, offsets: dict[str, int]) -> list:
@@ -75,3 +75,33 @@ def test_start_at_end_skips_what_is_already_there(tmp_path):
     with path.open("a") as f:
         f.write(json.dumps({"v": 2}) + "\n")
     assert [x.record for x in lines(source, offsets)] == [{"v": 2}]
+
+
+def test_a_symlink_out_of_the_glob_folder_is_refused_once_and_never_read(tmp_path, caplog):
+    secret = tmp_path / "private" / "shadow.csv"
+    secret.parent.mkdir()
+    secret.write_text("time,value\n2027-01-01T00:00:00Z,12345\n")
+    secret.chmod(0o600)
+    export = tmp_path / "export"
+    export.mkdir()
+    (export / "line-1.csv").write_text("time,value\n2027-01-01T00:00:00Z,1\n")
+    (export / "leak.csv").symlink_to(secret)
+    (export / "sub").symlink_to(secret.parent, target_is_directory=True)
+    (export / "alias.csv").symlink_to(export / "line-1.csv")  # inside: still allowed
+    source = FileSource("f", str(export / "*.csv"), "csv")
+    offsets: dict[str, int] = {}
+    with caplog.at_level("WARNING", logger="limitwatch.files"):
+        got = lines(source, offsets)
+        got += lines(source, offsets)
+    assert {x.path for x in got} == {str(export / "line-1.csv"), str(export / "alias.csv")}
+    assert all(b"12345" not in x.raw for x in got)
+    warnings = [r.getMessage() for r in caplog.records if "outside the folder" in r.getMessage()]
+    assert len(warnings) == 1 and str(export / "leak.csv") in warnings[0]
+    deep = FileSource("g", str(export / "*" / "*.csv"), "csv")
+    assert [x for x in lines(deep, {}) if x.record] == []  # export/sub -> private: refused
+
+
+def test_glob_folder_stops_at_the_first_wildcard():
+    assert glob_folder("/srv/export/line-*/*.csv") == "/srv/export"
+    assert glob_folder("/srv/export/a.csv") == "/srv/export"
+    assert glob_folder("*.csv") == "."

@@ -413,6 +413,37 @@ def test_smtp_sends_over_verified_starttls_with_login(
     assert " ".join(SAFETY_CAUTION.split()) in body
 
 
+HOSTILE_STREAM = "kiln-9\x1b[2J\x07/temp\nBcc: everyone@plant.test"
+
+
+def test_console_escapes_control_characters_in_the_stream_id(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    notifier = build_notifier({"type": "console", "name": "desk"})
+    notifier.deliver(payload(stream=HOSTILE_STREAM), event_id="12:opened:0")
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x07" not in out
+    assert "  stream:    kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test" in out.splitlines()
+
+
+def test_smtp_sends_an_alert_whose_stream_id_holds_a_newline(tmp_path: Path) -> None:
+    # A newline in a header cannot be sent: every retry failed until the notification expired.
+    ca = make_ca(tmp_path / "ca")
+    with smtp_receiver(tls=ca.server_context(tmp_path)) as (port, mails):
+        notifier = build_notifier(_mail_settings(port, ca.cert_path))
+        notifier.deliver(payload(stream=HOSTILE_STREAM), event_id="12:opened:0")
+    (mail,) = mails
+    assert mail.rcpt_tos == ["shift-lead@plant.test", "reliability@plant.test"]
+    msg = email.message_from_bytes(mail.content, policy=email.policy.default)
+    assert msg["Bcc"] is None
+    assert msg["Subject"] == (
+        "[limitwatch] warning: kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test beyond-limits"
+    )
+    body = msg.get_content()
+    assert "\x1b" not in body and "\x07" not in body
+    assert "kiln-9\\x1b[2J\\x07/temp\\x0aBcc" in body
+
+
 def test_smtp_refuses_a_server_certificate_from_an_unknown_ca(tmp_path: Path) -> None:
     ca = make_ca(tmp_path / "ca")
     ours = make_ca(tmp_path / "ours", "Our Plant CA")
@@ -506,6 +537,63 @@ def test_command_gets_json_on_stdin_and_the_event_id_in_its_environment(tmp_path
     assert got["argv"] == [str(out), "$(touch x); *"]
     assert got["note"] == {**note, "event_id": "12:opened:0"}
     assert not (tmp_path / "x").exists()
+
+
+def test_command_gets_a_minimal_environment_not_the_services_secrets(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The service's environment holds the other notifiers' credentials; the program must not.
+    monkeypatch.setenv("SMTP_PASSWORD", "hunter2")
+    monkeypatch.setenv("PAGER_TOKEN", "pt-123")
+    monkeypatch.setenv("LC_TIME", "C.UTF-8")
+    out = tmp_path / "env.json"
+    script = _script(
+        tmp_path,
+        "env.py",
+        f"""
+        #!{sys.executable}
+        import json, os, sys
+        sys.stdin.read()
+        with open(sys.argv[1], "w") as f:
+            json.dump(dict(os.environ), f)
+        """,
+    )
+    notifier = build_notifier(
+        {
+            "type": "command",
+            "name": "pager",
+            "argv": [str(script), str(out)],
+            "pass_env": ["PAGER_TOKEN", "NOT_SET_ANYWHERE"],
+            "env": {"PAGER_QUEUE": "line-2"},
+        }
+    )
+    notifier.deliver(payload(), event_id="12:opened:0")
+    got = json.loads(out.read_text())
+    assert "SMTP_PASSWORD" not in got
+    assert "hunter2" not in got.values()
+    assert got["PAGER_TOKEN"] == "pt-123"
+    assert got["PAGER_QUEUE"] == "line-2"
+    assert got["LC_TIME"] == "C.UTF-8"
+    assert got["PATH"] == os.environ["PATH"]
+    assert got["LIMITWATCH_EVENT_ID"] == "12:opened:0"
+    assert "NOT_SET_ANYWHERE" not in got
+    allowed = {"PATH", "HOME", "TMPDIR", "TZ", "LANG", "PAGER_TOKEN", "PAGER_QUEUE"}
+    extra = {k for k in got if k not in allowed and not k.startswith("LC_")}
+    # The interpreter may add a few of its own (e.g. LC_CTYPE coercion); nothing else.
+    assert extra <= {"LIMITWATCH_EVENT_ID", "LC_CTYPE"}, extra
+
+
+@pytest.mark.parametrize(
+    ("extra", "words"),
+    [
+        ({"env": {"PAGER_TOKEN": "inline"}}, "pass_env"),
+        ({"env": {"bad name": "x"}}, "not an environment variable name"),
+        ({"pass_env": ["LIMITWATCH_EVENT_ID"]}, "set by limitwatch"),
+    ],
+)
+def test_command_env_settings_refuse_inline_credentials_and_bad_names(extra, words) -> None:
+    with pytest.raises(ValidationError, match=words):
+        settings_model("command")(type="command", name="pager", argv=["/bin/true"], **extra)
 
 
 def test_command_failure_is_retryable_and_reports_the_stderr_tail(tmp_path: Path) -> None:

@@ -90,3 +90,39 @@ def test_the_readme_starts_with_the_job_and_carries_the_caution():
     first = README.split("\n\n")[1]
     assert "XmR" in first and "monitoring aid, not a safety system" in first
     assert (ROOT / "docs" / "pack-2-downtime.png").exists()
+
+
+def test_the_webhook_check_the_readme_gives_receivers_accepts_a_real_delivery(monkeypatch):
+    """The README's receiver code, run as written, against a request the webhook notifier
+    really sent to a local HTTP server; and it refuses a tampered body, a wrong key, a
+    signature of the wrong length and a replay outside its window."""
+    import time
+
+    from limitwatch.alerts.notifiers import build_notifier
+    from tests.receivers import WebhookReceiver
+
+    text = section("`[[notifiers]]`")
+    (code,) = re.findall(r"```python\n(.*?)\n```", text, re.S)
+    space: dict = {}
+    exec(compile(code, "README.md", "exec"), space)  # our own README, run as written
+    verify = space["verify"]
+
+    monkeypatch.setenv("LW_README_HOOK_KEY", "line-2-shared-key")
+    with WebhookReceiver() as receiver:
+        notifier = build_notifier(
+            {"type": "webhook", "name": "ops-hook", "url": receiver.url,
+             "secret_env": "LW_README_HOOK_KEY"}
+        )  # fmt: skip
+        notifier.deliver({"stream": "kiln-3/temp", "value": 871.5}, event_id="5:opened:0")
+    (got,) = receiver.all()
+    key = b"line-2-shared-key"
+    stamp = int(got.headers["X-Limitwatch-Timestamp"])
+    assert abs(stamp - time.time()) < 60  # whole seconds since the epoch, as documented
+    assert verify(key, got.headers, got.body)
+    assert not verify(key, got.headers, got.body.replace(b"871.5", b"871.6"))
+    assert not verify(b"another-key", got.headers, got.body)
+    assert not verify(key, got.headers, got.body, now=stamp + 301)  # a replay, later
+    assert verify(key, got.headers, got.body, now=stamp + 299)
+    short = dict(got.headers.items())
+    short["X-Limitwatch-Signature"] = got.headers["X-Limitwatch-Signature"][:-2]
+    assert not verify(key, short, got.body)

@@ -72,7 +72,7 @@ from limitwatch.store import (
     StreamRow,
 )
 from limitwatch.store import Baseline as StoredBaseline
-from limitwatch.textout import num, table
+from limitwatch.textout import num, printable, table
 
 DB_ENV = "LIMITWATCH_DB"
 DEFAULT_DB = "limitwatch.db"
@@ -175,6 +175,7 @@ def fit_table(
     >>> max(len(line) for line in out.splitlines()), out.splitlines()[2][:5]
     (80, 'xxxxx')
     """
+    rows = [[printable(cell) for cell in row] for row in rows]  # escaped before measuring
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
     over = sum(widths) + 2 * (len(widths) - 1) - WIDTH
     while over > 0:
@@ -504,8 +505,8 @@ def ack_cmd(
         alert = store.acknowledge(alert_id, by=actor, note=note, now=now)
     click.echo(
         _wrap(
-            f"Acknowledged alert {alert.id} ({alert.stream}, {alert.rule}) as {actor} at "
-            f"{iso_s(now)}; reminders and escalation for it stop."
+            f"Acknowledged alert {alert.id} ({printable(alert.stream)}, {alert.rule}) as "
+            f"{actor} at {iso_s(now)}; reminders and escalation for it stop."
         )
     )
 
@@ -555,7 +556,7 @@ def log_cmd(alert_id: int, fmt: str, db_path: str | None, config_file: str | Non
         return
     click.echo(
         _wrap(
-            f"Alert {alert.id}: {alert.stream}, {alert.rule}, {alert.severity}, now "
+            f"Alert {alert.id}: {printable(alert.stream)}, {alert.rule}, {alert.severity}, now "
             f"{alert.state}; {alert.signal_count} signal(s), last reading "
             f"{_g(alert.last_value)} at {iso_s(alert.last_time)}."
         )
@@ -638,7 +639,7 @@ def shelve_cmd(
     what = "every rule" if rule is None else f"rule {rule}"
     click.echo(
         _wrap(
-            f"Shelved notifications for {stream} ({what}) until {iso_s(shelf.until)} "
+            f"Shelved notifications for {printable(stream)} ({what}) until {iso_s(shelf.until)} "
             f"({format_duration(duration)} from now), by {actor}: {reason}"
         )
     )
@@ -679,7 +680,7 @@ def unshelve_cmd(
         what = "every rule" if shelf.rule is None else f"rule {shelf.rule}"
         click.echo(
             _wrap(
-                f"Ended the shelf on {stream} ({what}) set by {shelf.shelved_by} "
+                f"Ended the shelf on {printable(stream)} ({what}) set by {shelf.shelved_by} "
                 f"({shelf.reason}); it had {span_text(shelf.until - now)} left."
             )
         )
@@ -893,7 +894,7 @@ def baseline_record(stored: StoredBaseline) -> dict[str, Any]:
 
 def _baseline_lines(stored: StoredBaseline) -> list[str]:
     """One stored version for people: who, why, from which readings, and its limits."""
-    lines = [f"Baseline version {stored.version} of {stored.stream}"]
+    lines = [f"Baseline version {stored.version} of {printable(stored.stream)}"]
 
     def add(label: str, text: str) -> None:
         lines.extend(
@@ -1093,7 +1094,7 @@ def baseline_refit(
                 upper_bound=None if before is None else before.upper_bound,
             )
         except BaselineError as exc:
-            raise InputProblem(f"cannot refit {stream}: {exc}") from None
+            raise InputProblem(f"cannot refit {printable(stream)}: {exc}") from None
         indexed = all(r.index is not None for r in readings)
         excluded = [_index_of(readings[p].index, p, indexed) for p in fitted.excluded]
         stored = store.add_baseline(

@@ -54,12 +54,12 @@ def serve_cmd(config_path: str, log_level: str) -> None:
         raise InputProblem(str(exc)) from None
     except ValueError as exc:
         raise InputProblem(f"{config_path}: {exc}") from None
-    from limitwatch.instance import AlreadyRunning
+    from limitwatch.instance import LockError
     from limitwatch.service import serve
 
     logging.getLogger("limitwatch").info(SAFETY_CAUTION)
     try:
         status = serve(config)
-    except AlreadyRunning as exc:
+    except LockError as exc:
         raise InputProblem(str(exc)) from None
     sys.exit(status)

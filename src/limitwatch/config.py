@@ -61,6 +61,7 @@ import typing
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from fnmatch import fnmatchcase, translate
+from functools import partial
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -79,7 +80,7 @@ from pydantic import (
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
 from limitwatch.alerts.lifecycle import SEVERITIES, AlertPolicy, NoticeKind, SeverityRule
-from limitwatch.durations import parse_duration
+from limitwatch.durations import format_duration, parse_duration
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.payload import field_path
 from limitwatch.ingest.streamid import stream_id_problem
@@ -117,6 +118,7 @@ __all__ = [
     "config_from_dict",
     "key_path",
     "load_config",
+    "split_address",
 ]
 
 # --------------------------------------------------------------------------- problems
@@ -165,6 +167,28 @@ def _fail(*problems: tuple[tuple[str | int, ...], str]) -> ValidationError:
 # --------------------------------------------------------------------------- value types
 
 
+MAX_DURATION = 366 * 86400.0
+"""The longest interval, timeout or cadence a key takes (366 days) unless it says otherwise: a
+longer one is a slip, and the scheduler cannot even add some of them to today's date."""
+MAX_RETENTION = 100 * 366 * 86400.0
+"""``keep_readings_for`` may be up to a century."""
+MIN_DURATION = 0.001
+"""The shortest positive duration (1 ms); the scheduler counts in microseconds and a zero
+interval would spin."""
+MAX_COUNT = 100_000
+"""The largest reading count a stream option takes (``learn_count`` and friends): the learning
+phase holds its readings in memory."""
+
+
+def _bounded(seconds: float, high: float = MAX_DURATION) -> float:
+    if seconds > high:
+        raise ValueError(
+            f"{format_duration(seconds) if seconds < 10 * high else f'{seconds:g} s'} is too long; "
+            f"at most {format_duration(high)}"
+        )
+    return seconds
+
+
 def _duration(value: Any) -> float:
     return parse_duration(value)
 
@@ -172,7 +196,15 @@ def _duration(value: Any) -> float:
 def _positive(seconds: float) -> float:
     if seconds <= 0:
         raise ValueError("must be longer than zero")
-    return seconds
+    if seconds < MIN_DURATION:
+        raise ValueError("must be at least 1ms")
+    return _bounded(seconds)
+
+
+def _retention(seconds: float) -> float:
+    if seconds <= 0:
+        raise ValueError("must be longer than zero")
+    return _bounded(seconds, MAX_RETENTION)
 
 
 def _off_or_duration(value: Any) -> float | None:
@@ -183,13 +215,23 @@ def _off_or_duration(value: Any) -> float | None:
 
 Duration = Annotated[float, BeforeValidator(_duration)]
 PositiveDuration = Annotated[float, BeforeValidator(_duration), AfterValidator(_positive)]
+"""At least 1 ms and at most :data:`MAX_DURATION`."""
+RetentionDuration = Annotated[float, BeforeValidator(_duration), AfterValidator(_retention)]
 OffDuration = Annotated[float | None, BeforeValidator(_off_or_duration)]
-"""A positive duration, or ``"off"``."""
+"""A positive duration (as :data:`PositiveDuration`), or ``"off"``."""
 
 
 def _resolve_path(value: Path, info: ValidationInfo) -> Path:
     base = (info.context or {}).get("base_dir")
-    value = value.expanduser()
+    if "\0" in str(value):
+        raise ValueError("a path cannot contain a NUL character")
+    try:
+        value = value.expanduser()
+    except RuntimeError:  # "~name" with no such user, or no home directory at all
+        raise ValueError(
+            f"{str(value)!r} starts with ~ but that home folder is unknown on this machine; "
+            "write the full path"
+        ) from None
     return value if base is None or value.is_absolute() else Path(base) / value
 
 
@@ -266,11 +308,11 @@ class StoreSection(_Section):
     """``[store]``: the SQLite file and retention."""
 
     path: ConfigPath = Path("limitwatch.db")
-    keep_readings_for: PositiveDuration | None = None
-    keep_readings_per_stream: int | None = Field(None, ge=1)
+    keep_readings_for: RetentionDuration | None = None
+    keep_readings_per_stream: int | None = Field(None, ge=1, le=1_000_000_000)
     keep_dead_letters_for: PositiveDuration = 30 * 86400.0
     """Dead letters older than this are dropped by the hourly retention job."""
-    keep_dead_letters: int = Field(100_000, ge=1)
+    keep_dead_letters: int = Field(100_000, ge=1, le=1_000_000_000)
     """At most this many dead letters are kept (the newest)."""
 
 
@@ -279,7 +321,7 @@ class ServiceSection(_Section):
     the scheduler looks for stale streams, due reminders/escalations and adopted baselines."""
 
     batch_max: int = Field(500, ge=1, le=100_000)
-    batch_wait: PositiveDuration = 0.2
+    batch_wait: Annotated[PositiveDuration, AfterValidator(partial(_bounded, high=60.0))] = 0.2
     metrics_listen: str | None = None
     stale_check_every: PositiveDuration = 60.0
     alert_tick_every: PositiveDuration = 30.0
@@ -296,16 +338,17 @@ class ServiceSection(_Section):
     @classmethod
     def _listen(cls, value: str | None) -> str | None:
         if value is not None:
-            _split_address(value)
+            split_address(value)
         return value
 
     @property
     def metrics_address(self) -> tuple[str, int] | None:
         """``(host, port)`` for the metrics and health listener, or None when it is off."""
-        return None if self.metrics_listen is None else _split_address(self.metrics_listen)
+        return None if self.metrics_listen is None else split_address(self.metrics_listen)
 
 
-def _split_address(text: str) -> tuple[str, int]:
+def split_address(text: str) -> tuple[str, int]:
+    """``host:port`` or ``[IPv6 address]:port`` as ``(host, port)``, brackets removed."""
     match = re.fullmatch(r"(\[[0-9A-Fa-f:.]+\]|[^:\[\]\s]+):(\d{1,5})", text.strip())
     if match is None or not 1 <= int(match.group(2)) <= 65535:
         raise ValueError(f"{text!r} is not host:port; write e.g. '127.0.0.1:9464' or '[::1]:9464'")
@@ -330,9 +373,17 @@ class BaselineInput(_Section):
     def _one_spread(self) -> BaselineInput:
         if (self.sigma is None) == (self.mr_bar is None):
             raise _fail((("sigma",), "give exactly one of sigma and mr_bar (average moving range)"))
+        key = "sigma" if self.sigma is not None else "mr_bar"
         problem = sigma_problem(self.sigma_value)
         if problem is not None:
-            raise _fail((("sigma" if self.sigma is not None else "mr_bar",), problem))
+            raise _fail(((key,), problem))
+        sigma = self.sigma_value
+        # Readings become z = (x - center) / sigma: limits must be finite numbers apart from
+        # the center, or every reading would be refused as non-finite or signal at once.
+        if not math.isfinite(abs(self.center) + 10 * sigma):
+            raise _fail(((key,), "is so large that the limits are not finite numbers"))
+        if sigma < max(abs(self.center) * 1e-12, 1e-300):
+            raise _fail(((key,), "is too small to tell the limits from the center line"))
         return self
 
     @property
@@ -344,12 +395,12 @@ class StreamOptions(_Section):
     """``[defaults]``: how a stream is watched. Defaults are :class:`MonitorSettings`'."""
 
     rules: str = _MONITOR.rules  # type: ignore[assignment]
-    learn_count: int = Field(_MONITOR.learn_count, ge=2)
+    learn_count: int = Field(_MONITOR.learn_count, ge=2, le=MAX_COUNT)
     method: Literal["mean", "median"] = _MONITOR.method
     exclude_beyond: bool = _MONITOR.exclude_beyond
     max_iterations: int = Field(_MONITOR.max_iterations, ge=1, le=50)
-    min_points: int = Field(_MONITOR.min_points, ge=2)
-    warn_points: int = Field(_MONITOR.warn_points, ge=2)
+    min_points: int = Field(_MONITOR.min_points, ge=2, le=MAX_COUNT)
+    warn_points: int = Field(_MONITOR.warn_points, ge=2, le=MAX_COUNT)
     autocorrelation_threshold: float = Field(_MONITOR.autocorrelation_threshold, gt=0, le=1)
     lower_bound: float | None = None
     upper_bound: float | None = None
@@ -357,7 +408,7 @@ class StreamOptions(_Section):
     spec_upper: float | None = None
     max_gap: PositiveDuration | None = None
     cadence: PositiveDuration | None = None
-    stale_after: float = Field(5.0, ge=1)
+    stale_after: float = Field(5.0, ge=1, le=1000)
     severity: Severity = "warning"
     baseline: BaselineInput | None = None
     description: str | None = None
@@ -481,7 +532,7 @@ class SeverityEntry(_Section):
 class AlertsSection(_Section):
     """``[alerts]``: the lifecycle knobs; see :class:`~limitwatch.alerts.lifecycle.AlertPolicy`."""
 
-    clear_after: int = Field(_POLICY.clear_after, ge=1)
+    clear_after: int = Field(_POLICY.clear_after, ge=1, le=MAX_COUNT)
     repeat_every: OffDuration = _POLICY.repeat_every_s
     escalate_after: OffDuration = _POLICY.escalate_after_s
     give_up_after: OffDuration = _POLICY.notification_ttl_s
@@ -847,15 +898,15 @@ class Config(_Section):
 
         problems: list[tuple[tuple[str | int, ...], str]] = []
         resolved: list[dict[str, Any]] = []
-        for i, entry in enumerate(entries):
-            entry = {
-                k: (
-                    str(_resolve_path(Path(v), info))
-                    if isinstance(k, str) and k.endswith("_file") and isinstance(v, str)
-                    else v
-                )
-                for k, v in entry.items()
-            }
+        for i, raw in enumerate(entries):
+            entry: dict[str, Any] = {}
+            for k, v in raw.items():
+                if isinstance(k, str) and k.endswith("_file") and isinstance(v, str):
+                    try:
+                        v = str(_resolve_path(Path(v), info))
+                    except ValueError as exc:
+                        problems.append(((i, k), str(exc)))
+                entry[k] = v
             resolved.append(entry)
             kind = entry.get("type")
             if not isinstance(kind, str):
@@ -1345,6 +1396,11 @@ def config_from_dict(
         )
     except ValidationError as exc:
         raise ConfigError(source, _problems(exc)) from None
+    except RecursionError:
+        raise ConfigError(source, [Problem("", _TOO_DEEP)]) from None
+
+
+_TOO_DEEP = "is nested too deeply (arrays or tables inside each other hundreds of levels down)"
 
 
 _TOML_POSITION = re.compile(r"\s*\(at line (\d+), column (\d+)\)$")
@@ -1370,6 +1426,8 @@ def load_config(path: str | Path) -> Config:
         ) from None
     try:
         data = tomllib.loads(text)
+    except RecursionError:
+        raise ConfigError(name, [Problem("", f"not usable TOML: it {_TOO_DEEP}")]) from None
     except tomllib.TOMLDecodeError as exc:
         message = str(exc)
         match = _TOML_POSITION.search(message)

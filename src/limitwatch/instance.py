@@ -6,6 +6,9 @@ an exclusive lock on ``<database>.lock`` for as long as it runs. The lock is the
 (``flock``): it goes with the process however the process ends, ``kill -9`` included, so a
 crash never leaves a stale lock behind to clear by hand. Operator commands do not take it; they
 are brief readers and writers that SQLite itself keeps in order.
+
+The lock file is created 0600, like the database: it holds only a process id, but nothing
+another account could learn from the database folder needs to be readable by it.
 """
 
 from __future__ import annotations
@@ -15,7 +18,11 @@ import os
 from pathlib import Path
 
 
-class AlreadyRunning(RuntimeError):
+class LockError(RuntimeError):
+    """The service cannot take its database's lock; the message says why and what to do."""
+
+
+class AlreadyRunning(LockError):
     """Another service holds the database's lock."""
 
 
@@ -30,7 +37,19 @@ class InstanceLock:
     def acquire(self) -> None:
         """Take the lock and write our process id into the file, or raise
         :class:`AlreadyRunning` naming the process that has it."""
-        fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+        folder = self.path.parent
+        if not folder.is_dir():
+            raise LockError(
+                f"the database folder {folder} does not exist; create it (owned by the "
+                "service's user) or change [store] path"
+            )
+        try:
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o600)
+        except OSError as exc:
+            raise LockError(
+                f"cannot create or open the lock file {self.path} ({exc.strerror}); the "
+                f"service's user needs to be able to write in {folder}"
+            ) from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:

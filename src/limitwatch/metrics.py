@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import logging
+import socket
 import threading
 from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -90,16 +91,60 @@ class Metrics:
         return generate_latest(self.registry)
 
 
-class StatusServer:
-    """Serves ``/metrics`` and ``/health`` on ``host:port`` in a daemon thread."""
+class _BoundedHTTPServer(ThreadingHTTPServer):
+    """A thread per connection, but at most ``max_clients`` at once: a connection beyond that
+    is closed at once rather than given a thread (300 half-open requests once made 307
+    threads). Slow clients are cut off by the handler's socket timeout, freeing their slot."""
 
-    def __init__(self, listen: str, metrics: Metrics, health: Callable[[], dict[str, Any]]) -> None:
-        host, _, port = listen.rpartition(":")
+    daemon_threads = True
+    block_on_close = False
+    request_queue_size = 64  # connections the kernel holds until accepted (and then refused)
+
+    def __init__(self, address: tuple[str, int], handler: Any, max_clients: int) -> None:
+        self.address_family = socket.AF_INET6 if ":" in address[0] else socket.AF_INET
+        self._slots = threading.BoundedSemaphore(max_clients)
+        super().__init__(address, handler)
+
+    def process_request(self, request: Any, client_address: Any) -> None:
+        if not self._slots.acquire(blocking=False):
+            log.debug("status http: busy, closing a connection from %s", client_address)
+            self.shutdown_request(request)
+            return
+        try:
+            super().process_request(request, client_address)
+        except BaseException:
+            self._slots.release()
+            raise
+
+    def process_request_thread(self, request: Any, client_address: Any) -> None:
+        try:
+            super().process_request_thread(request, client_address)
+        finally:
+            self._slots.release()
+
+
+class StatusServer:
+    """Serves ``/metrics`` and ``/health`` on ``host:port`` (``[v6 address]:port`` for IPv6)
+    in a daemon thread, to at most ``max_clients`` clients at once, each cut off after
+    ``client_timeout_s`` without progress."""
+
+    def __init__(
+        self,
+        listen: str,
+        metrics: Metrics,
+        health: Callable[[], dict[str, Any]],
+        *,
+        max_clients: int = 8,
+        client_timeout_s: float = 5.0,
+    ) -> None:
+        from limitwatch.config import split_address
+
+        host, port = split_address(listen)
         self.metrics = metrics
         self.health = health
         handler = self._handler()
-        self.server = ThreadingHTTPServer((host or "127.0.0.1", int(port)), handler)
-        self.server.daemon_threads = True
+        handler.timeout = client_timeout_s
+        self.server = _BoundedHTTPServer((host, port), handler, max_clients)
         self.thread = threading.Thread(
             target=self.server.serve_forever, name="status-http", daemon=True
         )

@@ -49,6 +49,7 @@ from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError
 from limitwatch.store import CONFIG_AUTHOR, Store, same_numbers
+from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.pipeline")
 
@@ -197,7 +198,7 @@ class Pipeline:
                     if not outcome.accepted:  # the config's bounds changed since, say
                         log.warning(
                             "stream %s: a committed reading at %s was refused again (%s)",
-                            stream,
+                            printable(stream),
                             reading.time,
                             outcome.reason,
                         )
@@ -205,7 +206,7 @@ class Pipeline:
                 log.error(
                     "stream %s: the readings after its checkpoint cannot be applied (%s); "
                     "it starts afresh",
-                    stream,
+                    printable(stream),
                     _words(exc),
                 )
                 del self.monitors[stream]

@@ -62,11 +62,13 @@ def _from_env(name: str, what: str) -> str:
 
 
 def _from_file(path: Path, what: str) -> str:
+    if "\0" in str(path):
+        raise SecretError(f"{what}: secret file path {str(path)!r} contains a NUL character.")
     try:
         info = path.stat()
     except FileNotFoundError:
         raise SecretError(f"{what}: secret file {path} does not exist.") from None
-    except OSError as exc:
+    except (OSError, RuntimeError) as exc:  # RuntimeError: "~user" that does not exist
         raise SecretError(f"{what}: secret file {path} cannot be read ({exc}).") from None
     if not stat.S_ISREG(info.st_mode):
         raise SecretError(f"{what}: secret file {path} is not a regular file.")

@@ -59,6 +59,7 @@ from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
 from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
 from limitwatch.streamcap import StreamCap
+from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.service")
 
@@ -493,7 +494,7 @@ class Service:
                 self.outbox.wake()
         elif job.kind == "refits":
             for stream in self.pipeline.adopt_new_baselines(now):
-                log.info("stream %s: adopted a new stored baseline", stream)
+                log.info("stream %s: adopted a new stored baseline", printable(stream))
         elif job.kind == "retention":
             self.prune(now)
         self._job_ran[job.id] = (self.monotonic(), now)

@@ -30,10 +30,12 @@ takes the write lock at the start, so reads made inside a batch see no concurren
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import itertools
 import json
 import math
+import os
 import sqlite3
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -330,6 +332,17 @@ MIGRATIONS: tuple[Migration, ...] = (
         ),
     ),
 )
+
+
+def _create_private(path: str) -> None:
+    """Create a new database file readable by its owner only (0600, whatever the umask).
+
+    The readings, alerts and notes are the plant's business. SQLite gives its ``-wal`` and
+    ``-shm`` files the mode of the database file, so creating this one 0600 covers all three.
+    An existing file keeps the mode its owner gave it.
+    """
+    with contextlib.suppress(FileExistsError):
+        os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, 0o600))
 
 
 def _recorded_version(db: sqlite_utils.Database) -> int:
@@ -708,6 +721,7 @@ class Store:
         path = str(path)
         if path != ":memory:":
             Path(path).parent.mkdir(parents=True, exist_ok=True)
+            _create_private(path)
         db = sqlite_utils.Database(path, execute_plugins=False)
         # Autocommit: Python's sqlite3 would otherwise open a transaction implicitly before any
         # write and keep it open until someone commits -- a bare UPDATE would then turn every

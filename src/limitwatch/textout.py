@@ -1,9 +1,36 @@
-"""Plain-text output for terminals: numbers people can read and tables that fit 80 columns."""
+"""Plain-text output for terminals: numbers people can read and tables that fit 80 columns.
+
+Text that came from the field -- stream ids above all, which a gateway or a file names -- goes
+through :func:`printable` before it reaches a person: an ESC in a stream id would otherwise
+drive the operator's terminal, a newline would forge a line of a table, log or mail (and an
+e-mail header with a newline cannot be sent at all).
+"""
 
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Sequence
+
+# C0 controls, DEL, C1 controls, the Unicode line and paragraph separators, and the
+# bidirectional overrides and isolates (which can make text display in another order).
+_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029\u202a-\u202e\u2066-\u2069]")
+
+
+def _escape(match: re.Match[str]) -> str:
+    code = ord(match.group())
+    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+
+
+def printable(text: object) -> str:
+    r"""``text`` with every control character written as an escape, for human output only.
+
+    >>> print(printable("kiln-3\x1b[2J/temp\nline 2\x07"))
+    kiln-3\x1b[2J/temp\x0aline 2\x07
+    >>> printable("pack-2/downtime °C")
+    'pack-2/downtime °C'
+    """
+    return _UNPRINTABLE.sub(_escape, str(text))
 
 
 def num(value: float | None, digits: int = 6) -> str:
@@ -24,7 +51,8 @@ def num(value: float | None, digits: int = 6) -> str:
 
 def table(headers: Sequence[str], rows: Sequence[Sequence[str]], max_width: int = 80) -> str:
     """Left-aligned columns separated by two spaces. Cells of the widest text column are cut
-    with an ellipsis when the table would pass ``max_width``.
+    with an ellipsis when the table would pass ``max_width``; control characters in any cell
+    are escaped (:func:`printable`).
 
     >>> print(table(["a", "bb"], [["1", "x"], ["22", "yyy"]]))
     a   bb
@@ -32,6 +60,8 @@ def table(headers: Sequence[str], rows: Sequence[Sequence[str]], max_width: int 
     1   x
     22  yyy
     """
+    headers = [printable(h) for h in headers]
+    rows = [[printable(c) for c in row] for row in rows]
     widths = [len(h) for h in headers]
     for row in rows:
         for i, cell in enumerate(row):

@@ -2,18 +2,24 @@
 
 Errors name the file, the line (as a text editor counts it) and the column, because the person
 who has to fix the file needs to find the cell, not a Python traceback.
+
+Values and times are read by the service's own rules (:func:`limitwatch.ingest.payload.
+parse_value` and :func:`~limitwatch.ingest.payload.parse_time_field`), so ``baseline fit`` and
+``replay`` refuse exactly what the service would dead-letter. A row with more cells than the
+header is refused too: ``10,43`` written with a decimal comma and no quotes is two cells, and
+reading the first alone would silently give 10.
 """
 
 from __future__ import annotations
 
 import csv
-import math
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
-from limitwatch.ingest.timeparse import TimeFormatError, TimeUnit, parse_time
+from limitwatch.ingest.payload import PayloadError, parse_time_field, parse_value
+from limitwatch.ingest.timeparse import TimeUnit
 
 
 class InputFileError(ValueError):
@@ -77,30 +83,34 @@ def read_rows(
             line = reader.line_num
             if not row or all(not cell.strip() for cell in row):
                 continue
-            if len(row) < len(header):
+            if len(row) != len(header):
+                hint = (
+                    '; a decimal comma must be quoted ("10,43") or written 10.43'
+                    if len(row) > len(header)
+                    else ""
+                )
                 raise InputFileError(
-                    f"{path}, line {line}: expected {len(header)} columns, found {len(row)}"
+                    f"{path}, line {line}: expected {len(header)} columns, found {len(row)}{hint}"
                 )
             stream_id = row[position["--stream"]].strip() if stream else default_stream
             if not stream_id:
                 raise InputFileError(f"{path}, line {line}, column {stream!r}: empty stream id")
-            cell = row[position["--value"]].strip()
+            cell = row[position["--value"]]
             try:
-                number = float(cell)
-            except ValueError:
+                number = parse_value(cell, "value")
+            except PayloadError as exc:
                 raise InputFileError(
-                    f"{path}, line {line}, column {value!r}: {cell!r} is not a number"
+                    f"{path}, line {line}, column {value!r}: {exc.message}"
                 ) from None
-            if not math.isfinite(number):
-                raise InputFileError(
-                    f"{path}, line {line}, column {value!r}: {cell!r} is not a finite number"
-                )
             if time is not None:
                 time_text = row[position["--time"]].strip()
+                fmt = "epoch_ms" if time_unit == "ms" else "auto"
                 try:
-                    moment = parse_time(time_text, unit=time_unit)
-                except TimeFormatError as exc:
-                    raise InputFileError(f"{path}, line {line}, column {time!r}: {exc}") from None
+                    moment = parse_time_field(time_text, fmt, "time")
+                except PayloadError as exc:
+                    raise InputFileError(
+                        f"{path}, line {line}, column {time!r}: {exc.message}"
+                    ) from None
             else:
                 time_text = None
                 moment = float(counters.get(stream_id, 0))

@@ -6,6 +6,13 @@ read from its start. A file that shrinks below our offset was truncated in place
 again from its start. Only complete lines (ending in a newline) are read: a partial last line
 waits for the writer to finish it.
 
+Only files inside the glob's folder are read. A symlink (or a symlinked subfolder) that leads
+out of it is refused with one warning per path: whoever can write to an export folder must not
+be able to have the service -- which may run with more rights -- copy another file's content
+into readings and dead letters. The check is made on the resolved path when the file is listed
+and again on the open descriptor (same device and inode), so swapping a link in between does
+not help.
+
 The caller commits the byte offset of the last line it used in the same transaction as the
 state that line produced; after a crash, reading resumes at exactly the next line.
 """
@@ -17,8 +24,10 @@ import glob
 import json
 import logging
 import os
+import re
 from collections.abc import Iterator
 from dataclasses import dataclass
+from stat import S_ISREG
 from typing import Any, Literal
 
 log = logging.getLogger("limitwatch.files")
@@ -58,6 +67,27 @@ def file_identity(stat: os.stat_result) -> str:
     return f"{stat.st_dev}:{stat.st_ino}"
 
 
+_MAGIC = re.compile(r"[*?[]")
+
+
+def glob_folder(pattern: str) -> str:
+    """The folder a glob cannot leave: its leading path components before the first wildcard.
+
+    >>> glob_folder("/data/export/*.csv"), glob_folder("/data/*/line.csv"), glob_folder("/d/a.csv")
+    ('/data/export', '/data', '/d')
+    """
+    parts = os.path.normpath(os.path.expanduser(pattern)).split(os.sep)
+    fixed: list[str] = []
+    for part in parts[:-1]:  # the last component names files, never the folder
+        if _MAGIC.search(part):
+            break
+        fixed.append(part)
+    folder = os.sep.join(fixed)
+    if not folder:
+        return os.sep if pattern.startswith(os.sep) else os.curdir
+    return folder
+
+
 class FileSource:
     """Finds new complete lines in the files matching a glob."""
 
@@ -73,6 +103,7 @@ class FileSource:
         self.format = fmt
         self.start_at = start_at
         self._first_poll = True
+        self._refused: set[str] = set()
 
     def poll(self, offsets: dict[str, int]) -> Iterator[FileLine]:
         """Yield new complete lines of every matching file, oldest file first.
@@ -83,12 +114,16 @@ class FileSource:
         first = self._first_poll
         self._first_poll = False
         paths = sorted(glob.glob(self.pattern), key=_mtime_then_name)
+        folder = os.path.realpath(glob_folder(self.pattern))
         for path in paths:
-            try:
-                stat = os.stat(path)
+            real = os.path.realpath(path)
+            if self._outside(path, real, folder):
+                continue
+            try:  # the resolved path, not following a link swapped in since
+                stat = os.stat(real, follow_symlinks=False)
             except FileNotFoundError:
                 continue
-            if not os.path.isfile(path):
+            if not S_ISREG(stat.st_mode):
                 continue
             ident = file_identity(stat)
             offset = offsets.get(ident)
@@ -109,11 +144,39 @@ class FileSource:
                 continue
             yield from self._read(path, ident, offset)
 
+    def _outside(self, path: str, real: str, folder: str) -> bool:
+        """True (with one warning per path) when ``path`` resolves outside ``folder``."""
+        if os.path.commonpath([folder, real]) == folder:
+            self._refused.discard(path)
+            return False
+        if path not in self._refused:
+            self._refused.add(path)
+            log.warning(
+                "file source %r: %s resolves to %s, outside the folder %s of its glob; "
+                "it is not read",
+                self.name,
+                path,
+                real,
+                folder,
+            )
+        return True
+
+    def _open(self, path: str, ident: str) -> Any:
+        """Open ``path`` only if it still is the file listed and checked as ``ident``."""
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+        try:
+            if file_identity(os.fstat(fd)) != ident:
+                raise OSError(f"{path} changed between listing and opening")
+            return os.fdopen(fd, "rb")
+        except BaseException:
+            os.close(fd)
+            raise
+
     def _read(self, path: str, ident: str, offset: int) -> Iterator[FileLine]:
         while True:
             overlong_end: int | None = None
             try:
-                with open(path, "rb") as handle:
+                with self._open(path, ident) as handle:
                     header = self._header(handle) if self.format == "csv" else None
                     if header is not None and offset == 0:
                         offset = handle.tell()

@@ -577,3 +577,25 @@ class RowParser:
                 raise PayloadError("bad-stream", f"{label} {_show(raw)} {problem}")
         moment, value, seq = self._fields.read(record, received_at)
         return Reading(stream, moment, value, seq)
+
+
+# --------------------------------------------------------------------------- for offline readers
+
+
+def parse_value(raw: Any, what: str) -> float:
+    """A reading's value by the service's rules, for the offline commands (``baseline fit``,
+    ``replay``), so that a file they accept is one the service accepts too.
+
+    >>> parse_value(" 10.5 ", "value"), parse_value(7, "value")
+    (10.5, 7.0)
+    >>> parse_value("1_05", "value")
+    Traceback (most recent call last):
+    ...
+    limitwatch.ingest.payload.PayloadError: not-a-number: value '1_05' is not a decimal number
+    """
+    return _value(raw, what)
+
+
+def parse_time_field(raw: Any, fmt: TimeFormat, what: str) -> float:
+    """A time stamp by the service's rules (``time_format`` and the years 1970 to 9999)."""
+    return _time(raw, fmt, what)

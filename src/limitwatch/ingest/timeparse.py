@@ -16,10 +16,15 @@ only reading of it that never jumps at a daylight-saving change.
 from __future__ import annotations
 
 import math
+import re
 from datetime import UTC, datetime
 from typing import Literal
 
 TimeUnit = Literal["s", "ms"]
+
+_PLAIN = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
+"""A plain decimal number: what every reader of numbers in limitwatch accepts (no ``1_000``,
+which Python's ``float`` would read, and no hexadecimal)."""
 
 
 class TimeFormatError(ValueError):
@@ -38,6 +43,11 @@ def parse_time(text: str | float | int, unit: TimeUnit = "s") -> float:
             number = float(stripped)
         except ValueError:
             return _parse_iso(stripped)
+        if math.isfinite(number) and not _PLAIN.fullmatch(stripped):
+            raise TimeFormatError(
+                f"{text!r} is not a plain decimal number of seconds (digits, a point and an "
+                "exponent only; no _ separators)"
+            )
     if not math.isfinite(number):
         raise TimeFormatError(f"{text!r} is not a finite time")
     return number / 1000.0 if unit == "ms" else number

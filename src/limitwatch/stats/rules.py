@@ -94,19 +94,35 @@ __all__ = [
 _isfinite = math.isfinite
 
 
-def _positive(name: str, value: Any) -> float:
+MAX_LENGTH = 200
+"""Longest run a run test may ask for. The published tests use 6 to 15; beyond a few hundred a
+run cannot happen by chance in any plant's lifetime, and the average-run-length planner's work
+grows with the length (a length of 10^8 once took a minute and 2 GB to plan)."""
+
+MAX_WINDOW = 10
+"""Widest window of a count-in-window test (the published ones use 3 and 5). The planner's exact
+chain grows about fourfold per extra reading of window: 10 takes seconds, 20 takes minutes."""
+
+MAX_SIGMAS = 10.0
+"""Widest boundary or limit, in sigma: a normal reading lies beyond 10 sigma with probability
+about 1.5e-23, so a wider one can never signal and is surely a typing slip."""
+
+
+def _positive(name: str, value: Any, high: float = MAX_SIGMAS) -> float:
     x = float(value)
-    if not (_isfinite(x) and x > 0.0):
-        raise ValueError(f"{name} must be a positive number, got {value!r}")
+    if not (_isfinite(x) and 0.0 < x <= high):
+        raise ValueError(f"{name} must be a positive number of at most {high:g}, got {value!r}")
     return x
 
 
-def _count(name: str, value: Any, low: int) -> int:
+def _count(name: str, value: Any, low: int, high: int = MAX_LENGTH) -> int:
     if isinstance(value, bool):
         raise ValueError(f"{name} must be a whole number, got {value!r}")
     n = operator.index(value)
     if n < low:
         raise ValueError(f"{name} must be at least {low}, got {value!r}")
+    if n > high:
+        raise ValueError(f"{name} must be at most {high}, got {value!r}")
     return n
 
 
@@ -217,9 +233,7 @@ class _CountInWindow(_Rule):
     _state = ("_up", "_down", "_last")
 
     def __init__(self, count: int, window: int, boundary: float) -> None:
-        self.window = _count("window", window, 1)
-        if self.window > 64:
-            raise ValueError(f"window must be at most 64 readings, got {window!r}")
+        self.window = _count("window", window, 1, MAX_WINDOW)
         self.count = _count("count", count, 1)
         if self.count > self.window:
             raise ValueError(f"count must not exceed window ({self.window}), got {count!r}")

@@ -43,6 +43,17 @@ _EWMA_WEIGHT_SHARE = 0.99
 """Share of the EWMA statistic's weight that the readings in a signal's ``involved`` carry."""
 
 
+MAX_SIGMAS = 10.0
+"""Largest EWMA limit width ``L`` and CUSUM reference value ``k``, in sigma (the same bound as
+the run tests' boundaries: wider can never signal)."""
+MIN_LAM = 0.01
+"""Smallest EWMA weight: published designs use 0.05 to 0.25 (common practice); below 0.01 the
+statistic remembers hundreds of readings and the planner's chain takes most of a minute."""
+MAX_CUSUM_H = 50.0
+"""Largest CUSUM decision interval ``h``, in sigma; published designs use 4 to 5 (common
+practice), and ``h=50`` already means an in-control run length beyond any plant's lifetime."""
+
+
 def _number(name: str, value: Any, low: float, high: float, *, open_low: bool) -> float:
     x = float(value)
     if not (_isfinite(x) and (x > low if open_low else x >= low) and x <= high):
@@ -156,8 +167,8 @@ class Ewma:
     chart: ClassVar[Chart] = "x"
 
     def __init__(self, lam: float = 0.2, L: float = 2.962, exact_startup: bool = True) -> None:
-        self.lam = _number("lam", lam, 0.0, 1.0, open_low=True)
-        self.L = _number("L", L, 0.0, math.inf, open_low=True)
+        self.lam = _number("lam", lam, MIN_LAM, 1.0, open_low=False)
+        self.L = _number("L", L, 0.0, MAX_SIGMAS, open_low=True)
         if not isinstance(exact_startup, bool):
             raise ValueError(f"exact_startup must be true or false, got {exact_startup!r}")
         self.exact_startup = exact_startup
@@ -254,8 +265,8 @@ class Cusum:
     chart: ClassVar[Chart] = "x"
 
     def __init__(self, k: float = 0.5, h: float = 5.0, headstart: float = 0.0) -> None:
-        self.k = _number("k", k, 0.0, math.inf, open_low=False)
-        self.h = _number("h", h, 0.0, math.inf, open_low=True)
+        self.k = _number("k", k, 0.0, MAX_SIGMAS, open_low=False)
+        self.h = _number("h", h, 0.0, MAX_CUSUM_H, open_low=True)
         self.headstart = _number("headstart", headstart, 0.0, self.h, open_low=False)
         if self.headstart == self.h:
             raise ValueError(f"headstart must be below h={self.h}, got {headstart!r}")

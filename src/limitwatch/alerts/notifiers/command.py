@@ -8,12 +8,21 @@ Why these choices:
   killed, so a script that started helpers (``curl``, ``sleep``) leaves nothing behind.
 * The event id is in the environment (``LIMITWATCH_EVENT_ID``) as well as the JSON, so a
   script can deduplicate without parsing.
+* The program does not inherit the service's environment, which holds the credentials of the
+  other notifiers (``password_env``, ``secret_env``): a pager script once saw the SMTP password.
+  It gets a minimal environment -- ``PATH``, ``HOME``, ``TMPDIR``, ``TZ``, ``LANG`` and ``LC_*``
+  from the service, so the program is found, can write temporary files and prints dates and text
+  as the site expects -- plus the variables named in ``pass_env`` (a token the program itself
+  needs) and the fixed, non-secret values in ``env``. A name in ``pass_env`` that the service's
+  environment does not have is left out; the program decides whether that is fatal.
 * A non-zero exit is retried: the outbox cannot know why the program failed, and a program
   that should not be retried can exit 0 after logging. A program that cannot be started at all
   is not retried (only a person can install it).
 
 >>> CommandNotifier.Settings(type="command", name="pager", argv=["/usr/local/bin/page"]).timeout_s
 30.0
+>>> sorted(child_environment({"PATH": "/bin", "SMTP_PASSWORD": "x", "LC_TIME": "C"}, [], {}))
+['LC_TIME', 'PATH']
 
 References
 ----------
@@ -26,20 +35,46 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import re
 import signal
 import subprocess
+from collections.abc import Mapping, Sequence
 from typing import Any, Literal, Self
 
-from pydantic import Field
+from pydantic import Field, field_validator
 
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier, NotifierSettings
 
 _TAIL = 500  # characters of stderr kept in an error message
 
+#: Variables copied from the service's environment to every program: none of them holds a secret.
+BASE_ENV = ("PATH", "HOME", "TMPDIR", "TZ", "LANG")
+_ENV_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+# Names that say "I hold a credential": such values belong in pass_env, never in the config file.
+_SECRET_NAME = re.compile(r"PASSW|SECRET|TOKEN|API_?KEY|PRIVATE|CREDENTIAL", re.IGNORECASE)
+_EVENT_VAR = "LIMITWATCH_EVENT_ID"
+
+
+def child_environment(
+    parent: Mapping[str, str], pass_env: Sequence[str], fixed: Mapping[str, str]
+) -> dict[str, str]:
+    """The program's whole environment: the base names, ``LC_*``, ``pass_env`` names, ``fixed``."""
+    env = {k: v for k, v in parent.items() if k in BASE_ENV or k.startswith("LC_")}
+    env.update({k: parent[k] for k in pass_env if k in parent})
+    env.update(fixed)
+    return env
+
 
 def _tail(data: bytes | None) -> str:
     text = (data or b"").decode("utf-8", "replace").strip()
     return text if len(text) <= _TAIL else "..." + text[-_TAIL:]
+
+
+def _check_name(name: str) -> None:
+    if not _ENV_NAME.fullmatch(name):
+        raise ValueError(f"{name!r} is not an environment variable name (letters, digits, _)")
+    if name == _EVENT_VAR:
+        raise ValueError(f"{_EVENT_VAR} is set by limitwatch for every notification")
 
 
 class CommandNotifier(Notifier):
@@ -49,21 +84,61 @@ class CommandNotifier(Notifier):
         type: Literal["command"] = "command"
         argv: list[str] = Field(min_length=1)
         timeout_s: float = Field(30.0, gt=0, le=3600)
+        pass_env: list[str] = Field(default_factory=list, max_length=100)
+        env: dict[str, str] = Field(default_factory=dict, max_length=100)
 
-    def __init__(self, name: str, argv: list[str], *, timeout_s: float = 30.0) -> None:
+        @field_validator("pass_env")
+        @classmethod
+        def _names(cls, names: list[str]) -> list[str]:
+            for name in names:
+                _check_name(name)
+            return names
+
+        @field_validator("env")
+        @classmethod
+        def _fixed(cls, values: dict[str, str]) -> dict[str, str]:
+            for name, value in values.items():
+                _check_name(name)
+                if _SECRET_NAME.search(name):
+                    raise ValueError(
+                        f"env: {name} looks like a credential, and credentials cannot be written "
+                        f"into the configuration; set it in the service's environment and list "
+                        f'it in pass_env = ["{name}"] instead'
+                    )
+                if "\0" in value:
+                    raise ValueError(f"env: the value of {name} contains a NUL character")
+            return values
+
+    def __init__(
+        self,
+        name: str,
+        argv: list[str],
+        *,
+        timeout_s: float = 30.0,
+        pass_env: Sequence[str] = (),
+        env: Mapping[str, str] | None = None,
+    ) -> None:
         super().__init__(name)
         if not argv or not argv[0]:
             raise ValueError("argv needs at least the program to run")
         self.argv = list(argv)
         self.timeout_s = timeout_s
+        self.pass_env = tuple(pass_env)
+        self.env = dict(env or {})
 
     @classmethod
     def from_settings(cls, settings: Settings) -> Self:
-        return cls(settings.name, settings.argv, timeout_s=settings.timeout_s)
+        return cls(
+            settings.name,
+            settings.argv,
+            timeout_s=settings.timeout_s,
+            pass_env=settings.pass_env,
+            env=settings.env,
+        )
 
     def deliver(self, notification: dict[str, Any], *, event_id: str) -> None:
         data = json.dumps({**notification, "event_id": event_id}, allow_nan=False).encode()
-        env = {**os.environ, "LIMITWATCH_EVENT_ID": event_id}
+        env = {**child_environment(os.environ, self.pass_env, self.env), _EVENT_VAR: event_id}
         program = f"command notifier {self.name!r} ({self.argv[0]})"
         try:
             proc = subprocess.Popen(

@@ -43,6 +43,7 @@ from typing import Any, Literal, Self
 
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier, NotifierSettings
 from limitwatch.durations import format_duration
+from limitwatch.textout import printable
 
 
 def _num(x: Any) -> str:
@@ -114,7 +115,7 @@ def notification_lines(notification: dict[str, Any], *, width: int = 78) -> list
         lines += textwrap.wrap(
             n["caution"], width, initial_indent=label("caution:"), subsequent_indent=indent
         )
-    return lines
+    return [printable(line) for line in lines]  # field text must not drive the terminal
 
 
 class ConsoleNotifier(Notifier):

@@ -46,19 +46,23 @@ import limitwatch
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier, NotifierSettings
 from limitwatch.alerts.notifiers.console import notification_lines
 from limitwatch.secrets import resolve_secret
+from limitwatch.textout import printable
 
 log = logging.getLogger(__name__)
 
 
 def subject_line(notification: dict[str, Any]) -> str:
-    """``[limitwatch] SEVERITY: STREAM RULE``, with the reminder number or escalation after it."""
+    """``[limitwatch] SEVERITY: STREAM RULE``, with the reminder number or escalation after it.
+
+    Control characters are escaped: a newline in a stream id would make the header unsendable
+    (and every retry fail the same way until the notification expired)."""
     n = notification
     subject = f"[limitwatch] {n.get('severity', 'alert')}: {n.get('stream', '?')} {n.get('rule')}"
     if n.get("kind") == "reminder":
         subject += f" (reminder {n.get('number')})"
     elif n.get("kind") == "escalation":
         subject += " (escalation)"
-    return subject
+    return printable(subject)
 
 
 def message_id(event_id: str, domain: str) -> str:
