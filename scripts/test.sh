@@ -1,8 +1,18 @@
 #!/usr/bin/env bash
 # Set up a virtual environment (if needed) and run the whole test suite.
 # This is the one test command the README gives and the one CI runs.
+#   bash scripts/test.sh                 everything (CI)
+#   bash scripts/test.sh --fast [ARGS]   leave out tests marked integration or slow (a quick lane
+#                                        for edit-test loops); other arguments go to pytest
 set -euo pipefail
 cd "$(dirname "$0")/.."
+
+FAST=()
+if [ "${1:-}" = "--fast" ]; then
+    shift
+    FAST=(-m "not integration and not slow")
+    export HYPOTHESIS_PROFILE=fast  # fewer property-test examples (tests/conftest.py)
+fi
 
 PY=${PYTHON:-python3}
 if [ ! -x .venv/bin/python ]; then
@@ -24,4 +34,4 @@ if ! command -v mosquitto >/dev/null 2>&1 || ! command -v mosquitto_pub >/dev/nu
 fi
 
 .venv/bin/ruff check src tests
-exec .venv/bin/pytest "$@"
+exec .venv/bin/pytest "${FAST[@]}" "$@"

@@ -32,6 +32,8 @@ from tests.service_harness import (
     wait_until,
 )
 
+pytestmark = pytest.mark.integration  # a real Mosquitto and `limitwatch serve` processes
+
 T0 = 1_798_761_600.0  # 2027-01-01T00:00:00Z
 
 
