@@ -34,4 +34,5 @@ if ! command -v mosquitto >/dev/null 2>&1 || ! command -v mosquitto_pub >/dev/nu
 fi
 
 .venv/bin/ruff check src tests
+.venv/bin/mypy  # over src/, configured in pyproject.toml
 exec .venv/bin/pytest "${FAST[@]}" "$@"

@@ -16,6 +16,7 @@ import sys
 import threading
 import time
 from collections.abc import Callable
+from functools import partial
 from importlib import resources
 from pathlib import Path
 
@@ -179,9 +180,7 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
             if not use_mqtt:
                 service.intake.put(Job("poll-files", "quillmoor-export"))
             fed = start + len(chunk)
-            _wait_for(
-                lambda n=fed: alive() and _stored(store_path) >= n, 20, f"{fed} readings stored"
-            )
+            _wait_for(partial(_fed, alive, store_path, fed), 20, f"{fed} readings stored")
             echo(
                 f"-- fed {min(start + size, len(rows))}/{len(rows)} readings, "
                 f"up to {format_time(chunk[-1][1])}"
@@ -194,6 +193,10 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
         service.request_stop()
         worker.join(timeout=30)
     _summary(root, store_path, echo)
+
+
+def _fed(alive: Callable[[], bool], store_path: Path, count: int) -> bool:
+    return alive() and _stored(store_path) >= count
 
 
 def _file_feeder(root: Path) -> Callable[[list[tuple[str, float, float]]], None]:
