@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import os
 import subprocess
 import sys
 from dataclasses import dataclass
@@ -57,6 +58,12 @@ def cli(
     if result.exception is not None and not isinstance(result.exception, SystemExit):
         raise result.exception
     return CliResult(result.exit_code, result.stdout, result.stderr)
+
+
+def examples(n: int) -> int:
+    """``n`` hypothesis examples, or a quarter of them (at least 10) in the fast lane
+    (``scripts/test.sh --fast`` sets HYPOTHESIS_PROFILE=fast); the full run keeps ``n``."""
+    return max(10, n // 4) if os.environ.get("HYPOTHESIS_PROFILE") == "fast" else n
 
 
 def write_csv(path: Path, header: list[str], rows: list[list[object]]) -> Path:

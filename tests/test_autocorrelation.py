@@ -33,7 +33,7 @@ from limitwatch.stats.autocorrelation import (
     one_step_residuals,
 )
 from limitwatch.stats.baseline import BaselineError, fit_baseline
-from tests.helpers import cli, write_csv
+from tests.helpers import cli, examples, write_csv
 
 TABLE_E2, TABLE_D4 = 2.660, 3.267  # Montgomery, Appendix VI, n = 2 (three decimals printed)
 TABLE_REL = 1.5e-3
@@ -124,7 +124,7 @@ def test_residual_exclusions_point_at_the_readings() -> None:
     assert first_round == {70, 71}
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60), deadline=None)
 @given(
     values=st.lists(
         st.floats(min_value=-1e4, max_value=1e4, allow_nan=False), min_size=1, max_size=60

@@ -35,7 +35,7 @@ from limitwatch.config import (
 from limitwatch.durations import DurationError, format_duration, parse_duration
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
-from tests.helpers import cli
+from tests.helpers import cli, examples
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLE = ROOT / "config" / "example.toml"
@@ -138,7 +138,7 @@ def test_durations_are_shown_compactly(seconds, text):
     assert format_duration(None) == "off"
 
 
-@settings(max_examples=300, deadline=None)
+@settings(max_examples=examples(300), deadline=None)
 @given(st.integers(min_value=0, max_value=10 * 365 * 86400 * 1000))
 def test_shown_durations_read_back_to_the_same_seconds(milliseconds):
     seconds = milliseconds / 1000.0
