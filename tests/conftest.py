@@ -1,15 +1,25 @@
-"""Shared fixtures.
+"""Shared fixtures, and the ``integration`` marker put on tests that start a process or server.
 
 ``fresh_db`` comes first and stands alone: a real SQLite file per test, in the test's own
 temporary directory, so store and lifecycle tests exercise the same WAL file the service uses.
 """
 
+import inspect
+import os
+import types
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from hypothesis import settings
 
 from limitwatch.store import Store
+
+# `scripts/test.sh --fast` sets HYPOTHESIS_PROFILE=fast: fewer examples for property tests that
+# take hypothesis's default, for quick edit-test loops. The full run (CI) keeps the default 100;
+# tests that choose their own max_examples keep it in both.
+settings.register_profile("fast", max_examples=25)
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "default"))
 
 
 @pytest.fixture
@@ -38,3 +48,95 @@ def broker(tmp_path: Path) -> Iterator[Broker]:
         yield instance
     finally:
         instance.stop()
+
+
+# -- the integration marker, put on by what a test uses ---------------------------------------
+
+INTEGRATION_FIXTURES = {"broker"}
+"""Fixtures that start a process or a server: every test that uses one is an integration test."""
+
+INTEGRATION_MODULES = (
+    "subprocess",
+    "multiprocessing",
+    "http.server",
+    "socketserver",
+    "aiosmtpd",
+    "tests.broker",
+    "tests.receivers",
+    "tests.service_harness",
+    "limitwatch.localbroker",
+    "limitwatch.alerts.notifiers.command",
+)
+"""Modules whose use starts a process or a server (a real broker, ``limitwatch serve``, an HTTP or
+SMTP receiver, the command notifier's child). A test or fixture that names anything from one is
+marked ``integration``."""
+
+INTEGRATION_NAMES = {"run_cli"}
+"""Helpers that start a process but live in a module the fast tests share (tests.helpers)."""
+
+
+def _starts_a_process_or_server(value: object) -> bool:
+    if isinstance(value, types.ModuleType):
+        module = value.__name__
+    elif inspect.isfunction(value) or inspect.isclass(value):
+        module = value.__module__
+        if value.__name__ in INTEGRATION_NAMES and module == "tests.helpers":
+            return True
+    else:
+        return False
+    return any(module == m or module.startswith(m + ".") for m in INTEGRATION_MODULES)
+
+
+def _global_names(code: types.CodeType) -> Iterator[str]:
+    """Global names a function uses, its nested functions and lambdas included."""
+    yield from code.co_names
+    for const in code.co_consts:
+        if isinstance(const, types.CodeType):
+            yield from _global_names(const)
+
+
+def _uses_integration_parts(func: object, seen: set[object]) -> bool:
+    func = inspect.unwrap(func)  # type: ignore[arg-type]
+    if func in seen or not hasattr(func, "__code__") or not hasattr(func, "__globals__"):
+        return False
+    seen.add(func)
+    scope = func.__globals__
+    for name in _global_names(func.__code__):
+        value = scope.get(name)
+        if value is None:
+            continue
+        if _starts_a_process_or_server(value):
+            return True
+        # a helper function or class of the test's own module (never a library's)
+        if getattr(value, "__module__", None) != func.__module__:
+            continue
+        if inspect.isfunction(value) and _uses_integration_parts(value, seen):
+            return True
+        if inspect.isclass(value) and value not in seen:
+            seen.add(value)
+            methods = [m for m in vars(value).values() if inspect.isfunction(m)]
+            if any(_uses_integration_parts(m, seen) for m in methods):
+                return True
+    return False
+
+
+@pytest.hookimpl(tryfirst=True)
+def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
+    """Mark ``integration`` every test that uses a broker, a receiver, the service harness or a
+    subprocess, directly, through a fixture or through a helper in its own module, so that
+    ``scripts/test.sh --fast`` (``-m "not integration and not slow"``) leaves it out without anyone
+    remembering to mark it. Modules may also say ``pytestmark = pytest.mark.integration``."""
+    for item in items:
+        if item.get_closest_marker("integration") is not None:
+            continue
+        if not isinstance(item, pytest.Function):
+            continue
+        if INTEGRATION_FIXTURES & set(item.fixturenames):
+            item.add_marker(pytest.mark.integration)
+            continue
+        funcs: list[object] = [item.function]
+        for defs in item._fixtureinfo.name2fixturedefs.values():
+            funcs.extend(d.func for d in defs if d.baseid != "")
+        seen: set[object] = set()
+        if any(_uses_integration_parts(f, seen) for f in funcs):
+            item.add_marker(pytest.mark.integration)

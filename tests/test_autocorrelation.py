@@ -33,7 +33,7 @@ from limitwatch.stats.autocorrelation import (
     one_step_residuals,
 )
 from limitwatch.stats.baseline import BaselineError, fit_baseline
-from tests.helpers import run_cli, write_csv
+from tests.helpers import cli, examples, write_csv
 
 TABLE_E2, TABLE_D4 = 2.660, 3.267  # Montgomery, Appendix VI, n = 2 (three decimals printed)
 TABLE_REL = 1.5e-3
@@ -124,7 +124,7 @@ def test_residual_exclusions_point_at_the_readings() -> None:
     assert first_round == {70, 71}
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60), deadline=None)
 @given(
     values=st.lists(
         st.floats(min_value=-1e4, max_value=1e4, allow_nan=False), min_size=1, max_size=60
@@ -198,7 +198,7 @@ def test_the_baseline_warning_points_at_the_residual_option() -> None:
 def test_baseline_fit_reports_phi_and_residual_limits(tmp_path) -> None:
     x = np.round(ar1_series(300, 0.85, 31, mean=74.0, sd=0.3), 4)
     path = write_csv(tmp_path / "bearing.csv", ["t", "temp"], [[i, v] for i, v in enumerate(x)])
-    result = run_cli(
+    result = cli(
         "baseline", "fit", str(path), "--value", "temp", "--ar1-residuals", "--format", "json"
     )
     assert result.returncode == 0, result.stderr
@@ -220,7 +220,7 @@ def test_baseline_fit_reports_phi_and_residual_limits(tmp_path) -> None:
     real_half_width = (res["ucl"] - res["center"]) / math.sqrt(1 - ar1["phi"] ** 2)
     assert data["ucl"] - data["center"] < 0.6 * real_half_width
 
-    text = run_cli("baseline", "fit", str(path), "--value", "temp", "--ar1-residuals")
+    text = cli("baseline", "fit", str(path), "--value", "temp", "--ar1-residuals")
     assert text.returncode == 0, text.stderr
     assert "AR(1) model" in text.stdout and "phi" in text.stdout
     assert "one-step-ahead residuals" in text.stdout
@@ -231,13 +231,13 @@ def test_baseline_fit_reports_phi_and_residual_limits(tmp_path) -> None:
 def test_baseline_fit_refuses_a_random_walk(tmp_path) -> None:
     walk = np.cumsum(np.random.default_rng(6).normal(size=100)) + np.arange(100)
     path = write_csv(tmp_path / "w.csv", ["v"], [[round(float(v), 4)] for v in walk])
-    result = run_cli("baseline", "fit", str(path), "--value", "v", "--ar1-residuals")
+    result = cli("baseline", "fit", str(path), "--value", "v", "--ar1-residuals")
     assert result.returncode == 1 and "random walk" in result.stderr
     assert "Traceback" not in result.stderr
 
 
 def _replay(path, *extra: str) -> list[dict]:
-    result = run_cli(
+    result = cli(
         "replay",
         str(path),
         "--value",
@@ -274,7 +274,7 @@ def test_residuals_raise_far_fewer_false_alarms(tank) -> None:
 
 
 def test_replay_residual_limits_are_the_fit_of_the_same_readings(tank, tmp_path) -> None:
-    fit = run_cli(
+    fit = cli(
         "baseline", "fit", str(tank), "--value", "level", "--first", "200", "--ar1-residuals",
         "--format", "json",
     )  # fmt: skip
@@ -307,7 +307,7 @@ def test_replay_table_names_the_model_and_keeps_bounds_on_the_readings(tmp_path)
     x = np.round(ar1_series(300, 0.8, 41, mean=3.0, sd=0.2), 4)
     x[250] = -0.5  # below the natural bound of a level (the others are 2.5 sd above it)
     path = write_csv(tmp_path / "tank.csv", ["t", "level"], [[i, v] for i, v in enumerate(x)])
-    result = run_cli(
+    result = cli(
         "replay", str(path), "--value", "level", "--time", "t", "--baseline-first", "100",
         "--lower-bound", "0", "--ar1-residuals",
     )  # fmt: skip
@@ -319,7 +319,7 @@ def test_replay_table_names_the_model_and_keeps_bounds_on_the_readings(tmp_path)
     assert "line 252" in refused[0] and "reading -0.5" in refused[0]
     assert "below-lower-bound" in refused[0]
     assert "residual" in result.stdout.splitlines()[0] or "No signals" in result.stdout
-    help_text = run_cli("replay", "--help").stdout
+    help_text = cli("replay", "--help").stdout
     assert "--ar1-residuals" in help_text and "autocorrelated" in help_text
 
 
@@ -331,7 +331,7 @@ def test_replay_refuses_the_same_rows_for_the_same_reasons(tmp_path) -> None:
     path = write_csv(tmp_path / "r.csv", ["t", "s", "v"], rows)
 
     def refusals(*extra: str) -> list[str]:
-        result = run_cli(
+        result = cli(
             "replay", str(path), "--value", "v", "--time", "t", "--stream", "s",
             "--baseline-first", "30", *extra,
         )  # fmt: skip

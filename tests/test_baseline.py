@@ -23,6 +23,7 @@ from limitwatch.stats.baseline import (
     Exclusion,
     fit_baseline,
 )
+from tests.helpers import examples
 
 # Montgomery, Introduction to Statistical Quality Control, Appendix VI, n = 2 (printed to three
 # decimals): d2 1.128, D4 3.267; E2 = 3/1.128 = 2.660 (Wheeler & Chambers' XmR table).
@@ -107,7 +108,7 @@ def _fit_or_error(x: np.ndarray, **kw) -> Baseline | None:
         return None
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=examples(150), deadline=None)
 @given(
     x=grid_values,
     shift=st.integers(-80_000, 80_000).map(lambda k: k / 8.0),
@@ -132,7 +133,7 @@ def test_shifting_moves_center_and_limits_but_not_sigma(x, shift, method, exclud
     assert moved.sigma_overall == pytest.approx(b.sigma_overall, rel=1e-9)
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=examples(150), deadline=None)
 @given(
     x=grid_values,
     c=st.floats(min_value=1e-3, max_value=1e3),
@@ -149,7 +150,7 @@ def test_scaling_scales_sigma_and_limits(x, c, method) -> None:
     assert scaled.lag1_autocorrelation == pytest.approx(b.lag1_autocorrelation, abs=1e-9)
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=examples(100), deadline=None)
 @given(
     x=grid_values,
     k=st.integers(-20, 20),

@@ -16,6 +16,8 @@ from limitwatch import bench
 from limitwatch.cli import main
 from tests.broker import mosquitto_path
 
+pytestmark = pytest.mark.integration  # the bench starts a private Mosquitto and the real service
+
 TINY = bench.Sizes(
     repeats=1,
     engine_few=(20, 10),

@@ -20,7 +20,7 @@ from pathlib import Path
 import pytest
 from scipy.stats import norm
 
-from tests.helpers import run_cli
+from tests.helpers import cli
 
 WEEK = 7 * 86_400
 SHEWHART_ARL0 = 1.0 / (2.0 * norm.sf(3.0))  # scipy.stats.norm: 370.4
@@ -72,7 +72,7 @@ def budget_warning(text: str) -> str:
 
 def test_over_budget_warns_names_the_noisiest_and_still_passes(tmp_path):
     path = site(tmp_path, 5)
-    result = run_cli("check", "--config", str(path), "--file-only")
+    result = cli("check", "--config", str(path), "--file-only")
     assert result.returncode == 0, result.stderr
     out = result.stdout
     # the site figure: 110 + 0.057 a week, printed to three significant figures
@@ -92,12 +92,13 @@ def test_over_budget_warns_names_the_noisiest_and_still_passes(tmp_path):
     assert all(len(line) <= 80 for line in warning.splitlines()[:-1])
 
 
+@pytest.mark.slow  # the budget search computes every candidate's run lengths
 def test_the_suggested_plan_command_runs_and_finds_a_fit(tmp_path):
     path = site(tmp_path, 5)
-    out = run_cli("check", "--config", str(path), "--file-only").stdout
+    out = cli("check", "--config", str(path), "--file-only").stdout
     command = budget_warning(out).splitlines()[-1].split()
     assert command[:2] == ["limitwatch", "plan"]
-    result = run_cli(*command[1:], "--format", "json", "--no-cache")
+    result = cli(*command[1:], "--format", "json", "--no-cache")
     assert result.returncode == 0, result.stderr
     search = json.loads(result.stdout)["budget"]
     assert search["budget_per_week"] == 5.0
@@ -106,14 +107,14 @@ def test_the_suggested_plan_command_runs_and_finds_a_fit(tmp_path):
 
 
 def test_within_budget_no_warning(tmp_path):
-    result = run_cli("check", "--config", str(site(tmp_path, 200)), "--file-only")
+    result = cli("check", "--config", str(site(tmp_path, 200)), "--file-only")
     assert result.returncode == 0, result.stderr
     assert "warning: budget" not in result.stdout
     assert expected_figure(result.stdout) == pytest.approx(COMP + PACK, rel=5e-3)
 
 
 def test_without_a_budget_the_figure_is_information(tmp_path):
-    result = run_cli("check", "--config", str(site(tmp_path, None)), "--file-only")
+    result = cli("check", "--config", str(site(tmp_path, None)), "--file-only")
     assert result.returncode == 0, result.stderr
     assert "warning: budget" not in result.stdout
     expected = next(line for line in result.stdout.splitlines() if line.startswith("expected"))
@@ -122,6 +123,6 @@ def test_without_a_budget_the_figure_is_information(tmp_path):
 
 
 def test_without_any_cadence_nothing_is_estimated(tmp_path):
-    result = run_cli("check", "--config", str(site(tmp_path, 5, cadence=False)), "--file-only")
+    result = cli("check", "--config", str(site(tmp_path, 5, cadence=False)), "--file-only")
     assert result.returncode == 0, result.stderr
     assert "not estimated" in result.stdout and "warning: budget" not in result.stdout

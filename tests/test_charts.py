@@ -55,7 +55,7 @@ from limitwatch.pipeline import Parsed, Pipeline
 from limitwatch.report import Section, image_name, render_page
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store, StoredReading
-from tests.helpers import CLI, run_cli
+from tests.helpers import CLI, CliResult, cli, examples
 
 D2 = 1.128  # Montgomery, Introduction to SQC, Appendix VI, n = 2
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification, section 5.2
@@ -75,8 +75,8 @@ class Plant:
     path: Path
     gearbox: list[float]
 
-    def cli(self, *args: str) -> subprocess.CompletedProcess[str]:
-        return run_cli(*args, "--db", str(self.path))
+    def cli(self, *args: str) -> CliResult:
+        return cli(*args, "--db", str(self.path))
 
     def store(self) -> Store:
         return Store.open(self.path, now=T0)
@@ -101,7 +101,7 @@ def plant(tmp_path_factory: pytest.TempPathFactory) -> Plant:
         book = AlertBook(store, AlertPolicy(clear_after=10))
         pipe = Pipeline(store, lambda s: MonitorSettings(learn_count=LEARN), book)
         _feed(pipe, GEARBOX, in_control + shifted, 0)
-        refit = run_cli(
+        refit = cli(
             "baseline", "refit", GEARBOX, "--last", "20", "--reason", "new bearing fitted",
             "--by", "ana", "--db", str(path),
         )  # fmt: skip
@@ -383,7 +383,7 @@ def test_limits_typed_into_the_config_are_recovered_from_the_z_scores() -> None:
     assert found.sigma == pytest.approx(2.5, rel=1e-9)
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(
     switches=st.lists(st.integers(min_value=1, max_value=60), min_size=0, max_size=3, unique=True),
     seed=st.integers(min_value=0, max_value=2**32 - 1),

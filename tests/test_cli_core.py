@@ -1,4 +1,5 @@
-"""`limitwatch baseline fit` and `limitwatch replay` through the installed console script."""
+"""`limitwatch baseline fit` and `limitwatch replay`, in this process through click's test runner
+and once through the installed console script in a process of its own."""
 
 from __future__ import annotations
 
@@ -8,7 +9,7 @@ import math
 import numpy as np
 import pytest
 
-from tests.helpers import run_cli, write_csv
+from tests.helpers import cli, run_cli, write_csv
 
 
 @pytest.fixture
@@ -22,9 +23,16 @@ def downtime(tmp_path):
     return write_csv(tmp_path / "downtime.csv", ["time", "line", "minutes"], rows), values
 
 
-def test_baseline_fit_json_matches_a_plain_computation(downtime):
+@pytest.mark.parametrize(
+    "run",
+    [
+        pytest.param(cli, id="in-process"),
+        pytest.param(run_cli, id="console-script", marks=pytest.mark.integration),
+    ],
+)
+def test_baseline_fit_json_matches_a_plain_computation(downtime, run):
     path, values = downtime
-    result = run_cli(
+    result = run(
         "baseline", "fit", str(path), "--value", "minutes", "--first", "30", "--format", "json"
     )
     assert result.returncode == 0, result.stderr
@@ -45,7 +53,7 @@ def test_baseline_fit_json_matches_a_plain_computation(downtime):
 
 def test_baseline_fit_with_spec_limits_reports_capability(downtime):
     path, values = downtime
-    result = run_cli(
+    result = cli(
         "baseline",
         "fit",
         str(path),
@@ -71,7 +79,7 @@ def test_baseline_fit_with_spec_limits_reports_capability(downtime):
 
 def test_baseline_fit_table_is_readable(downtime):
     path, _ = downtime
-    result = run_cli("baseline", "fit", str(path), "--value", "minutes", "--lower-bound", "0")
+    result = cli("baseline", "fit", str(path), "--value", "minutes", "--lower-bound", "0")
     assert result.returncode == 0, result.stderr
     assert "center line" in result.stdout and "MR upper limit" in result.stdout
     assert max(len(line) for line in result.stdout.splitlines()) <= 80
@@ -82,14 +90,12 @@ def test_baseline_fit_excludes_a_wild_point_and_says_which(tmp_path):
         [10.0, 10.4, 9.8, 10.1, 9.9, 10.2, 10.0, 9.7, 10.3, 10.1] * 2 + [30.0] + [10.0, 10.2, 9.9]
     )
     path = write_csv(tmp_path / "v.csv", ["v"], [[v] for v in values])
-    result = run_cli(
+    result = cli(
         "baseline", "fit", str(path), "--value", "v", "--exclude-beyond", "--format", "json"
     )
     assert result.returncode == 0, result.stderr
     assert json.loads(result.stdout)["excluded"] == [20]
-    plain = json.loads(
-        run_cli("baseline", "fit", str(path), "--value", "v", "--format", "json").stdout
-    )
+    plain = json.loads(cli("baseline", "fit", str(path), "--value", "v", "--format", "json").stdout)
     assert plain["excluded"] == [] and plain["mr_bar"] > json.loads(result.stdout)["mr_bar"]
 
 
@@ -110,18 +116,18 @@ def test_baseline_fit_excludes_a_wild_point_and_says_which(tmp_path):
 def test_baseline_fit_bad_files_name_the_fault(tmp_path, content, args, needle):
     path = tmp_path / "bad.csv"
     path.write_text(content)
-    result = run_cli("baseline", "fit", str(path), *args)
+    result = cli("baseline", "fit", str(path), *args)
     assert result.returncode == 1
     assert needle in result.stderr
     assert "Traceback" not in result.stderr
 
 
 def test_missing_file_and_bad_options(tmp_path):
-    missing = run_cli("baseline", "fit", str(tmp_path / "nope.csv"), "--value", "v")
+    missing = cli("baseline", "fit", str(tmp_path / "nope.csv"), "--value", "v")
     assert missing.returncode != 0 and "nope.csv" in missing.stderr
-    bad_method = run_cli("baseline", "fit", "x.csv", "--value", "v", "--method", "mode")
+    bad_method = cli("baseline", "fit", "x.csv", "--value", "v", "--method", "mode")
     assert bad_method.returncode == 2 and "--method" in bad_method.stderr
-    bad_rule = run_cli("replay", "x.csv", "--value", "v", "--rules", "beyond-limits,not-a-rule")
+    bad_rule = cli("replay", "x.csv", "--value", "v", "--rules", "beyond-limits,not-a-rule")
     assert bad_rule.returncode == 2
     assert "not-a-rule" in bad_rule.stderr and "beyond-limits" in bad_rule.stderr
 
@@ -134,7 +140,7 @@ def test_replay_jsonl_reports_every_signal_with_its_position(tmp_path):
     for stream in ("comp-a", "comp-b"):
         rows += [[i * 60, stream, v] for i, v in enumerate([*quiet, *after])]
     path = write_csv(tmp_path / "t.csv", ["ts", "sensor", "temp"], rows)
-    result = run_cli(
+    result = cli(
         "replay",
         str(path),
         "--value",
@@ -165,7 +171,7 @@ def test_replay_jsonl_reports_every_signal_with_its_position(tmp_path):
 def test_replay_refuses_out_of_order_rows_and_says_which_line(tmp_path):
     rows = [[i, 10 + (i % 3) * 0.5] for i in range(30)] + [[5, 10.0], [31, 10.2]]
     path = write_csv(tmp_path / "t.csv", ["t", "v"], rows)
-    result = run_cli("replay", str(path), "--value", "v", "--time", "t", "--baseline-first", "20")
+    result = cli("replay", str(path), "--value", "v", "--time", "t", "--baseline-first", "20")
     assert result.returncode == 0
     assert "line 32" in result.stderr and "out-of-order" in result.stderr
 
@@ -185,7 +191,7 @@ def test_replay_refuses_a_huge_value_in_words_not_with_a_traceback(tmp_path):
 def test_replay_bad_time_names_line_and_column(tmp_path):
     path = tmp_path / "t.csv"
     path.write_text("t,v\n2027-01-01T00:00:00Z,1\nyesterday,2\n")
-    result = run_cli("replay", str(path), "--value", "v", "--time", "t")
+    result = cli("replay", str(path), "--value", "v", "--time", "t")
     assert result.returncode == 1
     assert "line 3, column 't'" in result.stderr and "yesterday" in result.stderr
 

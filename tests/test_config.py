@@ -35,7 +35,7 @@ from limitwatch.config import (
 from limitwatch.durations import DurationError, format_duration, parse_duration
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
-from tests.helpers import run_cli
+from tests.helpers import cli, examples
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLE = ROOT / "config" / "example.toml"
@@ -138,7 +138,7 @@ def test_durations_are_shown_compactly(seconds, text):
     assert format_duration(None) == "off"
 
 
-@settings(max_examples=300, deadline=None)
+@settings(max_examples=examples(300), deadline=None)
 @given(st.integers(min_value=0, max_value=10 * 365 * 86400 * 1000))
 def test_shown_durations_read_back_to_the_same_seconds(milliseconds):
     seconds = milliseconds / 1000.0
@@ -915,7 +915,7 @@ def test_every_key_in_the_example_is_explained_by_a_comment():
 
 def test_check_summarizes_a_good_config(tmp_path):
     (tmp_path / "data").mkdir()
-    result = run_cli("check", "--config", str(DEMO))
+    result = cli("check", "--config", str(DEMO))
     assert result.returncode == 0, result.stderr
     out = result.stdout
     assert "usable" in out
@@ -952,7 +952,7 @@ def test_check_lists_every_problem_by_key_path_and_exits_1(tmp_path):
         )
         + "\n"
     )
-    result = run_cli("check", "--config", str(path))
+    result = cli("check", "--config", str(path))
     assert result.returncode == 1
     for key in (
         "store.pth",
@@ -973,15 +973,15 @@ def test_check_reads_secrets_unless_asked_not_to(tmp_path):
     )
     env_free = {k: v for k, v in os.environ.items() if k != "LW_TEST_UNSET_SECRET"}
     assert "LW_TEST_UNSET_SECRET" not in env_free
-    result = run_cli("check", "--config", str(path))
+    result = cli("check", "--config", str(path))
     assert result.returncode == 1
     assert "notifiers[0].secret_env" in result.stderr and "LW_TEST_UNSET_SECRET" in result.stderr
-    offline = run_cli("check", "--config", str(path), "--file-only")
+    offline = cli("check", "--config", str(path), "--file-only")
     assert offline.returncode == 0, offline.stderr
     assert "not read" in offline.stdout and "warning: sources" in offline.stdout
 
 
 def test_check_the_example_without_its_secrets():
-    result = run_cli("check", "--config", str(EXAMPLE), "--file-only")
+    result = cli("check", "--config", str(EXAMPLE), "--file-only")
     assert result.returncode == 0, result.stderr
     assert "plant-broker" in result.stdout and "on-call-pager" in result.stdout

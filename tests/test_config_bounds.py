@@ -112,7 +112,7 @@ def builds_what_serve_builds(path: Path) -> None:
         config.service.metrics_address  # noqa: B018 -- parsing is the check
     scheduler = Service(config)._make_scheduler()
     jobs = scheduler.get_jobs()
-    assert {"stale", "alert-tick", "refits"} <= {job.id for job in jobs}
+    assert {"stale-check", "alert-tick", "refits"} <= {job.id for job in jobs}
     for job in jobs:
         first = job.trigger.get_next_fire_time(None, now)
         assert first is not None

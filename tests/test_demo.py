@@ -2,15 +2,23 @@
 
 from __future__ import annotations
 
+import os
+import shlex
+import shutil
 import sqlite3
+import subprocess
 from pathlib import Path
 
 import pytest
+from click.testing import CliRunner
 
-from limitwatch.cli_demo import demo_config_text
+from limitwatch import demo_folder
+from limitwatch.cli import main
+from limitwatch.cli_demo import command_prefix, demo_config_text
 from limitwatch.demo import STREAMS
+from limitwatch.store import Store
 from tests.broker import mosquitto_path
-from tests.helpers import run_cli
+from tests.helpers import CLI, run_cli
 
 # What each injected cause may legitimately raise (any of these rules, at least one of them).
 EXPECTED = {
@@ -67,17 +75,106 @@ def test_demo_raises_alerts_for_the_injected_causes_and_nothing_else(tmp_path, t
     assert "not a safety system" in out
     assert f"Everything is in {folder}" in out
     assert "pack-1/downtime          no alert" in out
-    # the commands it suggests work on what it left behind
-    listed = run_cli("alerts", "--db", str(folder / "quillmoor.db"))
+    # the commands it suggests work as printed, from a shell whose PATH lacks the venv (the
+    # README installs without activating it)
+    suggested = next_commands(out)
+    assert len(suggested) == 6
+    alerts_line = next(args for args in suggested if args[1] == "alerts")
+    path = os.pathsep.join(
+        d for d in os.environ.get("PATH", "").split(os.pathsep) if Path(d) != CLI.parent
+    )
+    listed = subprocess.run(
+        alerts_line, capture_output=True, text=True, env={**os.environ, "PATH": path}, timeout=60
+    )
     assert listed.returncode == 0 and "pack-2/downtime" in listed.stdout
+
+
+def next_commands(out: str) -> list[list[str]]:
+    """The commands under the demo's "Next, try:" line, split as a shell would."""
+    tail = out.split("Next, try:\n", 1)[1]
+    return [shlex.split(line) for line in tail.splitlines() if line.startswith("  ")]
 
 
 def test_packaged_demo_config_is_the_one_in_config_folder():
     assert demo_config_text() == (Path(__file__).parents[1] / "config" / "demo.toml").read_text()
 
 
+def demo(folder: Path) -> tuple[int, str]:
+    result = CliRunner().invoke(main, ["demo", "--folder", str(folder), "--pace", "0"])
+    return result.exit_code, result.output
+
+
 def test_demo_refuses_to_delete_a_folder_it_did_not_make(tmp_path):
     (tmp_path / "precious.txt").write_text("keep me")
-    result = run_cli("demo", "--folder", str(tmp_path), "--pace", "0")
-    assert result.returncode != 0 and "not a limitwatch demo folder" in result.stderr
+    code, out = demo(tmp_path)
+    assert code == 1 and "not a limitwatch demo folder" in out and str(tmp_path) in out
     assert (tmp_path / "precious.txt").read_text() == "keep me"
+    assert not (tmp_path / demo_folder.MARKER).exists()
+
+
+def test_demo_refuses_a_config_folder_that_merely_holds_a_demo_toml(tmp_path):
+    """Issue 14: `limitwatch demo --folder config` in a checkout deleted config/example.toml."""
+    config = tmp_path / "config"
+    config.mkdir()
+    (config / "demo.toml").write_text(demo_config_text())
+    (config / "example.toml").write_text("# a site's config\n")
+    code, out = demo(config)
+    assert code == 1 and f"{config} is not a limitwatch demo folder" in out
+    assert sorted(p.name for p in config.iterdir()) == ["demo.toml", "example.toml"]
+    assert (config / "example.toml").read_text() == "# a site's config\n"
+
+
+def test_demo_writes_into_an_empty_folder_and_marks_it(tmp_path):
+    assert demo_folder.prepare(tmp_path, demo_config_text()) is None
+    assert (tmp_path / demo_folder.MARKER).is_file() and (tmp_path / "data").is_dir()
+
+
+def test_demo_again_replaces_only_its_own_files_and_says_what_went(tmp_path):
+    folder = tmp_path / "demo"
+    code, out = demo(folder)
+    assert code == 0, out
+    assert "Replacing" not in out
+    store = Store.open(folder / "quillmoor.db", now=0.0)
+    try:
+        store.acknowledge(1, by="tester", note="seen", now=1.0)
+        alerts = len(store.alerts())
+    finally:
+        store.close()
+    (folder / "notes.txt").write_text("mine")
+    (folder / "data" / "site.txt").write_text("mine too")
+
+    code, out = demo(folder)
+    assert code == 0, out
+    assert (
+        f"Replacing the earlier demo in {folder}: its database ({alerts} alerts, 1 acknowledged, "
+        "0 refitted baselines)" in out
+    )
+    assert "Kept, as the demo did not make them: notes.txt, data/site.txt." in out
+    assert (folder / "notes.txt").read_text() == "mine"
+    assert (folder / "data" / "site.txt").read_text() == "mine too"
+    fresh = sqlite3.connect(folder / "quillmoor.db")
+    try:
+        assert fresh.execute("SELECT count(acknowledged_at) FROM alerts").fetchone() == (0,)
+    finally:
+        fresh.close()
+
+
+def test_demo_files_name_the_database_of_the_demo_config():
+    assert "quillmoor.db" in demo_folder.demo_files(demo_config_text())
+
+
+def test_next_commands_name_the_script_by_path_unless_path_finds_it(tmp_path):
+    script = tmp_path / "venv bin" / "limitwatch"
+    script.parent.mkdir()
+    script.write_text("#!/bin/sh\n")
+    assert command_prefix(str(script), which=lambda _: None) == shlex.quote(str(script))
+    assert command_prefix(str(script), which=lambda _: str(script)) == "limitwatch"
+    elsewhere = shutil.which("sh") or "/bin/sh"
+    assert command_prefix(str(script), which=lambda _: elsewhere) == shlex.quote(str(script))
+    # run as `python -m limitwatch` (argv[0] is __main__.py) with no script beside python
+    python = str(tmp_path / "python3")
+    assert command_prefix("/x/__main__.py", python=python) == f"{python} -m limitwatch"
+    # ... or with one: the script beside the interpreter, as the venv has it
+    assert command_prefix("-c", python=str(script.with_name("python3")), which=lambda _: None) == (
+        shlex.quote(str(script))
+    )

@@ -14,6 +14,7 @@ from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
 from limitwatch.stats.baseline import fit_baseline
 from limitwatch.stats.constants import D2
+from tests.helpers import examples
 
 
 def feed(monitor: StreamMonitor, values, start: float = 0.0, step: float = 60.0):
@@ -145,7 +146,7 @@ values_strategy = st.lists(
 )
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60), deadline=None)
 @given(values=values_strategy, cut=st.integers(min_value=0, max_value=120), seed=st.integers(0, 9))
 def test_snapshot_and_restore_mid_stream_changes_nothing(values, cut, seed):
     """Property: a checkpoint at any point, written to JSON and read back, continues exactly as

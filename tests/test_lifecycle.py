@@ -32,6 +32,7 @@ from limitwatch.alerts.lifecycle import (
 )
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.store import Alert, Shelf, Store
+from tests.helpers import examples
 
 T0 = 1_700_000_000.0
 STREAM = "line-2/gearbox-temp"
@@ -444,7 +445,7 @@ def _final_state(batches: list[list[Outcome]], replay: bool) -> tuple[list, list
         return alerts, rows(store)
 
 
-@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(40), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     steps=st.lists(
         st.tuples(
@@ -509,7 +510,7 @@ def _run_actions(actions: list[tuple], keep_book: bool) -> tuple[list, list]:
 _STREAMS = st.sampled_from(["line-1/a", "line-1/b", "line-2/c"])
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(60), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     actions=st.lists(
         st.one_of(

@@ -12,7 +12,7 @@ import json
 
 import pytest
 
-from tests.helpers import run_cli
+from tests.helpers import cli
 
 sm = pytest.importorskip("statsmodels.api")
 
@@ -34,7 +34,7 @@ def test_nile_change_of_1898_is_found_soon_after_and_not_before(nile_csv, rules)
     before = sum(volume[:27]) / 27
     after = sum(volume[27:]) / len(volume[27:])
     assert before - after > 200  # the documented drop is there in the shipped data
-    result = run_cli(
+    result = cli(
         "replay",
         str(path),
         "--value",

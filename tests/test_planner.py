@@ -27,7 +27,7 @@ from limitwatch.planner import (
 )
 from limitwatch.stats import arl
 from limitwatch.stats.arl import run_length
-from tests.helpers import run_cli
+from tests.helpers import cli
 
 SECONDS = {"day": 86_400, "week": 604_800, "month": 30 * 86_400}
 
@@ -111,6 +111,7 @@ def four_hourly_streams():
     return search_budget(3.0, 4 * 7 * 24)
 
 
+@pytest.mark.slow  # the budget search computes every candidate's run lengths
 def test_budget_search_picks_the_quickest_set_that_fits(four_hourly_streams):
     found = four_hourly_streams
     assert [o.rules for o in sorted(found.options, key=lambda o: o.rules)] == sorted(CANDIDATES)
@@ -164,7 +165,7 @@ def fits_80_columns(text: str) -> bool:
 
 
 def test_plan_ad_hoc_json(cache_home):
-    result = run_cli("plan", "--cadence", "1m", "--rules", "beyond-limits", "--format", "json")
+    result = cli("plan", "--cadence", "1m", "--rules", "beyond-limits", "--format", "json")
     assert result.returncode == 0, result.stderr
     out = json.loads(result.stdout)
     (plan,) = out["plans"]
@@ -181,18 +182,18 @@ def test_plan_ad_hoc_json(cache_home):
 
 
 def test_plan_ad_hoc_table_for_several_streams(cache_home):
-    result = run_cli("plan", "--cadence", "30s", "--rules", "western-electric", "--streams", "25")
+    result = cli("plan", "--cadence", "30s", "--rules", "western-electric", "--streams", "25")
     assert result.returncode == 0, result.stderr
     text = result.stdout
     assert fits_80_columns(text)
     assert "all 25 streams" in text and "Assumptions:" in text and "independent" in text
     assert "one every ten minutes" in text  # 25 streams at 30 s are far past that rate
-    help_text = run_cli("plan", "-h").stdout
+    help_text = cli("plan", "-h").stdout
     assert "--budget" in help_text and "independent" in help_text
 
 
 def test_plan_totals_cover_all_streams(cache_home):
-    result = run_cli(
+    result = cli(
         "plan", "--cadence", "8h", "--rules", "limits", "--streams", "12", "--format", "json"
     )
     (plan,) = json.loads(result.stdout)["plans"]
@@ -204,8 +205,9 @@ def test_plan_totals_cover_all_streams(cache_home):
     )
 
 
+@pytest.mark.slow  # the budget search computes every candidate's run lengths
 def test_plan_with_a_budget(warm_cache):
-    result = run_cli(
+    result = cli(
         "plan", "--cadence", "1h", "--rules", "limits", "--streams", "4", "--budget", "3/week",
         "--format", "json",
     )  # fmt: skip
@@ -217,7 +219,7 @@ def test_plan_with_a_budget(warm_cache):
     assert all(o["fits"] == (o in fitting) for o in options)
     best = min(fitting, key=lambda o: o["one_sigma"]["arl"])
     assert budget["chosen"] == best["rules"]
-    table = run_cli("plan", "--cadence", "1h", "--rules", "limits", "--streams", "4", "--budget",
+    table = cli("plan", "--cadence", "1h", "--rules", "limits", "--streams", "4", "--budget",
                     "3/week")  # fmt: skip
     assert table.returncode == 0, table.stderr
     assert fits_80_columns(table.stdout)
@@ -245,10 +247,11 @@ CONFIG = textwrap.dedent(
 )
 
 
+@pytest.mark.slow  # the budget search computes every candidate's run lengths
 def test_plan_from_a_config(tmp_path, warm_cache):
     path = tmp_path / "site.toml"
     path.write_text(CONFIG, encoding="utf-8")
-    result = run_cli("plan", "--config", str(path), "--format", "json")
+    result = cli("plan", "--config", str(path), "--format", "json")
     assert result.returncode == 0, result.stderr
     out = json.loads(result.stdout)
     by_name = {p["name"]: p for p in out["plans"]}
@@ -262,16 +265,17 @@ def test_plan_from_a_config(tmp_path, warm_cache):
     assert out["site_false_alarms"]["week"] == pytest.approx(total)
     assert out["budget"]["budget_per_week"] == 3.0  # from [budget]
     assert out["budget"]["readings_per_week"] == pytest.approx(21 + 10_080 + 10_080)
-    table = run_cli("plan", "--config", str(path))
+    table = cli("plan", "--config", str(path))
     assert table.returncode == 0, table.stderr
     assert fits_80_columns(table.stdout)
     assert "Site total" in table.stdout
 
 
+@pytest.mark.slow  # computes the run lengths of the config's rule sets from scratch
 def test_plan_named_streams_of_a_config(tmp_path, cache_home):
     path = tmp_path / "site.toml"
     path.write_text(CONFIG.replace('cadence = "1m"\n', ""), encoding="utf-8")
-    result = run_cli(
+    result = cli(
         "plan", "--config", str(path), "--stream", "line-1/temp", "--stream", "pump-9",
         "--budget", "100/week", "--format", "json",
     )  # fmt: skip
@@ -296,13 +300,13 @@ def test_plan_named_streams_of_a_config(tmp_path, cache_home):
     ],
 )
 def test_plan_option_mistakes_exit_2(cache_home, args, message):
-    result = run_cli("plan", *args)
+    result = cli("plan", *args)
     assert result.returncode == 2
     assert message in result.stderr
 
 
 def test_plan_bad_config_exits_1(tmp_path, cache_home):
-    result = run_cli("plan", "--config", str(tmp_path / "missing.toml"))
+    result = cli("plan", "--config", str(tmp_path / "missing.toml"))
     assert result.returncode == 1
     assert "no such file" in result.stderr
 
@@ -311,7 +315,7 @@ def test_damaged_cache_is_ignored_with_a_warning(cache_home):
     path = cache_home / "limitwatch" / "run-lengths.json"
     path.parent.mkdir(parents=True)
     path.write_text("{not json", encoding="utf-8")
-    result = run_cli("plan", "--cadence", "1m", "--rules", "beyond-limits")
+    result = cli("plan", "--cadence", "1m", "--rules", "beyond-limits")
     assert result.returncode == 0
     assert "ignoring the run-length cache" in result.stderr
     assert json.loads(path.read_text())  # rewritten with good data

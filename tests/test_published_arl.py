@@ -63,6 +63,7 @@ def check_arl(label: str, lengths: np.ndarray, published: float) -> None:
 # ------------------------------------------------------------------------------------------
 
 
+@pytest.mark.slow  # simulates 10,000 in-control run lengths; the Markov-chain checks stay fast
 def test_three_sigma_limits_in_control():
     # ARL0 = 1 / P(|Z| > 3) = 370.4 for the 3-sigma Shewhart chart (Montgomery).
     published = 1 / (2 * norm.sf(3.0))
@@ -83,6 +84,7 @@ def test_three_sigma_limits_after_a_one_sigma_shift():
 WESTERN_ELECTRIC_1_TO_4 = "beyond-limits, two-of-three-zone-a, four-of-five-zone-b, run-one-side"
 
 
+@pytest.mark.slow  # simulates 10,000 in-control run lengths; the Markov-chain checks stay fast
 def test_western_electric_rules_one_to_four_in_control():
     # Champ & Woodall (1987): rules 1, 2, 3 and 4 together, ARL0 = 91.75 (from memory).
     check_arl(
@@ -90,6 +92,7 @@ def test_western_electric_rules_one_to_four_in_control():
     )
 
 
+@pytest.mark.slow  # simulates 10,000 in-control run lengths; the Markov-chain checks stay fast
 def test_western_electric_rules_one_and_two_in_control():
     # Champ & Woodall (1987): rules 1 and 2 together, ARL0 = 225.44 (from memory).
     lengths = simulate("beyond-limits, two-of-three-zone-a", 0.0, RUNS, seed=4)
@@ -133,6 +136,7 @@ def test_default_ewma_is_the_lambda_020_design_with_arl0_500():
     assert ewma_markov_arl(det.lam, det.L, 0.0) == pytest.approx(500.0, rel=0.01)
 
 
+@pytest.mark.slow  # simulates 10,000 in-control run lengths; the Markov-chain checks stay fast
 def test_ewma_in_control_with_asymptotic_limits():
     lengths = simulate("ewma(lam=0.1, L=2.814, exact_startup=false)", 0.0, RUNS, seed=5)
     check_arl("EWMA 0.10/2.814 asymptotic, in control", lengths, 500.0)
@@ -214,9 +218,9 @@ def test_cusum_table_values_by_markov_chain_and_siegmund(h, shift, published):
 @pytest.mark.parametrize(
     ("h", "shift", "published", "runs", "seed"),
     [
-        (4.0, 0.0, 168.0, RUNS, 8),
+        pytest.param(4.0, 0.0, 168.0, RUNS, 8, marks=pytest.mark.slow),  # in control: long runs
         (4.0, 1.0, 8.38, RUNS, 9),
-        (5.0, 0.0, 465.0, RUNS, 10),
+        pytest.param(5.0, 0.0, 465.0, RUNS, 10, marks=pytest.mark.slow),
         (5.0, 1.0, 10.4, RUNS, 11),
     ],
 )

@@ -37,10 +37,11 @@ from limitwatch.stats.rules import (
 )
 from limitwatch.stats.signal import Detector, Signal
 from limitwatch.stats.smoothing import SMOOTHERS
+from tests.helpers import examples
 
 PROPERTY = settings(
     derandomize=True,
-    max_examples=60,
+    max_examples=examples(60),
     deadline=None,
     suppress_health_check=[HealthCheck.too_slow],
 )

@@ -5,12 +5,15 @@ from __future__ import annotations
 import time
 
 import numpy as np
+import pytest
 
 from limitwatch.config import load_config
 from limitwatch.engine import StreamMonitor
 from limitwatch.ingest.timeparse import format_time, parse_time
 from limitwatch.model import Reading
 from tests.service_harness import ServiceProcess, checkpoints, count, query, wait_until
+
+pytestmark = pytest.mark.integration  # `limitwatch serve` processes
 
 T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z: in the past, as the service wants readings
 

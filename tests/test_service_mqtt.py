@@ -32,6 +32,8 @@ from tests.service_harness import (
     wait_until,
 )
 
+pytestmark = pytest.mark.integration  # a real Mosquitto and `limitwatch serve` processes
+
 T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z: in the past, as the service wants readings
 
 

@@ -17,6 +17,7 @@ from hypothesis import strategies as st
 
 from limitwatch.stats.rules import BeyondLimits
 from limitwatch.stats.smoothing import Cusum, Ewma
+from tests.helpers import examples
 
 
 def feed(det, values, first_index=0):
@@ -28,7 +29,7 @@ def feed(det, values, first_index=0):
 # ------------------------------------------------------------------------------------------
 
 
-@settings(derandomize=True, max_examples=50, deadline=None)
+@settings(derandomize=True, max_examples=examples(50), deadline=None)
 @given(
     values=st.lists(st.floats(-0.5, 0.5, allow_nan=False), min_size=1, max_size=200),
     lam=st.sampled_from([0.05, 0.1, 0.2, 0.4, 0.75, 1.0]),

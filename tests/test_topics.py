@@ -24,6 +24,7 @@ from limitwatch.ingest.topics import (
     validate_filter,
     validate_topic_name,
 )
+from tests.helpers import examples
 
 # -- MQTT 3.1.1 section 4.7: which filters are valid -------------------------------------------
 
@@ -120,13 +121,13 @@ _filters = st.builds(
 ).filter(lambda f: f != "")
 
 
-@settings(max_examples=400, deadline=None)
+@settings(max_examples=examples(400), deadline=None)
 @given(_filters, _topics)
 def test_matching_agrees_with_paho_topic_matches_sub(topic_filter, topic):
     assert topic_matches(topic_filter, topic) == topic_matches_sub(topic_filter, topic)
 
 
-@settings(max_examples=300, deadline=None)
+@settings(max_examples=examples(300), deadline=None)
 @given(_filters, _filters, st.lists(_topics, min_size=1, max_size=30))
 def test_overlap_is_never_denied_when_a_topic_matches_both(a, b, topics):
     # Soundness against a brute-force search: if some topic matches both filters, the filters

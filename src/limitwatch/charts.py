@@ -471,10 +471,10 @@ def _draw(fig: Any, data: ChartData) -> None:
 
     # Readings: one line through all, learning ones hollow and grey.
     for a, b, learning in _runs([p.learning for p in pts]):
-        lo = a if learning or a == 0 else a - 1  # join a monitored run to the reading before
+        first = a if learning or a == 0 else a - 1  # join a monitored run to the reading before
         ax.plot(
-            x[lo:b],
-            [p.value for p in pts[lo:b]],
+            x[first:b],
+            [p.value for p in pts[first:b]],
             color=LEARNING if learning else READING,
             lw=0.9,
             zorder=3,
@@ -499,10 +499,10 @@ def _draw(fig: Any, data: ChartData) -> None:
     mr_pts = [(x[i], p.mr, p.learning) for i, p in enumerate(pts) if p.mr is not None]
     if mr_pts:
         for a, b, learning in _runs([m[2] for m in mr_pts]):
-            lo = a if learning or a == 0 else a - 1
+            first = a if learning or a == 0 else a - 1
             mr_ax.plot(
-                [m[0] for m in mr_pts[lo:b]],
-                [m[1] for m in mr_pts[lo:b]],
+                [m[0] for m in mr_pts[first:b]],
+                [m[1] for m in mr_pts[first:b]],
                 color=LEARNING if learning else READING,
                 lw=0.8,
                 zorder=3,
@@ -537,6 +537,7 @@ def _draw(fig: Any, data: ChartData) -> None:
     plans = []
     for chart_id, axis, seen in (("x", ax, y_seen), ("mr", mr_ax, mr_seen)):
         keyed = []
+        value_of: dict[int, float] = {}
         for (index, c), rules in sorted(labels.items(), key=lambda kv: where.get(kv[0][0], -1)):
             pos = where.get(index)
             if c != chart_id or pos is None:
@@ -544,7 +545,7 @@ def _draw(fig: Any, data: ChartData) -> None:
             y = pts[pos].value if chart_id == "x" else pts[pos].mr
             if y is not None:
                 keyed.append((pos, rules))
-        value_of = {pos: (pts[pos].value if chart_id == "x" else pts[pos].mr) for pos, _ in keyed}
+                value_of[pos] = y
         if keyed:
             axis.plot(
                 [x[pos] for pos, _ in keyed],

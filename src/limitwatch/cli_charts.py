@@ -62,6 +62,7 @@ from limitwatch.ingest.timeparse import TimeFormatError, parse_time
 from limitwatch.report import IMAGE_SIZE, AlertRow, Section, image_name, render_page
 from limitwatch.stats.constants import D2, MR_UCL_SIGMA
 from limitwatch.stats.rules import DETECTORS
+from limitwatch.stats.signal import Chart
 from limitwatch.store import Alert, Store, StoredReading
 from limitwatch.store import Baseline as StoredBaseline
 from limitwatch.textout import num
@@ -206,7 +207,7 @@ def signal_flags(
     return sorted(set(out), key=lambda f: (f.index, f.chart, f.rule))
 
 
-def _chart_of(rule: str) -> str:
+def _chart_of(rule: str) -> Chart:
     detector = DETECTORS.get(rule)
     return "x" if detector is None else detector.chart
 
@@ -235,16 +236,14 @@ def flags_from_alerts(
 
     out: list[charts.Flag] = []
     for a in alerts:
-        chart = "mr" if a.signal.get("chart") == "mr" else "x"
+        chart: Chart = "mr" if a.signal.get("chart") == "mr" else "x"
         for index in {a.first_index, a.last_index}:
             if index is not None and index in by_index:
                 out.append(charts.Flag(index, a.rule, chart))
         if a.first_index is None or a.last_index is None:
             continue
         between = [
-            r
-            for i, r in by_index.items()
-            if a.first_index < i < a.last_index and r.z is not None  # type: ignore[operator]
+            r for i, r in by_index.items() if a.first_index < i < a.last_index and r.z is not None
         ]
         if a.rule == "beyond-limits":
             k = abs(a.signal.get("limit") or 3.0)

@@ -10,17 +10,19 @@ with QoS 1 instead.
 from __future__ import annotations
 
 import json
+import shlex
 import shutil
 import sys
 import threading
 import time
 from collections.abc import Callable
+from functools import partial
 from importlib import resources
 from pathlib import Path
 
 import click
 
-from limitwatch import SAFETY_CAUTION
+from limitwatch import SAFETY_CAUTION, demo_folder
 from limitwatch.cli import main
 from limitwatch.demo import LEARN, PLANT, STREAMS, generate
 from limitwatch.ingest.timeparse import format_time
@@ -68,7 +70,8 @@ time_format = "epoch_s"
     type=click.Path(file_okay=False),
     default="limitwatch-demo",
     show_default=True,
-    help="Where the demo writes its config, data and database (replaced if it exists).",
+    help="Where the demo writes its config, data and database: a new or empty folder, or one "
+    "an earlier demo made (its files are then replaced; nothing else there is touched).",
 )
 @click.option(
     "--mqtt", "use_mqtt", is_flag=True, help="Feed the readings over a private Mosquitto."
@@ -93,22 +96,21 @@ def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
       limitwatch demo
       limitwatch demo --mqtt --folder /tmp/quillmoor
     """
+    if use_mqtt and mosquitto_path() is None:
+        raise click.ClickException(
+            "--mqtt needs Mosquitto on this machine (Debian/Ubuntu: apt-get install mosquitto)"
+        )
     root = Path(folder).resolve()
-    if root.exists():
-        if not (root / "demo.toml").exists():
-            raise click.ClickException(
-                f"{root} exists and is not a limitwatch demo folder; choose another --folder"
-            )
-        shutil.rmtree(root)
-    (root / "data").mkdir(parents=True)
+    try:
+        replaced = demo_folder.prepare(root, demo_config_text())
+    except demo_folder.DemoFolderError as exc:
+        raise click.ClickException(str(exc)) from None
+    if replaced is not None:
+        click.echo(replaced.describe(root))
     if not use_mqtt:
         (root / "demo.toml").write_text(demo_config_text())
         run_demo(root, use_mqtt=False, pace=pace, echo=click.echo)
         return
-    if mosquitto_path() is None:
-        raise click.ClickException(
-            "--mqtt needs Mosquitto on this machine (Debian/Ubuntu: apt-get install mosquitto)"
-        )
     try:
         with private_broker(root / "broker", queued=100_000) as port:
             (root / "demo.toml").write_text(_mqtt_config_text(port))
@@ -178,9 +180,7 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
             if not use_mqtt:
                 service.intake.put(Job("poll-files", "quillmoor-export"))
             fed = start + len(chunk)
-            _wait_for(
-                lambda n=fed: alive() and _stored(store_path) >= n, 20, f"{fed} readings stored"
-            )
+            _wait_for(partial(_fed, alive, store_path, fed), 20, f"{fed} readings stored")
             echo(
                 f"-- fed {min(start + size, len(rows))}/{len(rows)} readings, "
                 f"up to {format_time(chunk[-1][1])}"
@@ -193,6 +193,10 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
         service.request_stop()
         worker.join(timeout=30)
     _summary(root, store_path, echo)
+
+
+def _fed(alive: Callable[[], bool], store_path: Path, count: int) -> bool:
+    return alive() and _stored(store_path) >= count
 
 
 def _file_feeder(root: Path) -> Callable[[list[tuple[str, float, float]]], None]:
@@ -250,6 +254,27 @@ def _stale_alerts(db: Path) -> int:
         conn.close()
 
 
+def command_prefix(
+    argv0: str, *, which: Callable[[str], str | None] = shutil.which, python: str = sys.executable
+) -> str:
+    """How to run limitwatch again from the user's shell, as this process was run.
+
+    The README installs into a virtual environment without activating it, so a bare
+    ``limitwatch`` is often not on PATH: name the script by its path unless PATH finds the same
+    file, and fall back to ``python -m limitwatch`` with this interpreter's path.
+    """
+    script = Path(argv0) if Path(argv0).name.startswith("limitwatch") else None
+    if script is None or not script.is_file():
+        beside = Path(python).with_name("limitwatch")
+        script = beside if beside.is_file() else None
+    if script is None:
+        return f"{shlex.quote(python)} -m limitwatch"
+    found = which("limitwatch")
+    if found is not None and Path(found).resolve() == script.resolve():
+        return "limitwatch"
+    return shlex.quote(str(script.absolute()))
+
+
 def _wait_for(check: Callable[[], bool], timeout: float, what: str) -> None:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
@@ -277,9 +302,8 @@ def _summary(root: Path, db: Path, echo: Callable[[str], None]) -> None:
     quiet = sorted({s.stream for s in STREAMS} - {r[0] for r in rows})
     for stream in quiet:
         echo(f"  {stream:24} no alert (common-cause noise only)")
-    db_opt = f"--db {db}"
-    exe = Path(sys.argv[0]).name if sys.argv and sys.argv[0] else "limitwatch"
-    exe = "limitwatch" if exe in {"", "-c", "__main__.py"} else exe
+    db_opt = f"--db {shlex.quote(str(db))}"
+    exe = command_prefix(sys.argv[0] if sys.argv else "")
     echo("")
     echo(f"Everything is in {root}")
     echo("Next, try:")
@@ -287,5 +311,5 @@ def _summary(root: Path, db: Path, echo: Callable[[str], None]) -> None:
     echo(f"  {exe} ack 1 --note 'checked the sealing jaw' {db_opt}")
     echo(f"  {exe} log 1 {db_opt}")
     echo(f"  {exe} streams {db_opt}")
-    echo(f"  {exe} chart pack-2/downtime -o {root / 'pack-2.png'} {db_opt}")
-    echo(f"  {exe} report --out {root / 'report'} {db_opt}")
+    echo(f"  {exe} chart pack-2/downtime -o {shlex.quote(str(root / 'pack-2.png'))} {db_opt}")
+    echo(f"  {exe} report --out {shlex.quote(str(root / 'report'))} {db_opt}")

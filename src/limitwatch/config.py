@@ -1157,9 +1157,11 @@ class Config(_Section):
             )
         if self.routes:
             used = {n for r in self.routes for n in (*r.notifiers, *r.escalate_to)}
-            for i, entry in enumerate(self.notifiers):
-                if entry.get("name") not in used:
-                    out.append(Problem(f"notifiers[{i}]", f"{entry.get('name')!r} is in no route"))
+            for i, notifier in enumerate(self.notifiers):
+                if notifier.get("name") not in used:
+                    out.append(
+                        Problem(f"notifiers[{i}]", f"{notifier.get('name')!r} is in no route")
+                    )
         elif self.notifiers:
             out.append(
                 Problem("routes", "no routes: every notifier gets every notice but escalations")

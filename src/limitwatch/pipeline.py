@@ -400,9 +400,12 @@ class Pipeline:
             self._apply_alone(item, now, result)
         offsets = {source: o for source, o in (file_offsets or {}).items() if o}
         if offsets:
-            self._commit_or_break(
-                lambda: [self.store.save_file_offsets(s, o, now=now) for s, o in offsets.items()]
-            )
+
+            def save() -> None:
+                for source, offset in offsets.items():
+                    self.store.save_file_offsets(source, offset, now=now)
+
+            self._commit_or_break(save)
         return result
 
     def _apply_alone(self, item: Parsed, now: float, result: BatchResult) -> None:

@@ -28,6 +28,7 @@ Anything still queued but unacknowledged stays with the broker for the next star
 
 from __future__ import annotations
 
+import functools
 import logging
 import queue
 import signal
@@ -183,7 +184,7 @@ class Service:
         self.metrics.worker_last_round.set_function(self._since_last_round)
         for name in self.stream_cap.limits:
             self.metrics.source_streams.labels(name).set_function(
-                lambda name=name: float(self.stream_cap.count(name))
+                functools.partial(self._streams_fed, name)
             )
         if cfg.service.metrics_listen:
             self.status = StatusServer(cfg.service.metrics_listen, self.metrics, self.health)
@@ -461,6 +462,9 @@ class Service:
         if result.queued and self.outbox is not None:
             self.outbox.wake()
         return result
+
+    def _streams_fed(self, source: str) -> float:
+        return float(self.stream_cap.count(source))
 
     def _run_job_guarded(self, job: Job) -> None:
         """Run one job; a job's own failure is logged and the next run tries again, so a bug

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
-from limitwatch.ingest.payload import PayloadError, parse_time_field, parse_value
+from limitwatch.ingest.payload import PayloadError, TimeFormat, parse_time_field, parse_value
 from limitwatch.ingest.timeparse import TimeUnit
 
 
@@ -104,9 +104,9 @@ def read_rows(
                 ) from None
             if time is not None:
                 time_text = row[position["--time"]].strip()
-                fmt = "epoch_ms" if time_unit == "ms" else "auto"
+                fmt: TimeFormat = "epoch_ms" if time_unit == "ms" else "auto"
                 try:
-                    moment = parse_time_field(time_text, fmt, "time")
+                    moment = parse_time_field(time_text, fmt, "time", history=True)
                 except PayloadError as exc:
                     raise InputFileError(
                         f"{path}, line {line}, column {time!r}: {exc.message}"

@@ -133,7 +133,11 @@ class MqttSource:
             )
         if s.status_topic:
             client.will_set(s.status_topic, "offline", qos=1, retain=True)
-        client.reconnect_delay_set(min_delay=s.reconnect_min_s, max_delay=s.reconnect_max_s)
+        # paho's hint says int, but it sleeps for these seconds and takes a float as well
+        client.reconnect_delay_set(
+            min_delay=s.reconnect_min_s,  # type: ignore[arg-type]
+            max_delay=s.reconnect_max_s,  # type: ignore[arg-type]
+        )
         client.on_connect = self._on_connect
         client.on_disconnect = self._on_disconnect
         client.on_message = self._on_message

@@ -233,7 +233,7 @@ class MqttProcess:
             while True:
                 for item in up.recv():
                     if type(item) is tuple:  # an Arrival
-                        put(Delivery(name, *item, epoch))
+                        put(Delivery._make((name, *item, epoch)))
                     else:
                         self._apply(item)
                         if item.closed:

@@ -228,7 +228,12 @@ def _value(raw: Any, what: str) -> float:
     return number
 
 
-def _time(raw: Any, fmt: TimeFormat, what: str) -> float:
+EARLIEST_HISTORY = -62_135_596_800.0
+"""Epoch seconds of 0001-01-01T00:00:00Z: the earliest time the offline commands take from a
+recorded file (the Nile's flows start in 1871); live readings start at 1970."""
+
+
+def _time(raw: Any, fmt: TimeFormat, what: str, earliest: float = 0.0) -> float:
     if isinstance(raw, bool) or raw is None or isinstance(raw, dict | list):
         raise PayloadError("bad-time", f"{what} {_show(raw)} is not a time stamp")
     is_number = isinstance(raw, int | float) or (
@@ -253,14 +258,15 @@ def _time(raw: Any, fmt: TimeFormat, what: str) -> float:
             seconds = parse_time(raw)
     except (TimeFormatError, OverflowError) as exc:
         raise PayloadError("bad-time", f"{what}: {exc}") from None
-    if not 0.0 <= seconds < LATEST_TIME:
+    if not earliest <= seconds < LATEST_TIME:
         hint = (
             "; it looks like milliseconds: set time_format = 'epoch_ms'"
             if fmt != "epoch_ms" and LATEST_TIME <= seconds < LATEST_TIME * 1000.0
             else ""
         )
+        first = "1970" if earliest >= 0.0 else "1"
         raise PayloadError(
-            "bad-time", f"{what} {_show(raw)} lies outside the years 1970 to 9999{hint}"
+            "bad-time", f"{what} {_show(raw)} lies outside the years {first} to 9999{hint}"
         )
     return seconds
 
@@ -596,6 +602,7 @@ def parse_value(raw: Any, what: str) -> float:
     return _value(raw, what)
 
 
-def parse_time_field(raw: Any, fmt: TimeFormat, what: str) -> float:
-    """A time stamp by the service's rules (``time_format`` and the years 1970 to 9999)."""
-    return _time(raw, fmt, what)
+def parse_time_field(raw: Any, fmt: TimeFormat, what: str, *, history: bool = False) -> float:
+    """A time stamp by the service's rules (``time_format`` and the years 1970 to 9999);
+    ``history`` lets a recorded file reach back before 1970 (the offline commands)."""
+    return _time(raw, fmt, what, EARLIEST_HISTORY if history else 0.0)

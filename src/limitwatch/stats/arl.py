@@ -397,8 +397,8 @@ def _zone_automaton(specs: tuple[RuleSpec, ...]) -> _ZoneAutomaton:
             relabel[lab] = nxt_label
             nxt_label += 1
     merged = np.full((nxt_label, full.shape[1]), -1, dtype=np.int64)
-    for state, lab in enumerate(labels):
-        row = full[state]
+    for raw, lab in enumerate(labels):
+        row = full[raw]
         merged[relabel[lab]] = np.where(row >= 0, relabel[labels[np.maximum(row, 0)]], -1)
     return _ZoneAutomaton(tuple(points), merged)
 
@@ -460,9 +460,9 @@ def _mr_chain(
     inner = [p for p in auto.points if -k <= p <= k]
     cuts = set(inner)
     for p in inner:  # where |x - y| <= c starts or stops cutting a zone interval
-        for q in (p - c, p + c):
-            if -k < q < k:
-                cuts.add(q)
+        for cut in (p - c, p + c):
+            if -k < cut < k:
+                cuts.add(cut)
     cuts_sorted = sorted(cuts)
     g_nodes, _ = np.polynomial.legendre.leggauss(nodes_per_piece)
     pieces: list[_Piece] = []

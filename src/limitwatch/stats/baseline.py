@@ -355,7 +355,7 @@ def _opt_float(v: Any) -> float | None:
     return None if v is None else float(v)
 
 
-def _check_method(method: str) -> None:
+def _check_method(method: object) -> None:
     if method not in get_args(Method):
         raise BaselineError(f"method must be 'mean' or 'median', got {method!r}")
 

@@ -65,7 +65,7 @@ from types import MappingProxyType
 from typing import Any, ClassVar
 
 from limitwatch.stats.constants import MR_UCL_SIGMA
-from limitwatch.stats.signal import Chart, Detector, Signal
+from limitwatch.stats.signal import Chart, Detector, Side, Signal
 from limitwatch.stats.smoothing import SMOOTHERS, Cusum, Ewma
 
 __all__ = [
@@ -144,6 +144,9 @@ class _Rule:
     _params: ClassVar[tuple[str, ...]] = ()
     _state: ClassVar[tuple[str, ...]] = ()
 
+    def update(self, index: int, value: float) -> Signal | None:
+        raise NotImplementedError  # every rule defines its own
+
     def reset(self) -> None:
         for name in self._state:
             setattr(self, name, None if name == "_last" else 0)
@@ -214,7 +217,8 @@ class BeyondLimits(_Rule):
         if value > self.k or value < -self.k:
             if not _isfinite(value):
                 _refuse(self.rule, None, index, value)
-            side, bound = ("upper", self.k) if value > 0.0 else ("lower", -self.k)
+            side: Side = "upper" if value > 0.0 else "lower"
+            bound = self.k if value > 0.0 else -self.k
             return Signal(self.rule, "x", side, index, (index,), value, bound)
         if value != value:
             _refuse(self.rule, None, index, value)
@@ -229,6 +233,9 @@ class _CountInWindow(_Rule):
     """
 
     __slots__ = ("_down", "_full", "_last", "_up", "boundary", "count", "window")
+    _down: int
+    _last: int | None
+    _up: int
     _params = ("count", "window", "boundary")
     _state = ("_up", "_down", "_last")
 
@@ -248,6 +255,7 @@ class _CountInWindow(_Rule):
         self._last = index
         up = ((self._up << 1) | (value > self.boundary)) & self._full
         down = ((self._down << 1) | (value < -self.boundary)) & self._full
+        side: Side
         if up.bit_count() >= self.count:
             side, mask = "upper", up
         elif down.bit_count() >= self.count:
@@ -326,6 +334,8 @@ class RunOneSide(_Rule):
     """
 
     __slots__ = ("_last", "_run", "length")
+    _last: int | None
+    _run: int
     rule = "run-one-side"
     _params = ("length",)
     _state = ("_run", "_last")
@@ -348,7 +358,7 @@ class RunOneSide(_Rule):
             run = 0
         if run >= self.length or -run >= self.length:
             self._run = 0
-            side = "upper" if run > 0 else "lower"
+            side: Side = "upper" if run > 0 else "lower"
             return Signal(
                 self.rule, "x", side, index, tuple(range(index - self.length + 1, index + 1))
             )
@@ -375,6 +385,9 @@ class Trend(_Rule):
     """
 
     __slots__ = ("_last", "_prev", "_run", "length")
+    _last: int | None
+    _prev: float | None
+    _run: int
     rule = "trend"
     _params = ("length",)
     _state = ("_prev", "_run", "_last")
@@ -400,7 +413,7 @@ class Trend(_Rule):
             run = run - 1 if run < 0 else -2
         if run >= self.length or -run >= self.length:
             self._prev, self._run = None, 0
-            side = "upper" if run > 0 else "lower"
+            side: Side = "upper" if run > 0 else "lower"
             return Signal(
                 self.rule, "x", side, index, tuple(range(index - self.length + 1, index + 1))
             )
@@ -425,6 +438,10 @@ class Alternating(_Rule):
     """
 
     __slots__ = ("_last", "_len", "_prev", "_step", "length")
+    _last: int | None
+    _len: int
+    _prev: float | None
+    _step: int
     rule = "alternating"
     _params = ("length",)
     _state = ("_prev", "_step", "_len", "_last")
@@ -474,6 +491,8 @@ class HuggingCenter(_Rule):
     """
 
     __slots__ = ("_last", "_len", "boundary", "length")
+    _last: int | None
+    _len: int
     rule = "hugging-center"
     _params = ("length", "boundary")
     _state = ("_len", "_last")
@@ -514,6 +533,8 @@ class AvoidingCenter(_Rule):
     """
 
     __slots__ = ("_last", "_len", "boundary", "length")
+    _last: int | None
+    _len: int
     rule = "avoiding-center"
     _params = ("length", "boundary")
     _state = ("_len", "_last")
@@ -613,12 +634,14 @@ class RuleSpec:
 
     def build(self) -> Detector:
         """A fresh detector; every stream gets its own."""
-        return DETECTORS[self.rule](**dict(self.params))
+        make: Callable[..., Detector] = DETECTORS[self.rule]  # parameters checked when parsed
+        return make(**dict(self.params))
 
     def maker(self) -> Callable[[], Detector]:
         """:meth:`build` ready-made, for callers that build the same detector many times (a
         restart builds one per stream): the parameters are unpacked once."""
-        return partial(DETECTORS[self.rule], **dict(self.params))
+        make: Callable[..., Detector] = DETECTORS[self.rule]
+        return partial(make, **dict(self.params))
 
     def __str__(self) -> str:
         if not self.params:

@@ -9,7 +9,7 @@ baseline and the same detector object serves any stream. The engine turns a dete
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Literal, Protocol, runtime_checkable
+from typing import Any, ClassVar, Literal, Protocol, runtime_checkable
 
 Chart = Literal["x", "mr"]
 Side = Literal["upper", "lower", "both"]
@@ -43,8 +43,8 @@ class Detector(Protocol):
     which ``from_snapshot`` rebuilds an identical detector (a checkpoint can hold it).
     """
 
-    rule: str
-    chart: Chart
+    rule: ClassVar[str]
+    chart: ClassVar[Chart]
 
     def update(self, index: int, value: float) -> Signal | None: ...
 

@@ -36,7 +36,7 @@ import math
 from collections.abc import Sequence
 from typing import Any, ClassVar
 
-from limitwatch.stats.signal import Chart, Signal
+from limitwatch.stats.signal import Chart, Side, Signal
 
 _isfinite = math.isfinite
 _EWMA_WEIGHT_SHARE = 0.99
@@ -163,6 +163,9 @@ class Ewma:
         "exact_startup",
         "lam",
     )
+    _last: int | None
+    _n: int
+    _w: float
     rule: ClassVar[str] = "ewma"
     chart: ClassVar[Chart] = "x"
 
@@ -197,7 +200,8 @@ class Ewma:
             limit = self.L * math.sqrt(self._var * (1.0 - self._keep ** (2 * n)))
         if w > limit or w < -limit:
             self._w, self._n = 0.0, 0
-            side, bound = ("upper", limit) if w > 0 else ("lower", -limit)
+            side: Side = "upper" if w > 0 else "lower"
+            bound = limit if w > 0 else -limit
             first = index - min(n, self._span) + 1
             return Signal(self.rule, "x", side, index, tuple(range(first, index + 1)), w, bound)
         self._w, self._n = w, n
@@ -261,6 +265,11 @@ class Cusum:
     """
 
     __slots__ = ("_down", "_down_len", "_last", "_up", "_up_len", "h", "headstart", "k")
+    _down: float
+    _down_len: int
+    _last: int | None
+    _up: float
+    _up_len: int
     rule: ClassVar[str] = "cusum"
     chart: ClassVar[Chart] = "x"
 
@@ -289,7 +298,8 @@ class Cusum:
             down, down_len = 0.0, 0
         if up > self.h or down > self.h:
             self._restart()
-            side, stat, n = ("upper", up, up_len) if up > self.h else ("lower", down, down_len)
+            side: Side = "upper" if up > self.h else "lower"
+            stat, n = (up, up_len) if up > self.h else (down, down_len)
             return Signal(
                 self.rule, "x", side, index, tuple(range(index - n + 1, index + 1)), stat, self.h
             )
