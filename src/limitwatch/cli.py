@@ -554,6 +554,7 @@ from limitwatch import (  # noqa: E402,F401
     cli_bench,
     cli_charts,
     cli_config,
+    cli_deadletters,
     cli_demo,
     cli_operator,
     cli_plan,

@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.engine import MonitorSettings, StreamMonitor
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
@@ -213,7 +214,7 @@ class Pipeline:
             outcome = monitor.update(item.reading)
             if not outcome.accepted:
                 reason = outcome.reason or "refused"
-                detail = f"stream {item.reading.stream!r} at {item.reading.time}"
+                detail = _where(item.reading)
                 dead_rows.append((item.source, item.raw, _reason(reason, detail)))
                 result.dead.append((item.source, reason))
                 continue
@@ -326,6 +327,16 @@ class Pipeline:
                 )
             )
         return out
+
+
+def _where(reading: Reading) -> str:
+    """The refused reading, named as a person looks for it: stream, ISO 8601 time, sequence."""
+    seq = "" if reading.seq is None else f", seq {reading.seq}"
+    try:
+        when = format_time(reading.time)
+    except (OverflowError, OSError, ValueError):
+        when = repr(reading.time)
+    return f"stream {reading.stream!r} at {when}{seq}, value {reading.value!r}"
 
 
 def _reason(code: str, detail: str) -> str:

@@ -44,6 +44,7 @@ from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline
+from limitwatch.refusals import RefusalLog
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
@@ -71,6 +72,7 @@ class Service:
         # Queue's size bound or task tracking.
         self.intake: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self.metrics = Metrics()
+        self.refusals = RefusalLog()
         self._stopping = threading.Event()
         self.mqtt: dict[str, MqttProcess] = {}
         self._mqtt_parsers: dict[str, SourceParser] = {}
@@ -130,8 +132,14 @@ class Service:
             if isinstance(source, MqttSourceConfig):
                 self._start_mqtt(source)
             elif isinstance(source, FileSourceConfig):
+                columns = {"value": source.value, "time": source.time}
+                columns |= {"stream": source.stream, "seq": source.seq}
                 self.files[source.name] = FileSource(
-                    source.name, source.glob, source.format, source.start_at
+                    source.name,
+                    source.glob,
+                    source.format,
+                    source.start_at,
+                    columns=columns if source.format == "csv" else None,
                 )
                 self._row_parsers[source.name] = RowParser(source)
                 self._offsets[source.name] = self.store.file_offsets(source.name)
@@ -256,6 +264,7 @@ class Service:
         next start restores without applying any reading again."""
         while not self._stopping.is_set():
             self._heartbeat = time.monotonic()
+            self.refusals.flush(self.clock())
             batch, jobs = self._take()
             if batch:
                 self._process_deliveries(batch)
@@ -309,7 +318,7 @@ class Service:
         try:
             reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, d.received_at)
         except PayloadError as exc:
-            return Parsed(d.source, _envelope(d), error=exc.reason, detail=str(exc))
+            return Parsed(d.source, _envelope(d), error=exc.reason, detail=exc.message)
         return Parsed(d.source, _envelope(d), reading=reading)
 
     def _process_deliveries(self, batch: list[Delivery]) -> None:
@@ -334,8 +343,9 @@ class Service:
         m.batch_seconds.observe(time.perf_counter() - started)
         m.batch_size.observe(len(items))
         m.readings.labels("accepted").inc(len(result.outcomes))
-        for _, reason in result.dead:
+        for source, reason in result.dead:
             m.dead_letters.labels(reason).inc()
+            self.refusals.note(source, reason, now)
         for s in result.signals:
             m.signals.labels(s.rule).inc()
         m.alerts_opened.inc(result.opened)
@@ -404,7 +414,7 @@ class Service:
         return used
 
     def _parse_line(self, line: FileLine, parser: RowParser) -> Parsed:
-        where = f"{line.path} at byte {line.end_offset - len(line.raw)}"
+        where = f"{line.path}, line {line.line}" if line.line else line.path
         if line.record is None:
             return Parsed(
                 line.source, line.raw, error="unreadable-line", detail=f"{where}: {line.error}"
@@ -412,7 +422,7 @@ class Service:
         try:
             reading = parser.parse(line.record, self.clock())
         except PayloadError as exc:
-            return Parsed(line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}")
+            return Parsed(line.source, line.raw, error=exc.reason, detail=f"{where}: {exc.message}")
         return Parsed(line.source, line.raw, reading=reading)
 
     # -- health ---
