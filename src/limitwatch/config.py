@@ -282,6 +282,9 @@ class ServiceSection(_Section):
     stall_after: PositiveDuration = 60.0
     """``/health`` answers 503 when the worker has not come round its loop for this long (it
     does at least twice a second when idle)."""
+    notifier_failing_after: PositiveDuration = 600.0
+    """``/health`` turns degraded (503) when a notifier's deliveries have failed, without one
+    success, for longer than this."""
 
     @field_validator("metrics_listen")
     @classmethod

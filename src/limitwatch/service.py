@@ -33,6 +33,7 @@ from typing import Any
 from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED, JobExecutionEvent
 from apscheduler.schedulers.background import BackgroundScheduler
 
+from limitwatch.alerts.delivery_watch import DeliveryCollector
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
 from limitwatch.config import Config, FileSourceConfig, MqttSourceConfig
@@ -41,6 +42,7 @@ from limitwatch.ingest.files import FileLine, FileSource
 from limitwatch.ingest.mqtt import Delivery, MqttSettings
 from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline
@@ -126,6 +128,7 @@ class Service:
         log.info("restored %d streams from %s", restored, cfg.store.path)
 
         self.outbox = OutboxWorker.from_config(cfg, clock=self.clock)
+        self.metrics.registry.register(DeliveryCollector(self.outbox.watch, self.clock))
         self.outbox.start()
 
         for source in cfg.sources:
@@ -436,7 +439,12 @@ class Service:
         broken = self.pipeline is not None and self.pipeline.broken
         quiet = None if self._heartbeat is None else round(self._since_last_round(), 3)
         stalled = quiet is not None and quiet > self.config.service.stall_after
-        ok = all(sources.values()) and not broken and not stalled
+        now = self.clock()
+        watch = self.outbox.watch if self.outbox is not None else None
+        notifiers = {} if watch is None else watch.health(now)
+        after = self.config.service.notifier_failing_after
+        failing = [] if watch is None else watch.failing_longer_than(after, now)
+        ok = all(sources.values()) and not broken and not stalled and not failing
         return {
             "status": "ok" if ok else "degraded",
             "worker": "stalled" if stalled else "failed" if broken else "running",
@@ -445,7 +453,9 @@ class Service:
             "errors": {n: c.last_error for n, c in self.mqtt.items() if c.last_error},
             "queue_depth": self.intake.qsize(),
             "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
-            "last_commit": self.last_commit,
+            "last_commit": None if self.last_commit is None else format_time(self.last_commit),
+            "notifiers": notifiers,
+            "notifiers_failing_too_long": failing,
         }
 
 
