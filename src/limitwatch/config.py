@@ -568,6 +568,10 @@ class MqttSourceConfig(_Section):
     max_payload_bytes: int = Field(65536, ge=1, le=268_435_455)
     reconnect_min_s: int = Field(1, ge=1, le=3600)
     reconnect_max_s: int = Field(60, ge=1, le=86400)
+    reorder_within: PositiveDuration | None = None
+    """Hold each reading this long and apply a stream's held readings in sequence (else time)
+    order: a reading overtaken by up to this much is applied in its place instead of being
+    refused as ``late``. Off by default: it delays every reading of the source by this much."""
     topics: list[MqttTopic] = Field(min_length=1)
 
     @model_validator(mode="before")

@@ -214,6 +214,8 @@ class Pipeline:
             outcome = monitor.update(item.reading)
             if not outcome.accepted:
                 reason = outcome.reason or "refused"
+                if reason in _ORDER_REASONS:
+                    reason = self._refused_because(item.reading, monitor, reason, result)
                 detail = _where(item.reading)
                 dead_rows.append((item.source, item.raw, _reason(reason, detail)))
                 result.dead.append((item.source, reason))
@@ -246,6 +248,27 @@ class Pipeline:
         result.opened = report.opened
         result.queued = report.queued
         return result
+
+    def _refused_because(
+        self, reading: Reading, monitor: StreamMonitor, said: str, batch: BatchResult
+    ) -> str:
+        """The true name of a reading the monitor refused for its order. The monitor keeps only
+        its stream's last reading, so all it knows is "not newer"; the store (and this batch)
+        knows whether the reading was ever applied. ``duplicate``: it was, this is a repeat.
+        ``late``: it never was, and came after a newer one (a gateway that sends n+1 before n
+        on reconnecting) -- a reading lost to the chart, to be counted apart from repeats.
+        ``out-of-order`` stays for a reading whose sequence number is newer but whose time is
+        not, or one at the time of the last reading with another value."""
+        if any(_same(o.reading, reading) for o in batch.outcomes) or self.store.has_reading(
+            reading
+        ):
+            return "duplicate"
+        if said == "duplicate":  # an older sequence number (or a pruned repeat)
+            return "late"
+        last = monitor.last_time
+        if reading.seq is None and last is not None and reading.time < last:
+            return "late"
+        return said
 
     def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:
         baseline = monitor.baseline
@@ -327,6 +350,15 @@ class Pipeline:
                 )
             )
         return out
+
+
+_ORDER_REASONS = frozenset({"duplicate", "out-of-order"})
+
+
+def _same(a: Reading, b: Reading) -> bool:
+    if a.stream != b.stream:
+        return False
+    return (a.time == b.time and a.value == b.value) or (a.seq is not None and a.seq == b.seq)
 
 
 def _where(reading: Reading) -> str:

@@ -26,6 +26,7 @@ import queue
 import signal
 import threading
 import time
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -42,6 +43,7 @@ from limitwatch.ingest.files import FileLine, FileSource
 from limitwatch.ingest.mqtt import Delivery, MqttSettings
 from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.ingest.reorder import ReorderBuffer
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
@@ -81,6 +83,12 @@ class Service:
         self.files: dict[str, FileSource] = {}
         self._row_parsers: dict[str, RowParser] = {}
         self._offsets: dict[str, dict[str, int]] = {}
+        self._reorder: dict[str, ReorderBuffer] = {}
+        """MQTT sources with ``reorder_within``: their readings wait here, in order."""
+        self._unacked: dict[str, deque[list[Any]]] = {}
+        """Per source with a reorder window, its deliveries in arrival order as [delivery,
+        committed]: acknowledgements go in arrival order, so a held reading holds back the
+        acknowledgement of every later one until it is committed too."""
         self.last_commit: float | None = None
         self._heartbeat: float | None = None
         """``time.monotonic()`` when the worker last came round its loop or committed a batch
@@ -185,6 +193,9 @@ class Service:
             reconnect_max_s=source.reconnect_max_s,
         )
         self._mqtt_parsers[source.name] = SourceParser(source)
+        if source.reorder_within is not None:
+            self._reorder[source.name] = ReorderBuffer(source.reorder_within)
+            self._unacked[source.name] = deque()
         client = MqttProcess(settings, self.intake)
         self.mqtt[source.name] = client
         # Read when /metrics is scraped, so the figures are current whether or not anyone
@@ -269,7 +280,7 @@ class Service:
             self._heartbeat = time.monotonic()
             self.refusals.flush(self.clock())
             batch, jobs = self._take()
-            if batch:
+            if batch or self._holding():
                 self._process_deliveries(batch)
             for job in jobs:
                 if job is _STOP:
@@ -277,6 +288,8 @@ class Service:
                 self._run_job(job)
         log.info("stopping: the last batch is committed and acknowledged")
         assert self.pipeline is not None
+        if not self.pipeline.broken and self._holding():
+            self._process_deliveries([], flush=True)  # held readings: commit and acknowledge
         if not self.pipeline.broken:
             saved = self.pipeline.checkpoint_all(self.clock())
             log.info("checkpoints of %d streams written", saved)
@@ -324,14 +337,59 @@ class Service:
             return Parsed(d.source, _envelope(d), error=exc.reason, detail=exc.message)
         return Parsed(d.source, _envelope(d), reading=reading)
 
-    def _process_deliveries(self, batch: list[Delivery]) -> None:
-        items = [self._parse_delivery(d) for d in batch]
-        self._commit(items)
-        by_source: dict[str, list[Delivery]] = {}
-        for d in batch:  # arrival order, only after the commit
-            by_source.setdefault(d.source, []).append(d)
-        for source, deliveries in by_source.items():
+    def _holding(self) -> bool:
+        return any(len(buffer) for buffer in self._reorder.values())
+
+    def _process_deliveries(self, batch: list[Delivery], *, flush: bool = False) -> None:
+        if not self._reorder:
+            items = [self._parse_delivery(d) for d in batch]
+            self._commit(items)
+            by_source: dict[str, list[Delivery]] = {}
+            for d in batch:  # arrival order, only after the commit
+                by_source.setdefault(d.source, []).append(d)
+            for source, deliveries in by_source.items():
+                self.mqtt[source].ack(deliveries)
+            return
+        self._process_reordered(batch, flush)
+
+    def _process_reordered(self, batch: list[Delivery], flush: bool) -> None:
+        """As :meth:`_process_deliveries`, with the readings of sources that have a reorder
+        window held back until their time is up (see :mod:`limitwatch.ingest.reorder`)."""
+        now = self.clock()
+        items: list[Parsed] = []
+        direct: dict[str, list[Delivery]] = {}
+        committed: list[list[Any]] = []
+        for d in batch:
+            parsed = self._parse_delivery(d)
+            buffer = self._reorder.get(d.source)
+            if buffer is None:
+                items.append(parsed)
+                direct.setdefault(d.source, []).append(d)
+                continue
+            entry = [d, False]
+            self._unacked[d.source].append(entry)
+            if parsed.reading is None:  # a dead letter has no place in the order
+                items.append(parsed)
+                committed.append(entry)
+            else:
+                buffer.hold(parsed.reading, (parsed, entry), d.received_at)
+        for buffer in self._reorder.values():
+            if len(buffer):
+                for _, (parsed, entry) in buffer.release(now, everything=flush):
+                    items.append(parsed)
+                    committed.append(entry)
+        if items:
+            self._commit(items)
+        for entry in committed:  # only after the commit
+            entry[1] = True
+        for source, deliveries in direct.items():
             self.mqtt[source].ack(deliveries)
+        for source, waiting in self._unacked.items():
+            ready = []
+            while waiting and waiting[0][1]:
+                ready.append(waiting.popleft()[0])
+            if ready:
+                self.mqtt[source].ack(ready)
 
     def _commit(
         self, items: list[Parsed], offsets: dict[str, dict[str, int]] | None = None
