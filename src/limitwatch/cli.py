@@ -378,8 +378,14 @@ def replay_cmd(
                 f"warning: {stream!r}: no AR(1) model ({problem}); its readings are left out",
                 err=True,
             )
+    judged: dict[str, int] = {}
+    learning: dict[str, Any] = {}
     for step in replay(rows if feed is None else feed.rows(rows), engine_settings):
         outcome = step.outcome
+        if outcome.accepted and outcome.phase == "monitoring":
+            judged[step.row.stream] = judged.get(step.row.stream, 0) + 1
+        else:
+            learning.setdefault(step.row.stream, step.monitor)
         reading = step.row.value if feed is None else feed.raw[step.row.line]
         if not outcome.accepted:
             refused += 1
@@ -436,8 +442,34 @@ def replay_cmd(
                 signals.append(record)
     if feed is not None:
         refused += feed.refused
+    unjudged = _never_judged(learning, judged, baseline_first)
+    for line in unjudged:
+        click.echo(f"warning: {line}", err=True)
+    if not judged:
+        raise InputProblem(
+            f"Nothing was judged in {file}: no reading came after its stream's learning "
+            f"phase, so none was tested against limits (the first --baseline-first "
+            f"{baseline_first} readings of a stream fit its baseline). Give more readings or a "
+            "smaller --baseline-first."
+        )
     if fmt == "table":
         _print_signals(signals, file, refused, residuals=feed is not None)
+
+
+def _never_judged(monitors: dict[str, Any], judged: dict[str, int], needed: int) -> list[str]:
+    """Why each stream that never left learning was never judged, one line each."""
+    out = []
+    for stream, monitor in monitors.items():
+        if stream in judged or monitor.phase != "learning":
+            continue
+        why = (
+            f"its {monitor.count} accepted reading(s) could not fit a baseline "
+            f"({monitor.last_fit_error})"
+            if monitor.last_fit_error
+            else f"it has {monitor.count} accepted reading(s); {needed} fit the baseline first"
+        )
+        out.append(f"stream {stream!r} was never judged: {why}")
+    return out
 
 
 class _ResidualFeed:
