@@ -729,6 +729,7 @@ def stream_record(
         "ucl": None if limits is None else limits.ucl,
         "open_alerts": sum(a.state == "open" for a in live),
         "acknowledged_alerts": sum(a.state == "acknowledged" for a in live),
+        "live_alerts": len(live),
         "shelved_until": iso(max(whole)) if whole else None,
         "shelves": [
             {"rule": s.rule, "until": iso(s.until), "reason": s.reason, "by": s.shelved_by}
@@ -803,13 +804,13 @@ def streams_cmd(
 
     In the table, 'zone' is the last reading's place against the current baseline (zone-c is
     within one sigma of the center line, zone-b within two, zone-a within three; above-ucl and
-    below-lcl are beyond the limits), 'open' counts unacknowledged open alerts, 'shelved'
-    what is shelved (all rules or which) and for how much longer. With --config, 'false/wk'
+    below-lcl are beyond the limits), 'live' counts the alerts not yet cleared (open or
+    acknowledged: the report's 'live alerts' too), 'shelved' what is shelved (all rules or which) and for how much longer. With --config, 'false/wk'
     is the false alarms a week expected from the stream's rules at its cadence as the config
     gives them ('-' when it gives no cadence; the planner's figure, which assumes
     independent, normal readings). With --format json the output is a list of objects with
     the keys stream, last_value, last_time, zone, phase, baseline_version, center, lcl, ucl,
-    open_alerts, acknowledged_alerts, shelved_until (a shelf of every rule), shelves (each
+    open_alerts, acknowledged_alerts, live_alerts (the two together), shelved_until (a shelf of every rule), shelves (each
     with rule, until, reason, by) and false_alarms_per_week (null when unknown).
 
     \b
@@ -855,12 +856,12 @@ def streams_cmd(
             rec["zone"] or "-",
             rec["phase"] or "-",
             "-" if rec["baseline_version"] is None else f"v{rec['baseline_version']}",
-            str(rec["open_alerts"]),
+            str(rec["live_alerts"]),
             _shelf_cell(shelves_of.get(rec["stream"], []), now),
         ]
         for rec in records
     ]
-    headers = ["stream", "last", "zone", "phase", "baseline", "open", "shelved"]
+    headers = ["stream", "last", "zone", "phase", "baseline", "live", "shelved"]
     if config_file is not None:
         # Only a config knows rules and cadences; without one the column would be all '-'
         # and cost the stream names ten columns.
