@@ -914,7 +914,12 @@ def _baseline_lines(stored: StoredBaseline) -> list[str]:
     add("method", f"sigma from the {method.get(stored.method, stored.method)}")
     if stored.first_index is not None or stored.first_time is not None:
         span = f"index {_idx(stored.first_index)} to {_idx(stored.last_index)}"
-        add("readings", f"{span}, {iso_s(stored.first_time)} to {iso_s(stored.last_time)}")
+        if stored.first_time is None and stored.last_time is None:
+            add("readings", span)
+        elif stored.first_time is None:  # stored before the first time was recorded
+            add("readings", f"{span}, up to {iso_s(stored.last_time)}")
+        else:
+            add("readings", f"{span}, {iso_s(stored.first_time)} to {iso_s(stored.last_time)}")
     add("excluded", ", ".join(map(str, stored.excluded)) or "none")
     limits = limits_of(stored.numbers)
     if limits is None:
@@ -923,6 +928,10 @@ def _baseline_lines(stored: StoredBaseline) -> list[str]:
     if limits.n:
         add("used", f"{limits.n_used} of {limits.n} readings")
     add("center line", _g(limits.center))
+    mr = f"average {_g(limits.mr_bar)}"
+    if limits.mr_median == limits.mr_median:  # typed-in limits have no median (NaN)
+        mr += f", median {_g(limits.mr_median)}"
+    add("moving range", mr)
     add("sigma", _g(limits.sigma))
     add("limits", f"LCL {_limit(limits.lcl, limits.lower_bound)}, UCL {_limit(limits.ucl, None)}")
     add("MR limit", _g(limits.mr_ucl))

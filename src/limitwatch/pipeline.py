@@ -270,6 +270,15 @@ class Pipeline:
             return "late"
         return said
 
+    def _time_at(self, stream: str, index: int, last_time: float) -> float | None:
+        """The time of the stream's reading at ``index`` (stored in this transaction already,
+        with the batch's readings), for the first reading of a learned baseline."""
+        row = self.store.db.conn.execute(
+            "SELECT time FROM readings WHERE stream = ? AND idx = ? AND time <= ?",
+            (stream, index, last_time),
+        ).fetchone()
+        return None if row is None else float(row[0])
+
     def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:
         baseline = monitor.baseline
         assert baseline is not None and outcome.index is not None
@@ -284,6 +293,7 @@ class Pipeline:
             version=monitor.baseline_version,
             first_index=first,
             last_index=outcome.index,
+            first_time=self._time_at(monitor.stream, first, outcome.reading.time),
             last_time=outcome.reading.time,
             excluded=[first + p for p in baseline.excluded],
         )
