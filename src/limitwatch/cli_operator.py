@@ -805,13 +805,14 @@ def streams_cmd(
     In the table, 'zone' is the last reading's place against the current baseline (zone-c is
     within one sigma of the center line, zone-b within two, zone-a within three; above-ucl and
     below-lcl are beyond the limits), 'live' counts the alerts not yet cleared (open or
-    acknowledged: the report's 'live alerts' too), 'shelved' what is shelved (all rules or which) and for how much longer. With --config, 'false/wk'
-    is the false alarms a week expected from the stream's rules at its cadence as the config
-    gives them ('-' when it gives no cadence; the planner's figure, which assumes
-    independent, normal readings). With --format json the output is a list of objects with
-    the keys stream, last_value, last_time, zone, phase, baseline_version, center, lcl, ucl,
-    open_alerts, acknowledged_alerts, live_alerts (the two together), shelved_until (a shelf of every rule), shelves (each
-    with rule, until, reason, by) and false_alarms_per_week (null when unknown).
+    acknowledged: the report's 'live alerts' too), 'shelved' what is shelved (all rules or
+    which) and for how much longer. With --config, 'false/wk' is the false alarms a week
+    expected from the stream's rules at its cadence as the config gives them ('-' when it gives
+    no cadence; the planner's figure, which assumes independent, normal readings). With --format
+    json the output is a list of objects with the keys stream, last_value, last_time, zone,
+    phase, baseline_version, center, lcl, ucl, open_alerts, acknowledged_alerts, live_alerts
+    (the two together), shelved_until (a shelf of every rule), shelves (each with rule, until,
+    reason, by) and false_alarms_per_week (null when unknown).
 
     \b
     Examples:
