@@ -15,6 +15,7 @@ from typing import Any
 import click
 
 from limitwatch import __version__
+from limitwatch.durations import DurationError, parse_duration
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.csvfile import InputFileError, Row, read_rows
 from limitwatch.ingest.replay import replay
@@ -24,6 +25,25 @@ from limitwatch.stats.rules import UnknownRuleError
 from limitwatch.textout import num, table
 
 FORMATS = click.Choice(["table", "json"])
+
+
+class _SecondsOrDuration(click.ParamType):
+    """``90s``, ``15m``, ``2h`` as the config writes durations, or a plain number of seconds."""
+
+    name = "duration"
+
+    def convert(
+        self, value: Any, param: click.Parameter | None, ctx: click.Context | None
+    ) -> float:
+        if isinstance(value, float):
+            return value
+        try:
+            return parse_duration(str(value))
+        except DurationError as exc:
+            self.fail(str(exc), param, ctx)
+
+
+DURATION = _SecondsOrDuration()
 
 
 class InputProblem(click.ClickException):
@@ -299,8 +319,9 @@ def _ar1_text(ar1: Ar1Fit) -> str:
 @_fit_options
 @click.option(
     "--max-gap",
-    type=float,
-    help="Seconds; a moving range across a longer gap between readings is skipped.",
+    type=DURATION,
+    help="A duration as in the config (90s, 15m, 2h) or plain seconds; a moving range across "
+    "a longer gap between readings is skipped.",
 )
 @click.option(
     "--ar1-residuals",

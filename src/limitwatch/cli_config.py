@@ -42,6 +42,7 @@ from limitwatch.config import (
     check_secrets,
     load_config,
 )
+from limitwatch.config_units import bare_durations_in
 from limitwatch.durations import format_duration
 from limitwatch.planner import StreamPlan, plan_stream, site_false_alarms
 from limitwatch.stats.arl import ArlError
@@ -98,6 +99,7 @@ def check(config_file: str, file_only: bool) -> None:
     for line in expected.lines():
         click.echo(line)
     warnings = [f"warning: {w}" for w in config.warnings()]
+    warnings += [f"warning: {w}" for w in bare_durations_in(config_file)]
     warnings += expected.warnings(config_file, config.budget.false_alarms_per_week)
     if warnings:
         click.echo("")

@@ -180,6 +180,18 @@ def _off_or_duration(value: Any) -> float | None:
     return _positive(parse_duration(value))
 
 
+def _cadences(value: Any) -> Any:
+    """``stale_after`` counts cadences while its neighbours are durations: say so when it is
+    given a duration."""
+    if isinstance(value, str) and re.search(r"[a-z]", value.strip()):
+        raise ValueError(
+            f"{value!r} is a duration, but stale_after counts cadences: a number such as 5 "
+            "means five times the stream's cadence without a reading (with cadence = \"1m\", "
+            "write 10 for ten minutes)"
+        )
+    return value
+
+
 Duration = Annotated[float, BeforeValidator(_duration)]
 PositiveDuration = Annotated[float, BeforeValidator(_duration), AfterValidator(_positive)]
 OffDuration = Annotated[float | None, BeforeValidator(_off_or_duration)]
@@ -348,7 +360,7 @@ class StreamOptions(_Section):
     spec_upper: float | None = None
     max_gap: PositiveDuration | None = None
     cadence: PositiveDuration | None = None
-    stale_after: float = Field(5.0, ge=1)
+    stale_after: Annotated[float, BeforeValidator(_cadences)] = Field(5.0, ge=1)
     severity: Severity = "warning"
     baseline: BaselineInput | None = None
     description: str | None = None
