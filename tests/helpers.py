@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -10,11 +11,21 @@ CLI = Path(sys.executable).with_name("limitwatch")
 
 
 def run_cli(
-    *args: str, cwd: Path | None = None, input: str | None = None
+    *args: str, cwd: Path | None = None, input: str | None = None, columns: int | None = 80
 ) -> subprocess.CompletedProcess[str]:
-    """Run the installed console script, exactly as a user would."""
+    """Run the installed console script, exactly as a user would, with ``$COLUMNS`` set to
+    ``columns`` (as a terminal that wide would) or unset with None (output to a pipe)."""
+    env = {k: v for k, v in os.environ.items() if k != "COLUMNS"}
+    if columns is not None:
+        env["COLUMNS"] = str(columns)
     return subprocess.run(
-        [str(CLI), *args], capture_output=True, text=True, cwd=cwd, input=input, timeout=120
+        [str(CLI), *args],
+        capture_output=True,
+        text=True,
+        cwd=cwd,
+        input=input,
+        timeout=120,
+        env=env,
     )
 
 

@@ -596,7 +596,9 @@ def _print_signals(
         for s in signals
     ]
     values = ["reading", "residual"] if residuals else ["value"]
-    click.echo(table(["stream", "index", "time", *values, "rule", "chart", "side"], rows))
+    headers = ["stream", "index", "time", *values, "rule", "chart", "side"]
+    # Cut names before anything else, and never the time: "2027-0…" tells nothing.
+    click.echo(table(headers, rows, shorten=[0, len(headers) - 3]))
     click.echo(f"{len(signals)} signal(s); {refused} reading(s) refused.")
     if residuals:
         click.echo("Charted: one-step-ahead residuals of each stream's AR(1) model.")
@@ -607,7 +609,6 @@ from limitwatch import (  # noqa: E402,F401
     cli_bench,
     cli_charts,
     cli_config,
-    cli_deadletters,
     cli_demo,
     cli_operator,
     cli_plan,

@@ -72,7 +72,7 @@ from limitwatch.store import (
     StreamRow,
 )
 from limitwatch.store import Baseline as StoredBaseline
-from limitwatch.textout import num, table
+from limitwatch.textout import AUTO, num, output_width, table
 
 DB_ENV = "LIMITWATCH_DB"
 DEFAULT_DB = "limitwatch.db"
@@ -166,17 +166,25 @@ def _cut(text: str, width: int) -> str:
 
 
 def fit_table(
-    headers: Sequence[str], rows: Sequence[Sequence[str]], cuttable: Sequence[int]
+    headers: Sequence[str],
+    rows: Sequence[Sequence[str]],
+    cuttable: Sequence[int],
+    width: int | None = AUTO,
 ) -> str:
-    """:func:`limitwatch.textout.table` within 80 columns, shortening the ``cuttable`` columns
-    (names) in turn, the widest first, so that no one of them loses everything.
+    """:func:`limitwatch.textout.table` within the terminal's width (``width``, by default
+    :func:`~limitwatch.textout.output_width`; never cut when the output is not a terminal),
+    shortening the ``cuttable`` columns (names) in turn, the widest first, so that no one of
+    them loses everything.
 
-    >>> out = fit_table(["a", "b"], [["x" * 50, "y" * 50]], cuttable=[0, 1])
+    >>> out = fit_table(["a", "b"], [["x" * 50, "y" * 50]], cuttable=[0, 1], width=80)
     >>> max(len(line) for line in out.splitlines()), out.splitlines()[2][:5]
     (80, 'xxxxx')
     """
+    width = output_width() if width == AUTO else width
+    if width is None:
+        return table(headers, rows, max_width=None)
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
-    over = sum(widths) + 2 * (len(widths) - 1) - WIDTH
+    over = sum(widths) + 2 * (len(widths) - 1) - width
     while over > 0:
         i = max(cuttable, key=lambda j: widths[j])
         if widths[i] <= max(len(headers[i]), 8):
@@ -187,9 +195,11 @@ def fit_table(
         [_cut(cell, widths[i]) if i in cuttable else cell for i, cell in enumerate(row)]
         for row in rows
     ]
-    text = table(headers, cut_rows, max_width=WIDTH)
+    text = table(headers, cut_rows, max_width=width)
     if any(len(row[i]) > widths[i] for row in rows for i in cuttable):
-        text += "\n(… marks a name shortened to fit 80 columns; --format json shows it whole)"
+        text += (
+            f"\n(… marks a name shortened to fit {width} columns; --format json shows it whole)"
+        )
     return text
 
 
@@ -573,7 +583,7 @@ def _event_table(events: Sequence[AlertEvent]) -> str:
         max([len(headers[1])] + [len(e.kind) for e in events]),
         min(20, max([len(headers[2])] + [len(e.actor) for e in events])),
     ]
-    room = max(24, WIDTH - sum(fixed) - 2 * len(fixed))
+    room = max(24, (output_width() or WIDTH) - sum(fixed) - 2 * len(fixed))
     rows: list[list[str]] = []
     for e in events:
         lines = textwrap.wrap(e.note or "", room, break_on_hyphens=False) or [""]
@@ -1123,3 +1133,8 @@ def baseline_refit(
     click.echo("\n".join(_baseline_lines(stored)))
     if previous is not None:
         click.echo(f"Replaces version {previous.version}, which stays in the history.")
+
+
+# The dead-letters command shares this module's database options; it registers itself on
+# ``main`` when imported, which must come after everything above is defined.
+from limitwatch import cli_deadletters  # noqa: E402,F401
