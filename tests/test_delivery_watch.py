@@ -17,6 +17,7 @@ from prometheus_client import CollectorRegistry, generate_latest
 from limitwatch.alerts.delivery_watch import DeliveryCollector
 from limitwatch.alerts.outbox import OutboxWorker
 from limitwatch.store import Store
+from tests.helpers import run_cli
 from tests.receivers import WebhookReceiver
 from tests.service_harness import ServiceProcess, wait_until
 from tests.test_outbox import T0, enqueue, hook
@@ -128,3 +129,44 @@ notifiers = ["ops-hook"]
     finally:
         assert svc.stop() == 0
     assert svc.logs().count("notifier ops-hook is failing") == 1
+
+
+def test_the_notifications_command_answers_per_notifier(tmp_path) -> None:
+    now = __import__("time").time()
+    db = tmp_path / "lw.db"
+    with (
+        Store.open(db, now=now) as store,
+        WebhookReceiver(statuses=[503, 503]) as down,
+        WebhookReceiver() as up,
+        WebhookReceiver(statuses=[400]) as refusing,
+    ):
+        notifiers = {
+            "ops-hook": hook(down),
+            "pager": hook(up, "pager"),
+            "picky": hook(refusing, "picky"),
+        }
+        worker = OutboxWorker(db, notifiers, rng=random.Random(1))
+        for alert_id in (1, 2):
+            for route in notifiers:
+                enqueue(store, alert_id, route, now=now - 600)
+        worker.deliver_due(now - 300)  # ops-hook fails (503), pager delivers, picky 400 once
+        worker.close()
+    result = run_cli("notifications", "--db", str(db))
+    assert result.returncode == 0, result.stderr
+    lines = {line.split()[0]: line.split() for line in result.stdout.splitlines() if line}
+    # notifier, delivered, waiting, failed tries, given up
+    assert lines["ops-hook"][1:5] == ["0", "2", "2", "0"]  # one 503, one not tried
+    assert lines["pager"][1:5] == ["2", "0", "0", "0"]
+    assert lines["picky"][1:5] == ["1", "0", "1", "1"]  # 400: given up at once; then 200
+    assert "ops-hook: last error:" in result.stdout and "503" in result.stdout
+    data = json.loads(
+        run_cli(
+            "notifications", "--db", str(db), "--state", "given-up", "--format", "json"
+        ).stdout
+    )
+    picky = next(s for s in data["notifiers"] if s["notifier"] == "picky")
+    assert picky["given_up"] == 1 and picky["delivered"] == 1
+    ops = next(s for s in data["notifiers"] if s["notifier"] == "ops-hook")
+    assert ops["oldest_waiting_at"].endswith("Z") and ops["oldest_waiting_age_s"] >= 600
+    assert [n["notifier"] for n in data["notifications"]] == ["picky"]
+    assert data["notifications"][0]["state"] == "given-up"

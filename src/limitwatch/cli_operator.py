@@ -1135,6 +1135,6 @@ def baseline_refit(
         click.echo(f"Replaces version {previous.version}, which stays in the history.")
 
 
-# The dead-letters command shares this module's database options; it registers itself on
-# ``main`` when imported, which must come after everything above is defined.
-from limitwatch import cli_deadletters  # noqa: E402,F401
+# The dead-letters and notifications commands share this module's database options; they
+# register themselves on ``main`` when imported, which must come after everything above.
+from limitwatch import cli_deadletters, cli_outbox  # noqa: E402,F401

@@ -103,7 +103,8 @@ class DeliveryWatch:
                 state.failing_since = now
                 self._emit(
                     f"notifier {notifier} is failing: {error or result}; its notifications wait "
-                    "in the outbox and are retried with backoff (one line again when it recovers)"
+                    "in the outbox and are retried with backoff, unless the failure is one a "
+                    "retry cannot mend (then given up); one line again when it delivers"
                 )
 
     def observe_queue(self, queue: Mapping[str, tuple[int, float | None]]) -> None:
