@@ -15,15 +15,26 @@ CLI = Path(sys.executable).with_name("limitwatch")
 
 
 def run_cli(
-    *args: str, cwd: Path | None = None, input: str | None = None
+    *args: str, cwd: Path | None = None, input: str | None = None, columns: int | None = 80
 ) -> subprocess.CompletedProcess[str]:
-    """Run the installed console script in a process of its own, exactly as a user would.
+    """Run the installed console script in a process of its own, exactly as a user would,
+    with ``$COLUMNS`` set to ``columns`` (as a terminal that wide would) or unset with None
+    (output to a pipe).
 
     Starting a Python process per call costs about a second of CPU, so only the real-process
     smoke tests use this (they are marked ``integration``); the rest call :func:`cli`.
     """
+    env = {k: v for k, v in os.environ.items() if k != "COLUMNS"}
+    if columns is not None:
+        env["COLUMNS"] = str(columns)
     return subprocess.run(
-        [str(CLI), *args], capture_output=True, text=True, cwd=cwd, input=input, timeout=120
+        [str(CLI), *args],
+        capture_output=True,
+        text=True,
+        cwd=cwd,
+        input=input,
+        timeout=120,
+        env=env,
     )
 
 
@@ -42,17 +53,19 @@ def cli(
     cwd: Path | None = None,
     input: str | None = None,
     env: dict[str, str | None] | None = None,
+    columns: int | None = 80,
 ) -> CliResult:
     """Run ``limitwatch ARGS`` in this process with click's test runner.
 
     The same command object, options, output and exit status as the console script, without a
     new interpreter. An exception the command did not turn into an error message is raised here,
     so a crash cannot pass for an ordinary exit status 1. ``env`` sets (or, with None, unsets)
-    environment variables for the call.
+    environment variables for the call; ``$COLUMNS`` is ``columns`` (None: unset, as for output
+    to a pipe), as in :func:`run_cli`.
     """
     from limitwatch.cli import main
 
-    runner = CliRunner(env=env)
+    runner = CliRunner(env={"COLUMNS": None if columns is None else str(columns), **(env or {})})
     with contextlib.chdir(cwd) if cwd is not None else contextlib.nullcontext():
         result = runner.invoke(main, list(args), input=input, catch_exceptions=True)
     if result.exception is not None and not isinstance(result.exception, SystemExit):

@@ -39,7 +39,7 @@ ENGINE_REASONS = {
     "above-upper-bound",
     "off-scale",
 }
-WORKER_REASONS = {"unreadable-line", "line-too-long", "engine-error", "store-refused"}
+WORKER_REASONS = {"unreadable-line", "line-too-long", "engine-error", "store-refused", "late"}
 
 
 def pipeline(store: Store, stored_baseline=None) -> Pipeline:

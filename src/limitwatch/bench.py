@@ -298,10 +298,10 @@ def _timed_service_class() -> type:
             self.expect: int | None = None
             self.failure: BaseException | None = None
 
-        def _process_deliveries(self, batch: list[Any]) -> None:
+        def _process_deliveries(self, batch: list[Any], *, flush: bool = False) -> None:
             if self.first_received is None and batch:
                 self.first_received = min(d.received_at for d in batch)
-            super()._process_deliveries(batch)
+            super()._process_deliveries(batch, flush=flush)
 
         def _commit(self, items: list[Any], offsets: Any = None) -> Any:
             result = super()._commit(items, offsets)

@@ -15,6 +15,7 @@ from typing import Any
 import click
 
 from limitwatch import __version__
+from limitwatch.durations import DurationError, parse_duration
 from limitwatch.engine import REFUSAL_WORDS, MonitorSettings
 from limitwatch.ingest.csvfile import InputFileError, Row, read_rows
 from limitwatch.ingest.replay import replay
@@ -24,6 +25,25 @@ from limitwatch.stats.rules import UnknownRuleError
 from limitwatch.textout import num, table
 
 FORMATS = click.Choice(["table", "json"])
+
+
+class _SecondsOrDuration(click.ParamType):
+    """``90s``, ``15m``, ``2h`` as the config writes durations, or a plain number of seconds."""
+
+    name = "duration"
+
+    def convert(
+        self, value: Any, param: click.Parameter | None, ctx: click.Context | None
+    ) -> float:
+        if isinstance(value, float):
+            return value
+        try:
+            return parse_duration(str(value))
+        except DurationError as exc:
+            self.fail(str(exc), param, ctx)
+
+
+DURATION = _SecondsOrDuration()
 
 
 class InputProblem(click.ClickException):
@@ -299,8 +319,9 @@ def _ar1_text(ar1: Ar1Fit) -> str:
 @_fit_options
 @click.option(
     "--max-gap",
-    type=float,
-    help="Seconds; a moving range across a longer gap between readings is skipped.",
+    type=DURATION,
+    help="A duration as in the config (90s, 15m, 2h) or plain seconds; a moving range across "
+    "a longer gap between readings is skipped.",
 )
 @click.option(
     "--ar1-residuals",
@@ -378,8 +399,14 @@ def replay_cmd(
                 f"warning: {stream!r}: no AR(1) model ({problem}); its readings are left out",
                 err=True,
             )
+    judged: dict[str, int] = {}
+    learning: dict[str, Any] = {}
     for step in replay(rows if feed is None else feed.rows(rows), engine_settings):
         outcome = step.outcome
+        if outcome.accepted and outcome.phase == "monitoring":
+            judged[step.row.stream] = judged.get(step.row.stream, 0) + 1
+        else:
+            learning.setdefault(step.row.stream, step.monitor)
         reading = step.row.value if feed is None else feed.raw[step.row.line]
         if not outcome.accepted:
             refused += 1
@@ -437,8 +464,34 @@ def replay_cmd(
                 signals.append(record)
     if feed is not None:
         refused += feed.refused
+    unjudged = _never_judged(learning, judged, baseline_first)
+    for line in unjudged:
+        click.echo(f"warning: {line}", err=True)
+    if not judged:
+        raise InputProblem(
+            f"Nothing was judged in {file}: no reading came after its stream's learning "
+            f"phase, so none was tested against limits (the first --baseline-first "
+            f"{baseline_first} readings of a stream fit its baseline). Give more readings or a "
+            "smaller --baseline-first."
+        )
     if fmt == "table":
         _print_signals(signals, file, refused, residuals=feed is not None)
+
+
+def _never_judged(monitors: dict[str, Any], judged: dict[str, int], needed: int) -> list[str]:
+    """Why each stream that never left learning was never judged, one line each."""
+    out = []
+    for stream, monitor in monitors.items():
+        if stream in judged or monitor.phase != "learning":
+            continue
+        why = (
+            f"its {monitor.count} accepted reading(s) could not fit a baseline "
+            f"({monitor.last_fit_error})"
+            if monitor.last_fit_error
+            else f"it has {monitor.count} accepted reading(s); {needed} fit the baseline first"
+        )
+        out.append(f"stream {stream!r} was never judged: {why}")
+    return out
 
 
 class _ResidualFeed:
@@ -544,7 +597,9 @@ def _print_signals(
         for s in signals
     ]
     values = ["reading", "residual"] if residuals else ["value"]
-    click.echo(table(["stream", "index", "time", *values, "rule", "chart", "side"], rows))
+    headers = ["stream", "index", "time", *values, "rule", "chart", "side"]
+    # Cut names before anything else, and never the time: "2027-0…" tells nothing.
+    click.echo(table(headers, rows, shorten=[0, len(headers) - 3]))
     click.echo(f"{len(signals)} signal(s); {refused} reading(s) refused.")
     if residuals:
         click.echo("Charted: one-step-ahead residuals of each stream's AR(1) model.")

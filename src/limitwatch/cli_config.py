@@ -25,9 +25,13 @@ ANSI/ISA-18.2-2016 and EEMUA 191 on alarm rates an operator can handle (why a bu
 from __future__ import annotations
 
 import shlex
+import sqlite3
 import textwrap
+from collections.abc import Sequence
 from dataclasses import dataclass
+from fnmatch import fnmatchcase
 from functools import partial
+from pathlib import Path
 from typing import Any
 
 import click
@@ -42,6 +46,7 @@ from limitwatch.config import (
     check_secrets,
     load_config,
 )
+from limitwatch.config_units import bare_durations_in
 from limitwatch.durations import format_duration
 from limitwatch.planner import StreamPlan, plan_stream, site_false_alarms
 from limitwatch.stats.arl import ArlError
@@ -49,6 +54,12 @@ from limitwatch.textout import num
 
 WORST = 3
 """How many of the noisiest streams a budget warning names."""
+
+DEFAULT_PER_STREAM_WEEK = 1.0
+"""Without a ``[budget]``, ``check`` warns about streams expected to raise more than this many
+false alarms a week each. A default, common practice rather than a standard: a stream that
+cries wolf more than weekly soon stops being read (ANSI/ISA-18.2 and EEMUA 191 make the same
+point about alarm rates at the scale of a whole control room)."""
 
 
 @main.command("check")
@@ -74,10 +85,13 @@ def check(config_file: str, file_only: bool) -> None:
     certificate files and the database folder it names.
 
     It also gives the false alarms a week the configured rules are expected to raise at their
-    cadence (one stream counted per [[streams]] entry with a cadence and one for [defaults],
-    as 'limitwatch plan --config' counts them), and warns, without failing, when the site
-    total exceeds [budget] false_alarms_per_week. The figure assumes independent, normal
-    readings; autocorrelated readings raise more.
+    cadence, and warns, without failing, when the site total exceeds [budget]
+    false_alarms_per_week, or, with no budget set, when a stream is expected to raise more than
+    one a week (a default, common practice). Streams are counted from the database at
+    store.path when it exists (each under the first [[streams]] entry that matches it), else one
+    per [[streams]] entry with a cadence and one for [defaults], as 'limitwatch plan --config'
+    counts them. The figure assumes independent, normal readings; autocorrelated readings
+    raise more.
 
     \b
     Example:
@@ -89,16 +103,24 @@ def check(config_file: str, file_only: bool) -> None:
         raise InputProblem(str(exc)) from None
     problems = [] if file_only else [*check_files(config), *check_secrets(config)]
     if problems:
-        raise InputProblem(str(ConfigError(config_file, problems)))
+        raise InputProblem(
+            f"{ConfigError(config_file, problems)}\n(these are the secrets and files the "
+            "config names, looked for on this machine; to check the file alone, away from the "
+            f"machine that runs the service: limitwatch check --config {shlex.quote(config_file)} "
+            "--file-only)"
+        )
     click.echo(f"{config_file}: the configuration is usable.")
     click.echo("")
     for line in summary(config, secrets_checked=not file_only):
         click.echo(line)
-    expected = expected_false_alarms(config)
+    expected = expected_false_alarms(config, known_streams(config))
     for line in expected.lines():
         click.echo(line)
     warnings = [f"warning: {w}" for w in config.warnings()]
+    warnings += [f"warning: {w}" for w in bare_durations_in(config_file)]
     warnings += expected.warnings(config_file, config.budget.false_alarms_per_week)
+    if config.budget.false_alarms_per_week is None:
+        warnings += expected.noisy()
     if warnings:
         click.echo("")
         for warning in warnings:
@@ -119,12 +141,35 @@ class ExpectedFalseAlarms:
     plans: tuple[StreamPlan, ...]
     unplanned: tuple[tuple[str, str], ...]
 
+    counted_from_store: bool = False
+
     @property
     def per_week(self) -> float:
         return site_false_alarms(self.plans)["week"]
 
     def worst(self, count: int = WORST) -> list[StreamPlan]:
         return sorted(self.plans, key=lambda p: -p.false_alarms("week"))[:count]
+
+    def noisy(self, per_stream: float = DEFAULT_PER_STREAM_WEEK) -> list[str]:
+        """Without a budget: a warning naming the entries whose streams each exceed the
+        default rate."""
+        loud = [p for p in self.worst(len(self.plans)) if p.false_alarms("week") > per_stream]
+        if not loud:
+            return []
+        named = ", ".join(
+            f"{p.name} {num(p.false_alarms('week'), 3)} a week"
+            + (f" each, x{p.streams} streams" if p.streams > 1 else "")
+            + f" ({p.rules}, every {format_duration(p.cadence)})"
+            for p in loud[:WORST]
+        )
+        more = f" and {len(loud) - WORST} more" if len(loud) > WORST else ""
+        text = (
+            f"warning: noisy: {named}{more} -- over {num(per_stream)} false alarm a week for "
+            "one stream, a default (common practice: a stream that cries wolf more often is "
+            "soon ignored). Set [budget] false_alarms_per_week for your site's own limit, or "
+            "let 'limitwatch plan --config FILE --budget N/week' suggest quieter rule sets."
+        )
+        return ["\n".join(_wrap(text, subsequent_indent="  "))]
 
     def lines(self) -> list[str]:
         """The expected figure as information, with how the streams were counted, as the
@@ -141,6 +186,14 @@ class ExpectedFalseAlarms:
                 "and [defaults] if it has one, counts as one stream, as 'limitwatch plan "
                 "--config' counts them (a glob matching many streams counts once)",
             ]
+            if self.counted_from_store:
+                counted = sum(p.streams for p in self.plans)
+                text[0] = (
+                    f"about {num(self.per_week, 3)} false alarms a week from {counted} "
+                    f"stream{'s' if counted != 1 else ''}: the streams the database at "
+                    "store.path has seen, each counted under the first entry that matches it "
+                    "([defaults] for the rest; an entry matching none counts as one)"
+                )
             if self.unplanned:
                 text.append("not counted: " + ", ".join(f"{n} ({r})" for n, r in self.unplanned))
             text.append("assumes independent, normal readings (autocorrelated ones raise more)")
@@ -168,22 +221,62 @@ class ExpectedFalseAlarms:
         return ["\n".join([*_wrap(text, subsequent_indent="  "), f"  {command}"])]
 
 
-def expected_false_alarms(config: Config) -> ExpectedFalseAlarms:
+def expected_false_alarms(
+    config: Config, known: Sequence[str] | None = None
+) -> ExpectedFalseAlarms:
     """Plan each ``[[streams]]`` entry and the defaults at their rules and cadence (in-control
-    run lengths only: the planner caches them per rule set, so this stays quick)."""
+    run lengths only: the planner caches them per rule set, so this stays quick).
+
+    With ``known`` (the stream ids the store has seen), each entry counts the known streams it
+    is the first match for, and ``[defaults]`` those no entry matches; an entry matching none
+    of them still counts as one stream (it is there for streams to come)."""
     settings = [(e.match, config.entry_settings(i)) for i, e in enumerate(config.streams)]
     settings.append(("[defaults]", config.default_settings()))
+    counts = _matched(config, known) if known else {}
     plans: list[StreamPlan] = []
     unplanned: list[tuple[str, str]] = []
-    for name, opts in settings:
+    for i, (name, opts) in enumerate(settings):
         if opts.cadence is None:
             unplanned.append((name, "no cadence"))
             continue
+        streams = max(1, counts.get(i, 0))
         try:
-            plans.append(plan_stream(opts.rules, float(opts.cadence), name=name, shifts=()))
+            plans.append(
+                plan_stream(
+                    opts.rules, float(opts.cadence), name=name, streams=streams, shifts=()
+                )
+            )
         except (ArlError, ValueError) as exc:
             unplanned.append((name, f"run length not computed: {exc}"))
-    return ExpectedFalseAlarms(tuple(plans), tuple(unplanned))
+    return ExpectedFalseAlarms(tuple(plans), tuple(unplanned), bool(counts))
+
+
+def _matched(config: Config, known: Sequence[str]) -> dict[int, int]:
+    """Entry index (len(streams) for [defaults]) -> known streams it is the first match for."""
+    counts: dict[int, int] = {}
+    for stream in known:
+        index = next(
+            (i for i, e in enumerate(config.streams) if fnmatchcase(stream, e.match)),
+            len(config.streams),
+        )
+        counts[index] = counts.get(index, 0) + 1
+    return counts
+
+
+def known_streams(config: Config) -> list[str]:
+    """Stream ids in the database the config names, read-only; none when there is no such
+    database yet (or it cannot be read: the count then falls back to one per entry)."""
+    path = Path(config.store.path)
+    if not path.is_file():
+        return []
+    try:
+        conn = sqlite3.connect(path.resolve().as_uri() + "?mode=ro", uri=True)
+        try:
+            return [row[0] for row in conn.execute("SELECT id FROM streams")]
+        finally:
+            conn.close()
+    except sqlite3.Error:
+        return []
 
 
 def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:

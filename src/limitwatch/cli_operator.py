@@ -72,7 +72,7 @@ from limitwatch.store import (
     StreamRow,
 )
 from limitwatch.store import Baseline as StoredBaseline
-from limitwatch.textout import num, printable, table
+from limitwatch.textout import AUTO, num, output_width, printable, table
 
 DB_ENV = "LIMITWATCH_DB"
 DEFAULT_DB = "limitwatch.db"
@@ -166,18 +166,26 @@ def _cut(text: str, width: int) -> str:
 
 
 def fit_table(
-    headers: Sequence[str], rows: Sequence[Sequence[str]], cuttable: Sequence[int]
+    headers: Sequence[str],
+    rows: Sequence[Sequence[str]],
+    cuttable: Sequence[int],
+    width: int | None = AUTO,
 ) -> str:
-    """:func:`limitwatch.textout.table` within 80 columns, shortening the ``cuttable`` columns
-    (names) in turn, the widest first, so that no one of them loses everything.
+    """:func:`limitwatch.textout.table` within the terminal's width (``width``, by default
+    :func:`~limitwatch.textout.output_width`; never cut when the output is not a terminal),
+    shortening the ``cuttable`` columns (names) in turn, the widest first, so that no one of
+    them loses everything.
 
-    >>> out = fit_table(["a", "b"], [["x" * 50, "y" * 50]], cuttable=[0, 1])
+    >>> out = fit_table(["a", "b"], [["x" * 50, "y" * 50]], cuttable=[0, 1], width=80)
     >>> max(len(line) for line in out.splitlines()), out.splitlines()[2][:5]
     (80, 'xxxxx')
     """
     rows = [[printable(cell) for cell in row] for row in rows]  # escaped before measuring
+    width = output_width() if width == AUTO else width
+    if width is None:
+        return table(headers, rows, max_width=None)
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
-    over = sum(widths) + 2 * (len(widths) - 1) - WIDTH
+    over = sum(widths) + 2 * (len(widths) - 1) - width
     while over > 0:
         i = max(cuttable, key=lambda j: widths[j])
         if widths[i] <= max(len(headers[i]), 8):
@@ -188,9 +196,11 @@ def fit_table(
         [_cut(cell, widths[i]) if i in cuttable else cell for i, cell in enumerate(row)]
         for row in rows
     ]
-    text = table(headers, cut_rows, max_width=WIDTH)
+    text = table(headers, cut_rows, max_width=width)
     if any(len(row[i]) > widths[i] for row in rows for i in cuttable):
-        text += "\n(… marks a name shortened to fit 80 columns; --format json shows it whole)"
+        text += (
+            f"\n(… marks a name shortened to fit {width} columns; --format json shows it whole)"
+        )
     return text
 
 
@@ -574,7 +584,7 @@ def _event_table(events: Sequence[AlertEvent]) -> str:
         max([len(headers[1])] + [len(e.kind) for e in events]),
         min(20, max([len(headers[2])] + [len(e.actor) for e in events])),
     ]
-    room = max(24, WIDTH - sum(fixed) - 2 * len(fixed))
+    room = max(24, (output_width() or WIDTH) - sum(fixed) - 2 * len(fixed))
     rows: list[list[str]] = []
     for e in events:
         lines = textwrap.wrap(e.note or "", room, break_on_hyphens=False) or [""]
@@ -730,6 +740,7 @@ def stream_record(
         "ucl": None if limits is None else limits.ucl,
         "open_alerts": sum(a.state == "open" for a in live),
         "acknowledged_alerts": sum(a.state == "acknowledged" for a in live),
+        "live_alerts": len(live),
         "shelved_until": iso(max(whole)) if whole else None,
         "shelves": [
             {"rule": s.rule, "until": iso(s.until), "reason": s.reason, "by": s.shelved_by}
@@ -804,14 +815,15 @@ def streams_cmd(
 
     In the table, 'zone' is the last reading's place against the current baseline (zone-c is
     within one sigma of the center line, zone-b within two, zone-a within three; above-ucl and
-    below-lcl are beyond the limits), 'open' counts unacknowledged open alerts, 'shelved'
-    what is shelved (all rules or which) and for how much longer. With --config, 'false/wk'
-    is the false alarms a week expected from the stream's rules at its cadence as the config
-    gives them ('-' when it gives no cadence; the planner's figure, which assumes
-    independent, normal readings). With --format json the output is a list of objects with
-    the keys stream, last_value, last_time, zone, phase, baseline_version, center, lcl, ucl,
-    open_alerts, acknowledged_alerts, shelved_until (a shelf of every rule), shelves (each
-    with rule, until, reason, by) and false_alarms_per_week (null when unknown).
+    below-lcl are beyond the limits), 'live' counts the alerts not yet cleared (open or
+    acknowledged: the report's 'live alerts' too), 'shelved' what is shelved (all rules or
+    which) and for how much longer. With --config, 'false/wk' is the false alarms a week
+    expected from the stream's rules at its cadence as the config gives them ('-' when it gives
+    no cadence; the planner's figure, which assumes independent, normal readings). With --format
+    json the output is a list of objects with the keys stream, last_value, last_time, zone,
+    phase, baseline_version, center, lcl, ucl, open_alerts, acknowledged_alerts, live_alerts
+    (the two together), shelved_until (a shelf of every rule), shelves (each with rule, until,
+    reason, by) and false_alarms_per_week (null when unknown).
 
     \b
     Examples:
@@ -856,12 +868,12 @@ def streams_cmd(
             rec["zone"] or "-",
             rec["phase"] or "-",
             "-" if rec["baseline_version"] is None else f"v{rec['baseline_version']}",
-            str(rec["open_alerts"]),
+            str(rec["live_alerts"]),
             _shelf_cell(shelves_of.get(rec["stream"], []), now),
         ]
         for rec in records
     ]
-    headers = ["stream", "last", "zone", "phase", "baseline", "open", "shelved"]
+    headers = ["stream", "last", "zone", "phase", "baseline", "live", "shelved"]
     if config_file is not None:
         # Only a config knows rules and cadences; without one the column would be all '-'
         # and cost the stream names ten columns.
@@ -914,7 +926,12 @@ def _baseline_lines(stored: StoredBaseline) -> list[str]:
     add("method", f"sigma from the {method.get(stored.method, stored.method)}")
     if stored.first_index is not None or stored.first_time is not None:
         span = f"index {_idx(stored.first_index)} to {_idx(stored.last_index)}"
-        add("readings", f"{span}, {iso_s(stored.first_time)} to {iso_s(stored.last_time)}")
+        if stored.first_time is None and stored.last_time is None:
+            add("readings", span)
+        elif stored.first_time is None:  # stored before the first time was recorded
+            add("readings", f"{span}, up to {iso_s(stored.last_time)}")
+        else:
+            add("readings", f"{span}, {iso_s(stored.first_time)} to {iso_s(stored.last_time)}")
     add("excluded", ", ".join(map(str, stored.excluded)) or "none")
     limits = limits_of(stored.numbers)
     if limits is None:
@@ -923,6 +940,10 @@ def _baseline_lines(stored: StoredBaseline) -> list[str]:
     if limits.n:
         add("used", f"{limits.n_used} of {limits.n} readings")
     add("center line", _g(limits.center))
+    mr = f"average {_g(limits.mr_bar)}"
+    if limits.mr_median == limits.mr_median:  # typed-in limits have no median (NaN)
+        mr += f", median {_g(limits.mr_median)}"
+    add("moving range", mr)
     add("sigma", _g(limits.sigma))
     add("limits", f"LCL {_limit(limits.lcl, limits.lower_bound)}, UCL {_limit(limits.ucl, None)}")
     add("MR limit", _g(limits.mr_ucl))
@@ -1113,3 +1134,8 @@ def baseline_refit(
     click.echo("\n".join(_baseline_lines(stored)))
     if previous is not None:
         click.echo(f"Replaces version {previous.version}, which stays in the history.")
+
+
+# The dead-letters and notifications commands share this module's database options; they
+# register themselves on ``main`` when imported, which must come after everything above.
+from limitwatch import cli_deadletters, cli_outbox  # noqa: E402,F401

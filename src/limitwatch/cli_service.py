@@ -10,6 +10,7 @@ import click
 from limitwatch import LOG_FORMAT, SAFETY_CAUTION
 from limitwatch.cli import InputProblem, main
 from limitwatch.config import ConfigError, check_secrets, load_config
+from limitwatch.config_units import bare_durations_in
 
 
 @main.command("serve")
@@ -58,6 +59,8 @@ def serve_cmd(config_path: str, log_level: str) -> None:
     from limitwatch.service import serve
 
     logging.getLogger("limitwatch").info(SAFETY_CAUTION)
+    for warning in bare_durations_in(config_path):
+        logging.getLogger("limitwatch").warning("%s: %s", config_path, warning)
     try:
         status = serve(config)
     except LockError as exc:

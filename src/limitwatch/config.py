@@ -213,6 +213,18 @@ def _off_or_duration(value: Any) -> float | None:
     return _positive(parse_duration(value))
 
 
+def _cadences(value: Any) -> Any:
+    """``stale_after`` counts cadences while its neighbours are durations: say so when it is
+    given a duration."""
+    if isinstance(value, str) and re.search(r"[a-z]", value.strip()):
+        raise ValueError(
+            f"{value!r} is a duration, but stale_after counts cadences: a number such as 5 "
+            "means five times the stream's cadence without a reading (with cadence = \"1m\", "
+            "write 10 for ten minutes)"
+        )
+    return value
+
+
 Duration = Annotated[float, BeforeValidator(_duration)]
 PositiveDuration = Annotated[float, BeforeValidator(_duration), AfterValidator(_positive)]
 """At least 1 ms and at most :data:`MAX_DURATION`."""
@@ -333,6 +345,9 @@ class ServiceSection(_Section):
     """A reading stamped later than its receive time by more than this is refused
     (``in-the-future``): senders' clocks drift a little, but one reading dated years ahead
     would make every real one look out of order and its stream never look stale."""
+    notifier_failing_after: PositiveDuration = 600.0
+    """``/health`` turns degraded (503) when a notifier's deliveries have failed, without one
+    success, for longer than this."""
 
     @field_validator("metrics_listen")
     @classmethod
@@ -408,7 +423,7 @@ class StreamOptions(_Section):
     spec_upper: float | None = None
     max_gap: PositiveDuration | None = None
     cadence: PositiveDuration | None = None
-    stale_after: float = Field(5.0, ge=1, le=1000)
+    stale_after: Annotated[float, BeforeValidator(_cadences)] = Field(5.0, ge=1, le=1000)
     severity: Severity = "warning"
     baseline: BaselineInput | None = None
     description: str | None = None
@@ -635,6 +650,10 @@ class MqttSourceConfig(_Section):
     """Most streams this source may feed; readings for further new streams are refused."""
     reconnect_min_s: int = Field(1, ge=1, le=3600)
     reconnect_max_s: int = Field(60, ge=1, le=86400)
+    reorder_within: PositiveDuration | None = None
+    """Hold each reading this long and apply a stream's held readings in sequence (else time)
+    order: a reading overtaken by up to this much is applied in its place instead of being
+    refused as ``late``. Off by default: it delays every reading of the source by this much."""
     topics: list[MqttTopic] = Field(min_length=1)
 
     @model_validator(mode="before")

@@ -46,6 +46,7 @@ from dataclasses import dataclass, field
 
 from limitwatch.alerts.lifecycle import AlertBook, BookReport
 from limitwatch.engine import MonitorSettings, StreamMonitor
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError
 from limitwatch.store import CONFIG_AUTHOR, Store, same_numbers
@@ -361,7 +362,9 @@ class Pipeline:
             outcome = monitor.update(item.reading)
             if not outcome.accepted:
                 reason = outcome.reason or "refused"
-                detail = f"stream {item.reading.stream!r} at {item.reading.time}"
+                if reason in _ORDER_REASONS:
+                    reason = self._refused_because(item.reading, monitor, reason, result)
+                detail = _where(item.reading)
                 dead_rows.append((item.source, item.raw, _reason(reason, detail)))
                 result.dead.append((item.source, reason))
                 continue
@@ -432,8 +435,10 @@ class Pipeline:
             self._dead_alone(item, "engine-error", detail, now, result)
             return
         if not outcome.accepted:
-            detail = f"stream {stream!r} at {reading.time}"
-            self._dead_alone(item, outcome.reason or "refused", detail, now, result)
+            reason = outcome.reason or "refused"
+            if reason in _ORDER_REASONS:
+                reason = self._refused_because(reading, monitor, reason, result)
+            self._dead_alone(item, reason, _where(reading), now, result)
             return
         fitted = [stream] if outcome.baseline_fitted else []
         due: list[str] = []
@@ -520,6 +525,36 @@ class Pipeline:
         self._new.discard(stream)
         self._unsaved.pop(stream, None)
 
+    def _refused_because(
+        self, reading: Reading, monitor: StreamMonitor, said: str, batch: BatchResult
+    ) -> str:
+        """The true name of a reading the monitor refused for its order. The monitor keeps only
+        its stream's last reading, so all it knows is "not newer"; the store (and this batch)
+        knows whether the reading was ever applied. ``duplicate``: it was, this is a repeat.
+        ``late``: it never was, and came after a newer one (a gateway that sends n+1 before n
+        on reconnecting) -- a reading lost to the chart, to be counted apart from repeats.
+        ``out-of-order`` stays for a reading whose sequence number is newer but whose time is
+        not, or one at the time of the last reading with another value."""
+        if any(_same(o.reading, reading) for o in batch.outcomes) or self.store.has_reading(
+            reading
+        ):
+            return "duplicate"
+        if said == "duplicate":  # an older sequence number (or a pruned repeat)
+            return "late"
+        last = monitor.last_time
+        if reading.seq is None and last is not None and reading.time < last:
+            return "late"
+        return said
+
+    def _time_at(self, stream: str, index: int, last_time: float) -> float | None:
+        """The time of the stream's reading at ``index`` (stored in this transaction already,
+        with the batch's readings), for the first reading of a learned baseline."""
+        row = self.store.db.conn.execute(
+            "SELECT time FROM readings WHERE stream = ? AND idx = ? AND time <= ?",
+            (stream, index, last_time),
+        ).fetchone()
+        return None if row is None else float(row[0])
+
     def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:
         baseline = monitor.baseline
         assert baseline is not None and outcome.index is not None
@@ -547,6 +582,7 @@ class Pipeline:
             version=monitor.baseline_version,
             first_index=first,
             last_index=outcome.index,
+            first_time=self._time_at(monitor.stream, first, outcome.reading.time),
             last_time=outcome.reading.time,
             excluded=[first + p for p in baseline.excluded],
         )
@@ -640,6 +676,25 @@ def store_failed(exc: BaseException) -> bool:
 def _words(exc: BaseException) -> str:
     text = f"{type(exc).__name__}: {exc}"
     return text if len(text) <= 300 else text[:297] + "..."
+
+
+_ORDER_REASONS = frozenset({"duplicate", "out-of-order"})
+
+
+def _same(a: Reading, b: Reading) -> bool:
+    if a.stream != b.stream:
+        return False
+    return (a.time == b.time and a.value == b.value) or (a.seq is not None and a.seq == b.seq)
+
+
+def _where(reading: Reading) -> str:
+    """The refused reading, named as a person looks for it: stream, ISO 8601 time, sequence."""
+    seq = "" if reading.seq is None else f", seq {reading.seq}"
+    try:
+        when = format_time(reading.time)
+    except (OverflowError, OSError, ValueError):
+        when = repr(reading.time)
+    return f"stream {reading.stream!r} at {when}{seq}, value {reading.value!r}"
 
 
 def _reason(code: str, detail: str) -> str:

@@ -34,6 +34,7 @@ import queue
 import signal
 import threading
 import time
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
@@ -42,6 +43,7 @@ from typing import Any
 from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED, JobExecutionEvent
 from apscheduler.schedulers.background import BackgroundScheduler
 
+from limitwatch.alerts.delivery_watch import DeliveryCollector
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
 from limitwatch.clocks import CARRY_ON_AT_MOST_S, ServiceClock, describe_step
@@ -51,10 +53,12 @@ from limitwatch.ingest.files import FileLine, FileSource
 from limitwatch.ingest.mqtt import Delivery, MqttSettings
 from limitwatch.ingest.mqtt_process import MqttProcess
 from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.ingest.reorder import ReorderBuffer
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken, store_failed
+from limitwatch.refusals import RefusalLog
 from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
@@ -115,12 +119,19 @@ class Service:
         # Queue's size bound or task tracking.
         self.intake: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self.metrics = Metrics()
+        self.refusals = RefusalLog()
         self._stopping = threading.Event()
         self.mqtt: dict[str, MqttProcess] = {}
         self._mqtt_parsers: dict[str, SourceParser] = {}
         self.files: dict[str, FileSource] = {}
         self._row_parsers: dict[str, RowParser] = {}
         self._offsets: dict[str, dict[str, int]] = {}
+        self._reorder: dict[str, ReorderBuffer] = {}
+        """MQTT sources with ``reorder_within``: their readings wait here, in order."""
+        self._unacked: dict[str, deque[list[Any]]] = {}
+        """Per source with a reorder window, its deliveries in arrival order as [delivery,
+        committed]: acknowledgements go in arrival order, so a held reading holds back the
+        acknowledgement of every later one until it is committed too."""
         self.last_commit: float | None = None
         self._heartbeat: float | None = None
         """``time.monotonic()`` when the worker last came round its loop or committed a batch
@@ -165,14 +176,21 @@ class Service:
         log.info("restored %d streams from %s", restored, cfg.store.path)
 
         self.outbox = OutboxWorker.from_config(cfg, clock=self.clock)
+        self.metrics.registry.register(DeliveryCollector(self.outbox.watch, self.clock))
         self.outbox.start()
 
         for source in cfg.sources:
             if isinstance(source, MqttSourceConfig):
                 self._start_mqtt(source)
             elif isinstance(source, FileSourceConfig):
+                columns: dict[str, str | None] = {"value": source.value, "time": source.time}
+                columns |= {"stream": source.stream, "seq": source.seq}
                 self.files[source.name] = FileSource(
-                    source.name, source.glob, source.format, source.start_at
+                    source.name,
+                    source.glob,
+                    source.format,
+                    source.start_at,
+                    columns=columns if source.format == "csv" else None,
                 )
                 self._row_parsers[source.name] = RowParser(
                     source, future_tolerance=cfg.service.future_tolerance
@@ -246,6 +264,9 @@ class Service:
         self._mqtt_parsers[source.name] = SourceParser(
             source, future_tolerance=self.config.service.future_tolerance
         )
+        if source.reorder_within is not None:
+            self._reorder[source.name] = ReorderBuffer(source.reorder_within)
+            self._unacked[source.name] = deque()
         client = MqttProcess(settings, self.intake)
         self.mqtt[source.name] = client
         # Read when /metrics is scraped, so the figures are current whether or not anyone
@@ -355,8 +376,9 @@ class Service:
         while not self._stopping.is_set():
             self._heartbeat = time.monotonic()
             self._watch_clock()
+            self.refusals.flush(self.clock())
             batch, jobs = self._take()
-            if batch:
+            if batch or self._holding():
                 self._process_deliveries(batch)
             for job in jobs:
                 if job is _STOP:
@@ -364,6 +386,8 @@ class Service:
                 self._run_job_guarded(job)
         log.info("stopping: the last batch is committed and acknowledged")
         assert self.pipeline is not None
+        if not self.pipeline.broken and self._holding():
+            self._process_deliveries([], flush=True)  # held readings: commit and acknowledge
         if not self.pipeline.broken:
             saved = self.pipeline.checkpoint_all(self.clock())
             log.info("checkpoints of %d streams written", saved)
@@ -412,7 +436,7 @@ class Service:
             received = self.timekeeper.receipt(d.received_at)
             reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, received)
         except PayloadError as exc:
-            return Parsed(d.source, _envelope(d), error=exc.reason, detail=str(exc))
+            return Parsed(d.source, _envelope(d), error=exc.reason, detail=exc.message)
         except Exception as exc:  # a parser bug must not stop the service: a dead letter
             log.exception("source %s: a message on %r could not be parsed", d.source, d.topic)
             return Parsed(d.source, _envelope(d), error="parse-error", detail=_failure(exc))
@@ -431,14 +455,59 @@ class Service:
         self.metrics.streams_refused.labels(source).inc()
         return f"stream {stream[:200]!r} would be more than max_streams = {cap.limits[source]}"
 
-    def _process_deliveries(self, batch: list[Delivery]) -> None:
-        items = [self._parse_delivery(d) for d in batch]
-        self._commit(items)
-        by_source: dict[str, list[Delivery]] = {}
-        for d in batch:  # arrival order, only after the commit
-            by_source.setdefault(d.source, []).append(d)
-        for source, deliveries in by_source.items():
+    def _holding(self) -> bool:
+        return any(len(buffer) for buffer in self._reorder.values())
+
+    def _process_deliveries(self, batch: list[Delivery], *, flush: bool = False) -> None:
+        if not self._reorder:
+            items = [self._parse_delivery(d) for d in batch]
+            self._commit(items)
+            by_source: dict[str, list[Delivery]] = {}
+            for d in batch:  # arrival order, only after the commit
+                by_source.setdefault(d.source, []).append(d)
+            for source, deliveries in by_source.items():
+                self.mqtt[source].ack(deliveries)
+            return
+        self._process_reordered(batch, flush)
+
+    def _process_reordered(self, batch: list[Delivery], flush: bool) -> None:
+        """As :meth:`_process_deliveries`, with the readings of sources that have a reorder
+        window held back until their time is up (see :mod:`limitwatch.ingest.reorder`)."""
+        now = self.clock()
+        items: list[Parsed] = []
+        direct: dict[str, list[Delivery]] = {}
+        committed: list[list[Any]] = []
+        for d in batch:
+            parsed = self._parse_delivery(d)
+            buffer = self._reorder.get(d.source)
+            if buffer is None:
+                items.append(parsed)
+                direct.setdefault(d.source, []).append(d)
+                continue
+            entry = [d, False]
+            self._unacked[d.source].append(entry)
+            if parsed.reading is None:  # a dead letter has no place in the order
+                items.append(parsed)
+                committed.append(entry)
+            else:
+                buffer.hold(parsed.reading, (parsed, entry), d.received_at)
+        for buffer in self._reorder.values():
+            if len(buffer):
+                for _, (parsed, entry) in buffer.release(now, everything=flush):
+                    items.append(parsed)
+                    committed.append(entry)
+        if items:
+            self._commit(items)
+        for entry in committed:  # only after the commit
+            entry[1] = True
+        for source, deliveries in direct.items():
             self.mqtt[source].ack(deliveries)
+        for source, waiting in self._unacked.items():
+            ready = []
+            while waiting and waiting[0][1]:
+                ready.append(waiting.popleft()[0])
+            if ready:
+                self.mqtt[source].ack(ready)
 
     def _commit(
         self, items: list[Parsed], offsets: dict[str, dict[str, int]] | None = None
@@ -453,8 +522,9 @@ class Service:
         m.batch_seconds.observe(time.perf_counter() - started)
         m.batch_size.observe(len(items))
         m.readings.labels("accepted").inc(len(result.outcomes))
-        for _, reason in result.dead:
+        for source, reason in result.dead:
             m.dead_letters.labels(reason).inc()
+            self.refusals.note(source, reason, now)
         for s in result.signals:
             m.signals.labels(s.rule).inc()
         m.alerts_opened.inc(result.opened)
@@ -556,7 +626,7 @@ class Service:
 
     def _parse_line(self, line: FileLine, parser: RowParser) -> Parsed:
         start = line.end_offset - len(line.raw) if line.start is None else line.start
-        where = f"{line.path} at byte {start}"
+        where = f"{line.path}, line {line.line}" if line.line else f"{line.path} at byte {start}"
         at = (line.file_id, line.end_offset)
         if line.record is None:
             detail = f"{where}: {line.error}"
@@ -565,7 +635,11 @@ class Service:
             reading = parser.parse(line.record, self.clock())
         except PayloadError as exc:
             return Parsed(
-                line.source, line.raw, error=exc.reason, detail=f"{where}: {exc}", position=at
+                line.source,
+                line.raw,
+                error=exc.reason,
+                detail=f"{where}: {exc.message}",
+                position=at,
             )
         except Exception as exc:  # a parser bug must not stop the service: a dead letter
             log.exception("source %s: a line of %s could not be parsed", line.source, line.path)
@@ -595,7 +669,12 @@ class Service:
         stalled = quiet is not None and quiet > self.config.service.stall_after
         jobs = self._job_health()
         overdue = any(j["overdue"] for j in jobs.values())
-        ok = all(sources.values()) and not broken and not stalled and not overdue
+        now = self.clock()
+        watch = self.outbox.watch if self.outbox is not None else None
+        notifiers = {} if watch is None else watch.health(now)
+        after = self.config.service.notifier_failing_after
+        failing = [] if watch is None else watch.failing_longer_than(after, now)
+        ok = all(sources.values()) and not broken and not stalled and not overdue and not failing
         return {
             "status": "ok" if ok else "degraded",
             "worker": "stalled" if stalled else "failed" if broken else "running",
@@ -604,12 +683,14 @@ class Service:
             "errors": {n: c.last_error for n, c in self.mqtt.items() if c.last_error},
             "queue_depth": self.intake.qsize(),
             "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
-            "last_commit": self.last_commit,
+            "last_commit": None if self.last_commit is None else format_time(self.last_commit),
             "jobs": jobs,
             "clock": {
                 "steps_seen": self.timekeeper.steps,
                 "ahead_of_wall_s": round(self.timekeeper.ahead_s(), 3),
             },
+            "notifiers": notifiers,
+            "notifiers_failing_too_long": failing,
         }
 
     def _job_health(self) -> dict[str, dict[str, Any]]:

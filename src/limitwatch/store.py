@@ -931,6 +931,26 @@ class Store:
         row = self.db.conn.execute("SELECT max(last_seen) FROM streams").fetchone()
         return None if row[0] is None else float(row[0])
 
+    def has_reading(self, reading: Reading, *, seq_horizon_s: float = 86400.0) -> bool:
+        """Whether this reading is stored already: same stream, time and value, or (with a
+        sequence number) the same sequence number within ``seq_horizon_s`` before its time
+        (a redelivery without a time of its own carries a later receive time). Both lookups
+        use the primary key's range, never a scan of the stream."""
+        found = self.db.conn.execute(
+            "SELECT 1 FROM readings WHERE stream = ? AND time = ? AND value = ?",
+            (reading.stream, reading.time, reading.value),
+        ).fetchone()
+        if found is not None or reading.seq is None:
+            return found is not None
+        return (
+            self.db.conn.execute(
+                """SELECT 1 FROM readings WHERE stream = ? AND time BETWEEN ? AND ?
+                AND seq = ? LIMIT 1""",
+                (reading.stream, reading.time - seq_horizon_s, reading.time, reading.seq),
+            ).fetchone()
+            is not None
+        )
+
     def stream_last_times(self) -> dict[str, float | None]:
         """Each stream's latest committed reading time."""
         return dict(self.db.conn.execute("SELECT id, last_time FROM streams"))

@@ -1,4 +1,4 @@
-"""Plain-text output for terminals: numbers people can read and tables that fit 80 columns.
+"""Plain-text output for terminals: numbers people can read and tables that fit the terminal.
 
 Text that came from the field -- stream ids above all, which a gateway or a file names -- goes
 through :func:`printable` before it reaches a person: an ESC in a stream id would otherwise
@@ -9,7 +9,10 @@ e-mail header with a newline cannot be sent at all).
 from __future__ import annotations
 
 import math
+import os
 import re
+import shutil
+import sys
 from collections.abc import Sequence
 
 # C0 controls, DEL, C1 controls, the Unicode line and paragraph separators, and the
@@ -49,27 +52,71 @@ def num(value: float | None, digits: int = 6) -> str:
     return f"{value:.0f}" if 10**digits <= abs(value) < 1e15 else f"{value:.{digits}g}"
 
 
-def table(headers: Sequence[str], rows: Sequence[Sequence[str]], max_width: int = 80) -> str:
-    """Left-aligned columns separated by two spaces. Cells of the widest text column are cut
-    with an ellipsis when the table would pass ``max_width``; control characters in any cell
-    are escaped (:func:`printable`).
+def output_width() -> int | None:
+    """How many columns a table may take: ``$COLUMNS`` when set, else the terminal's width when
+    standard output is one, else None -- output going to a file or a pipe is never cut, since
+    whatever reads it has no screen edge to respect.
+    """
+    env = os.environ.get("COLUMNS", "").strip()
+    if env.isdigit() and int(env) > 0:
+        return int(env)
+    try:
+        if sys.stdout.isatty():
+            return shutil.get_terminal_size().columns
+    except (AttributeError, ValueError, OSError):
+        pass
+    return None
+
+
+AUTO: int = -1
+"""``max_width`` of :func:`table` by default: :func:`output_width`."""
+
+
+def table(
+    headers: Sequence[str],
+    rows: Sequence[Sequence[str]],
+    max_width: int | None = AUTO,
+    shorten: Sequence[int] | None = None,
+) -> str:
+    """Left-aligned columns separated by two spaces, within ``max_width`` columns (by default
+    the terminal's; None never cuts). Control characters in any cell are escaped
+    (:func:`printable`).
+
+    When the table is too wide, the columns in ``shorten`` are cut with an ellipsis, the least
+    important first (the first listed), each no shorter than its header or 8 characters,
+    before the next is touched; without ``shorten``, the widest column. A column left out of
+    ``shorten`` is never cut (a time stamp cut to ``2026-1…`` tells nothing).
 
     >>> print(table(["a", "bb"], [["1", "x"], ["22", "yyy"]]))
     a   bb
     --  ---
     1   x
     22  yyy
+    >>> print(table(["name", "time"], [["x" * 20, "2027-01-01T00:00:00Z"]], 32, shorten=[0]))
+    name        time
+    ----------  --------------------
+    xxxxxxxxx…  2027-01-01T00:00:00Z
     """
     headers = [printable(h) for h in headers]
     rows = [[printable(c) for c in row] for row in rows]
+    if max_width == AUTO:
+        max_width = output_width()
     widths = [len(h) for h in headers]
     for row in rows:
         for i, cell in enumerate(row):
             widths[i] = max(widths[i], len(cell))
-    total = sum(widths) + 2 * (len(widths) - 1)
-    if total > max_width:
-        widest = max(range(len(widths)), key=lambda i: widths[i])
-        widths[widest] = max(len(headers[widest]), widths[widest] - (total - max_width))
+    over = sum(widths) + 2 * (len(widths) - 1) - (max_width or 0)
+    if max_width is not None and over > 0:
+        widest = max(range(len(widths)), key=widths.__getitem__)
+        order = list(shorten) if shorten is not None else [widest]
+        for i in order:
+            floor = max(len(headers[i]), min(8, widths[i]))
+            take = min(over, widths[i] - floor)
+            if take > 0:
+                widths[i] -= take
+                over -= take
+            if over <= 0:
+                break
 
     def cut(text: str, width: int) -> str:
         return text if len(text) <= width else text[: max(width - 1, 0)] + "…"

@@ -53,6 +53,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, Literal
 
+from limitwatch.alerts.delivery_watch import DeliveryWatch
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier
 from limitwatch.alerts.notifiers.registry import build_notifier
 from limitwatch.store import Notification, Store
@@ -92,6 +93,8 @@ class RowResult:
     notifier: str | None = None
     message: str = ""
     next_attempt_at: float | None = None
+    attempted: bool = True
+    """False for a row not tried because its notifier failed earlier in the same pass."""
 
 
 @dataclass(slots=True)
@@ -148,6 +151,7 @@ class OutboxWorker:
         max_delay_s: float = 900.0,
         batch_size: int = 100,
         poll_interval_s: float = 1.0,
+        watch: DeliveryWatch | None = None,
     ) -> None:
         self._open = store if callable(store) else (lambda: Store.open(store))
         self.notifiers = dict(notifiers)
@@ -160,6 +164,9 @@ class OutboxWorker:
             raise ValueError("batch_size must be at least 1")
         self.batch_size = batch_size
         self.poll_interval_s = poll_interval_s
+        self.watch = watch or DeliveryWatch(self.notifiers)
+        """Each notifier's delivery state (failing since, counters, queue), for the log,
+        ``/metrics`` and ``/health``."""
         self._local = threading.local()
         self._pass_lock = threading.Lock()
         self._wakeup = threading.Event()
@@ -197,6 +204,11 @@ class OutboxWorker:
                     report.full = False
                     break
                 report.rows.append(self._handle(store, row, now, failed))
+            for r in report.rows:
+                if r.result != "handed-on":
+                    name = r.notifier or r.route
+                    self.watch.record(name, r.result, now, r.message, attempted=r.attempted)
+            self.watch.observe_queue(_waiting(store))
             return report
 
     run_once = deliver_due
@@ -223,6 +235,7 @@ class OutboxWorker:
                 now,
                 f"not tried: {row.route} failed earlier in this pass: {failed[row.route]}",
                 name,
+                attempted=False,
             )
         try:
             notifier.deliver(row.payload, event_id=_event_id(row))
@@ -255,7 +268,14 @@ class OutboxWorker:
         return RowResult(row.id, row.route, "handed-on", message=", ".join(targets))
 
     def _retry(
-        self, store: Store, row: Notification, now: float, error: str, notifier: str
+        self,
+        store: Store,
+        row: Notification,
+        now: float,
+        error: str,
+        notifier: str,
+        *,
+        attempted: bool = True,
     ) -> RowResult:
         delay = backoff_delay(
             row.attempts, self.rng, base_s=self.base_delay_s, cap_s=self.max_delay_s
@@ -270,8 +290,12 @@ class OutboxWorker:
                 notifier,
             )
         store.mark_failed(row.id, error, next_at)
-        log.info("outbox row %s for %s: %s; next attempt in %.1f s", row.id, notifier, error, delay)
-        return RowResult(row.id, row.route, "retry", notifier, error, next_at)
+        # DEBUG: an outage would write a line per row per attempt; the delivery watch says
+        # once that the notifier fails and once that it recovers.
+        log.debug(
+            "outbox row %s for %s: %s; next attempt in %.1f s", row.id, notifier, error, delay
+        )
+        return RowResult(row.id, row.route, "retry", notifier, error, next_at, attempted)
 
     def _give_up(
         self, store: Store, row: Notification, reason: str, notifier: str | None = None
@@ -304,7 +328,9 @@ class OutboxWorker:
                     (GAVE_UP + reason, PARKED_AT, row_id),
                 )
             log.warning("outbox row %s (%s) given up: %s", row_id, route, reason)
-            report.rows.append(RowResult(row_id, route, "gave-up", None, reason, PARKED_AT))
+            report.rows.append(
+                RowResult(row_id, route, "gave-up", None, reason, PARKED_AT, attempted=False)
+            )
 
     # ---- background loop
 
@@ -372,6 +398,16 @@ class OutboxWorker:
         if store is None:
             store = self._local.store = self._open()
         return store
+
+
+def _waiting(store: Store) -> dict[str, tuple[int, float | None]]:
+    """Route -> (rows still to deliver, the oldest one's queue time); given-up rows excluded."""
+    rows = store.db.execute(
+        """SELECT route, count(*), min(created_at) FROM outbox
+        WHERE delivered_at IS NULL AND next_attempt_at < ? GROUP BY route""",
+        (PARKED_AT,),
+    ).fetchall()
+    return {route: (int(n), oldest) for route, n, oldest in rows}
 
 
 def _event_id(row: Notification) -> str:

@@ -25,7 +25,7 @@ import json
 import logging
 import os
 import re
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from stat import S_ISREG
 from typing import Any, Literal
@@ -61,6 +61,9 @@ class FileLine:
     """The dead letter's reason code when there is an ``error``."""
     start: int | None = None
     """Byte offset where the line starts, given when ``raw`` is only the start of the line."""
+    line: int = 0
+    """The line's number as a text editor counts it (1 is the first line, a CSV header), so a
+    dead letter can say where to look; 0 when not known."""
 
 
 def file_identity(stat: os.stat_result) -> str:
@@ -97,13 +100,21 @@ class FileSource:
         pattern: str,
         fmt: Literal["csv", "jsonl"],
         start_at: Literal["beginning", "end"] = "beginning",
+        columns: Mapping[str, str | None] | None = None,
     ) -> None:
         self.name = name
         self.pattern = pattern
         self.format = fmt
         self.start_at = start_at
+        self.columns = {k: v for k, v in (columns or {}).items() if v is not None}
+        """Config key -> the CSV column it names: a header without one of them is warned
+        about once per file, since every line of that file would become a dead letter."""
         self._first_poll = True
         self._refused: set[str] = set()
+        self._lines: dict[str, tuple[int, int]] = {}
+        """File identity -> (byte offset, number of the line that starts there), so the line
+        count after the first read of a file costs nothing."""
+        self._header_checked: set[str] = set()
 
     def poll(self, offsets: dict[str, int]) -> Iterator[FileLine]:
         """Yield new complete lines of every matching file, oldest file first.
@@ -178,9 +189,13 @@ class FileSource:
             try:
                 with self._open(path, ident) as handle:
                     header = self._header(handle) if self.format == "csv" else None
+                    if header is not None:
+                        self._check_header(path, ident, header)
                     if header is not None and offset == 0:
                         offset = handle.tell()
-                        yield FileLine(self.name, path, ident, offset, None, b"")
+                        self._lines[ident] = (offset, 2)
+                        yield FileLine(self.name, path, ident, offset, None, b"", line=1)
+                    number = self._line_number(handle, ident, offset)
                     handle.seek(offset)
                     data = handle.read(MAX_READ)
                     if len(data) == MAX_READ and b"\n" not in data:
@@ -193,9 +208,10 @@ class FileSource:
             if overlong_end is None:
                 break
             log.warning(
-                "file %s: the line at byte %d is %d bytes long, over the limit of %d; "
+                "file %s: line %d (at byte %d) is %d bytes long, over the limit of %d; "
                 "it goes to the dead letters and reading goes on after it",
                 path,
+                number,
                 offset,
                 overlong_end - offset,
                 MAX_READ,
@@ -211,8 +227,10 @@ class FileSource:
                 f"bytes (the dead letter keeps its first {KEPT_PREFIX})",
                 "line-too-long",
                 offset,
+                line=number,
             )
             offset = overlong_end
+            self._lines[ident] = (offset, number + 1)
         end = data.rfind(b"\n")
         if end < 0:
             return  # a partial line: wait for its newline
@@ -221,10 +239,46 @@ class FileSource:
             position += len(raw)
             text = raw.strip()
             if not text:
-                yield FileLine(self.name, path, ident, position, None, raw)
-                continue
-            record, error = self._parse(text, header)
-            yield FileLine(self.name, path, ident, position, record, raw, error)
+                yield FileLine(self.name, path, ident, position, None, raw, line=number)
+            else:
+                record, error = self._parse(text, header)
+                yield FileLine(self.name, path, ident, position, record, raw, error, line=number)
+            number += raw.count(b"\n")
+            self._lines[ident] = (position, number)
+
+    def _line_number(self, handle: Any, ident: str, offset: int) -> int:
+        """The number of the line starting at ``offset``: remembered from the last read, or
+        counted once (after a restart, or a file rotated under us)."""
+        known = self._lines.get(ident)
+        if known is not None and known[0] == offset:
+            return known[1]
+        handle.seek(0)
+        newlines, left = 0, offset
+        while left > 0:
+            chunk = handle.read(min(left, 1 << 20))
+            if not chunk:
+                break
+            newlines += chunk.count(b"\n")
+            left -= len(chunk)
+        self._lines[ident] = (offset, newlines + 1)
+        return newlines + 1
+
+    def _check_header(self, path: str, ident: str, header: list[str]) -> None:
+        if ident in self._header_checked:
+            return
+        self._header_checked.add(ident)
+        missing = {key: col for key, col in self.columns.items() if col not in header}
+        if missing:
+            named = ", ".join(f"{key} = {col!r}" for key, col in missing.items())
+            log.warning(
+                "source %s: file %s has no column for %s (its header has: %s); every line of "
+                "it will become a dead letter (missing-field) until the file or the config "
+                "is corrected",
+                self.name,
+                path,
+                named,
+                ", ".join(header),
+            )
 
     def _header(self, handle: Any) -> list[str] | None:
         first = handle.readline(MAX_READ)

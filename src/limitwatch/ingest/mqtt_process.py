@@ -79,10 +79,11 @@ def _status(source: MqttSource, closed: bool = False) -> Status:
 # --------------------------------------------------------------------- the connection process
 
 
-CHILD_COMMAND = "from limitwatch.ingest.mqtt_process import child_main; child_main()"
-"""What the connection process runs: ``python -c`` with this, and the two pipe ends' file
-descriptors as arguments. A plain new interpreter rather than ``multiprocessing``'s "spawn",
-which runs the parent's main script again in the child (a benchmark script, a notebook ...)."""
+CHILD_MODULE = "limitwatch.ingest.mqtt_process"
+"""What the connection process runs: ``python -m`` this module, with the two pipe ends' file
+descriptors and ``--source NAME`` as arguments, so ``ps`` shows which process it is and for
+which source. A plain new interpreter rather than ``multiprocessing``'s "spawn", which runs the
+parent's main script again in the child (a benchmark script, a notebook ...)."""
 
 
 def child_main() -> None:
@@ -209,7 +210,15 @@ class MqttProcess:
         up_read, up_write = os.pipe()
         down_read, down_write = os.pipe()
         process = subprocess.Popen(
-            [sys.executable, "-c", CHILD_COMMAND, str(up_write), str(down_read)],
+            [
+                sys.executable,
+                "-m",
+                CHILD_MODULE,
+                str(up_write),
+                str(down_read),
+                "--source",
+                self.name,
+            ],
             pass_fds=(up_write, down_read),
         )
         # Only the child keeps these ends, so each side sees the other's exit as end-of-file.
@@ -313,3 +322,11 @@ class MqttProcess:
         down.close()
         if self._reader is not None:
             self._reader.join(timeout=5)
+
+
+if __name__ == "__main__":
+    # Run the module under its own name: what the process pickles up the pipe must name
+    # limitwatch.ingest.mqtt_process, not __main__, for the service to read it.
+    from limitwatch.ingest.mqtt_process import child_main as _child_main
+
+    _child_main()
