@@ -165,9 +165,9 @@ def test_the_service_stores_clean_reasons_and_logs_refusals_once(tmp_path):
     write_rows(data / "export.csv", rows)
     with (data / "export.csv").open("a") as f:
         for i in range(5):
-            f.write(f"2027-01-01T01:0{i}:00Z,press-1/cycle-time,lots\n")  # lines 7..11
-        f.write("2027-01-01T00:04:00Z,press-1/cycle-time,21.0\n")  # line 12: the 5th again
-    (data / "other.csv").write_text("time,stream,reading\n2027-01-01T00:00:00Z,a,1\n")
+            f.write(f"2026-01-01T01:0{i}:00Z,press-1/cycle-time,lots\n")  # lines 7..11
+        f.write("2026-01-01T00:04:00Z,press-1/cycle-time,21.0\n")  # line 12: the 5th again
+    (data / "other.csv").write_text("time,stream,reading\n2026-01-01T00:00:00Z,a,1\n")
     db = tmp_path / "service.db"
     svc = ServiceProcess(config).start()
     try:
@@ -182,7 +182,7 @@ def test_the_service_stores_clean_reasons_and_logs_refusals_once(tmp_path):
     assert all(r.count("not-a-number") == 1 for r in numbers), numbers
     assert sorted(int(re.search(r"line (\d+)", r).group(1)) for r in numbers) == [7, 8, 9, 10, 11]
     duplicate = next(r for r in reasons if r.startswith("duplicate"))
-    assert "at 2027-01-01T00:04:00Z" in duplicate, duplicate
+    assert "at 2026-01-01T00:04:00Z" in duplicate, duplicate
     logs = svc.logs()
     assert logs.count("an input was refused as not-a-number") == 1, logs
     assert "has no column for value = 'value'" in logs

@@ -103,7 +103,7 @@ notifiers = ["ops-hook"]
         'notifier_failing_after = "2s"\n'
     )
     config.write_text(text)
-    t0 = 1_798_761_600.0
+    t0 = 1_767_225_600.0  # 2026-01-01: in the past, as the service wants readings
     rows = [(t0 + 60 * i, "press-1/cycle-time", 20.0 + (i % 5) * 0.5) for i in range(25)]
     rows.append((t0 + 60 * 25, "press-1/cycle-time", 90.0))  # beyond the limits: an alert
     write_rows(tmp_path / "data" / "export.csv", rows)

@@ -8,6 +8,7 @@ raw payload shown safely (see :mod:`limitwatch.payloadview`).
 
 from __future__ import annotations
 
+import dataclasses
 from collections import Counter
 from typing import Any
 
@@ -183,6 +184,8 @@ def dead_letters_cmd(
         code, detail = split_reason(row["reason"])
         view = view_payload(row.get("payload"), limit=payload_bytes)
         size = row.get("payload_size") or view.size
+        if size > view.size:  # the store kept only the start of it
+            view = dataclasses.replace(view, size=size, cut=True)
         click.echo(
             f"#{row['id']}  {iso_s(row['received_at'])}  {escape_text(row['source'])}  {code}"
         )
