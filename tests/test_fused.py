@@ -147,5 +147,5 @@ def test_a_state_of_the_wrong_shape_is_refused():
     fused = FusedRules(FusedPlan(parse_rules("western-electric")))
     with pytest.raises(ValueError, match="5 detector states"):
         fused.set_states([[]])
-    with pytest.raises(ValueError, match="run-one-side state needs 2"):
+    with pytest.raises(ValueError, match="run-one-side: cannot use the saved state"):
         fused.set_states([[], [0, 0, None], [0, 0, None], [0], []])

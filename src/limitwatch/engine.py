@@ -331,7 +331,8 @@ class StreamMonitor:
         if data["baseline"] is None:
             monitor._learning = list(data["learning"])
             return monitor
-        monitor.set_baseline(Baseline.from_dict(data["baseline"]), data["baseline_version"])
+        # The store wrote this baseline: its numbers are trusted, not converted again.
+        monitor.set_baseline(Baseline.from_stored(data["baseline"]), data["baseline_version"])
         if found == 1:
             monitor._restore_format_1_detectors(data["detectors"])
         elif data["rules"] == settings.detectors_key:

@@ -39,6 +39,7 @@ Quality Technology* 16(4), 237-239.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterable, Sequence
 from typing import Any
@@ -63,6 +64,7 @@ def _compact(win: int, lane: int, window: int) -> int:
     return sum(1 << age for age in range(window) if win >> (4 * age + lane) & 1)
 
 
+@functools.lru_cache(maxsize=4096)
 def _spread(mask: int, lane: int, window: int) -> int:
     """The reference detector's mask placed in one lane of the shared window."""
     return sum(1 << (4 * age + lane) for age in range(window) if mask >> age & 1)
@@ -369,42 +371,37 @@ class FusedRules:
         """Load :meth:`states` output (or the reference detectors' ``state()`` lists, e.g. from
         a checkpoint). ``position``, when it equals the saved last position, is kept instead of
         the saved number, so that every stream's counters share the monitor's int."""
-        order = self._plan.order
-        if len(states) != len(order):
-            raise ValueError(f"{len(order)} detector states expected, got {len(states)}")
+        plan = self._plan
+        if len(states) != len(plan.order):
+            raise ValueError(f"{len(plan.order)} detector states expected, got {len(states)}")
         win = 0
         last: Any = None
-        for rule, values in zip(order, states, strict=True):
-            if rule in ("beyond-limits", "mr-beyond-limit"):
-                if values:
-                    raise ValueError(f"{rule} keeps no state, got {list(values)}")
-                continue
-            if rule in self._plan.windows:
-                up, down, last = _exactly(rule, values, 3)
-                lane, window = self._plan.windows[rule]
-                win |= _spread(int(up), lane, window) | _spread(int(down), lane + 1, window)
-            elif rule == "run-one-side":
-                self._run, last = _exactly(rule, values, 2)
-            elif rule == "trend":
-                self._trend_prev, self._trend_run, last = _exactly(rule, values, 3)
-            elif rule == "alternating":
-                self._alt_prev, self._alt_step, self._alt_len, last = _exactly(rule, values, 4)
-            elif rule == "hugging-center":
-                self._hug, last = _exactly(rule, values, 2)
-            elif rule == "avoiding-center":
-                self._avoid, last = _exactly(rule, values, 2)
-            elif rule == "ewma":
-                w, n, last = _exactly(rule, values, 3)
-                self._ew, self._ew_n = float(w), int(n)
-            elif rule == "cusum":
-                up_, down_, up_len, down_len, last = _exactly(rule, values, 5)
-                self._cu, self._cd = float(up_), float(down_)
-                self._cu_len, self._cd_len = int(up_len), int(down_len)
+        for rule, values in zip(plan.order, states):  # noqa: B905 -- lengths checked above
+            try:
+                if rule in plan.windows:
+                    up, down, last = values
+                    lane, window = plan.windows[rule]
+                    win |= _spread(up, lane, window) | _spread(down, lane + 1, window)
+                elif rule == "ewma":
+                    w, n, last = values
+                    self._ew, self._ew_n = float(w), int(n)
+                elif rule == "cusum":
+                    up_, down_, up_len, down_len, last = values
+                    self._cu, self._cd = float(up_), float(down_)
+                    self._cu_len, self._cd_len = int(up_len), int(down_len)
+                elif rule == "run-one-side":
+                    self._run, last = values
+                elif rule == "trend":
+                    self._trend_prev, self._trend_run, last = values
+                elif rule == "alternating":
+                    self._alt_prev, self._alt_step, self._alt_len, last = values
+                elif rule == "hugging-center":
+                    self._hug, last = values
+                elif rule == "avoiding-center":
+                    self._avoid, last = values
+                elif values:  # beyond-limits, mr-beyond-limit
+                    raise ValueError
+            except (TypeError, ValueError):
+                raise ValueError(f"{rule}: cannot use the saved state {values!r}") from None
         self._win = win
         self._last = position if position is not None and last == position else last
-
-
-def _exactly(rule: str, values: Sequence[Any], n: int) -> Sequence[Any]:
-    if len(values) != n:
-        raise ValueError(f"{rule} state needs {n} values, got {len(values)}")
-    return values
