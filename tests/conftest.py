@@ -4,12 +4,37 @@
 temporary directory, so store and lifecycle tests exercise the same WAL file the service uses.
 """
 
+import dataclasses
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 
+from limitwatch.model import Reading
 from limitwatch.store import Store
+
+# -- Readings are read-only ----------------------------------------------------------------------
+# Reading is a plain (not frozen) slotted dataclass because one is made per message and a frozen
+# one's __init__ cost three times as much. Throughout the tests every Reading refuses a change
+# after construction, so code that would change one fails here (tests/test_model.py checks it).
+
+
+def _read_only(reading: Any, name: str, value: Any) -> None:
+    try:
+        getattr(reading, name)
+    except AttributeError:  # not set yet: __init__, or unpickling
+        object.__setattr__(reading, name, value)
+        return
+    raise dataclasses.FrozenInstanceError(f"a Reading is read-only: cannot assign to {name!r}")
+
+
+def _no_delete(reading: Any, name: str) -> None:
+    raise dataclasses.FrozenInstanceError(f"a Reading is read-only: cannot delete {name!r}")
+
+
+Reading.__setattr__ = _read_only  # type: ignore[method-assign,assignment]
+Reading.__delattr__ = _no_delete  # type: ignore[method-assign,assignment]
 
 
 @pytest.fixture
