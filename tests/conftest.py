@@ -12,29 +12,34 @@ from typing import Any
 import pytest
 
 from limitwatch.model import Reading
+from limitwatch.stats.signal import Signal
 from limitwatch.store import Store
 
-# -- Readings are read-only ----------------------------------------------------------------------
-# Reading is a plain (not frozen) slotted dataclass because one is made per message and a frozen
-# one's __init__ cost three times as much. Throughout the tests every Reading refuses a change
-# after construction, so code that would change one fails here (tests/test_model.py checks it).
+# -- Readings and signals are read-only -----------------------------------------------------------
+# Reading and Signal are plain (not frozen) slotted dataclasses because one is made per message
+# (per signal) and a frozen one's __init__ cost three to five times as much. Throughout the tests
+# each refuses a change after construction, so code that would change one fails here
+# (tests/test_model.py checks it).
 
 
-def _read_only(reading: Any, name: str, value: Any) -> None:
+def _read_only(obj: Any, name: str, value: Any) -> None:
     try:
-        getattr(reading, name)
+        getattr(obj, name)
     except AttributeError:  # not set yet: __init__, or unpickling
-        object.__setattr__(reading, name, value)
+        object.__setattr__(obj, name, value)
         return
-    raise dataclasses.FrozenInstanceError(f"a Reading is read-only: cannot assign to {name!r}")
+    kind = type(obj).__name__
+    raise dataclasses.FrozenInstanceError(f"a {kind} is read-only: cannot assign to {name!r}")
 
 
-def _no_delete(reading: Any, name: str) -> None:
-    raise dataclasses.FrozenInstanceError(f"a Reading is read-only: cannot delete {name!r}")
+def _no_delete(obj: Any, name: str) -> None:
+    kind = type(obj).__name__
+    raise dataclasses.FrozenInstanceError(f"a {kind} is read-only: cannot delete {name!r}")
 
 
-Reading.__setattr__ = _read_only  # type: ignore[method-assign,assignment]
-Reading.__delattr__ = _no_delete  # type: ignore[method-assign,assignment]
+for _kind in (Reading, Signal):
+    _kind.__setattr__ = _read_only  # type: ignore[method-assign,assignment]
+    _kind.__delattr__ = _no_delete  # type: ignore[method-assign,assignment]
 
 
 @pytest.fixture

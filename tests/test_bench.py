@@ -47,12 +47,15 @@ def report() -> dict:
 
 def test_every_part_reports_its_figures_with_conditions(report):
     names = [f["name"] for f in report["figures"]]
-    assert names[:4] == [
+    assert names[:5] == [
         "engine 20 streams",
         "engine 300 streams",
+        "engine 20 streams, signal-heavy",
         "engine / flat yardstick",
         "file end to end",
     ]
+    heavy = {f["name"]: f for f in report["figures"]}["engine 20 streams, signal-heavy"]
+    assert heavy["conditions"]["signals_per_reading"] > 0.2
     assert "memory per stream at 300 streams" in names and "restore 300 streams" in names
     assert sum(n.startswith("publish to commit") for n in names) == 2 * len(
         bench.LATENCY_BATCH_WAITS
@@ -116,9 +119,10 @@ def test_text_output_prints_each_figure_then_its_conditions(monkeypatch):
     assert lines[0].startswith("limitwatch bench on ") and "(quick sizes)" in lines[0]
     assert "load average " in lines[0] and "(1/5/15 min)" in lines[0]
     heads = [i for i, line in enumerate(lines) if line.startswith("engine ")]
-    assert len(heads) == 3
+    assert len(heads) == 4
     flat = lines[heads.pop()]
     assert flat.startswith("engine / flat yardstick: ") and "target >= 0.50: " in flat
+    assert "signal-heavy" in lines[heads.pop()]
     for i in heads:
         assert "readings/s" in lines[i] and "target >= 200,000 readings/s" in lines[i]
         assert lines[i + 1].startswith("    streams: ")

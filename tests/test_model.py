@@ -1,4 +1,4 @@
-"""Reading: a plain slotted dataclass that the tests hold to read-only (see conftest.py)."""
+"""Reading and Signal: plain slotted dataclasses that the tests hold read-only (conftest.py)."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ import pickle
 import pytest
 
 from limitwatch.model import Reading
+from limitwatch.stats.signal import Signal
 
 
 def test_a_reading_refuses_changes_throughout_the_tests():
@@ -25,3 +26,11 @@ def test_a_reading_is_slotted_and_survives_pickling():
     assert not hasattr(reading, "__dict__")
     assert pickle.loads(pickle.dumps(reading)) == reading
     assert repr(reading) == "Reading(stream='line-1/temp', time=60.0, value=21.5, seq=None)"
+
+
+def test_a_signal_refuses_changes_throughout_the_tests():
+    signal = Signal("trend", "x", "upper", 9, (4, 5, 6, 7, 8, 9))
+    with pytest.raises(dataclasses.FrozenInstanceError, match="involved"):
+        signal.involved = (9,)
+    assert not hasattr(signal, "__dict__")
+    assert pickle.loads(pickle.dumps(signal)) == signal

@@ -71,6 +71,9 @@ from limitwatch.localbroker import mosquitto_path, private_broker
 ALL_DETECTORS = "nelson,ewma,cusum"
 """Every run test of Nelson's eight, the moving-range limit, EWMA and CUSUM."""
 
+SIGNAL_HEAVY_SHIFT = 1.5
+"""Sigmas by which the signal-heavy engine run moves the level up and down."""
+
 T0 = 1_798_761_600.0  # 2027-01-01T00:00:00Z, the invented plant's first reading
 
 
@@ -222,12 +225,22 @@ def _engine_monitors(streams: int, rules: str) -> list[Any]:
 
 
 def _engine_rounds(
-    names: list[str], per_stream: int, rng: np.random.Generator, first_step: int
+    names: list[str],
+    per_stream: int,
+    rng: np.random.Generator,
+    first_step: int,
+    shift: float = 0.0,
 ) -> list[list[Any]]:
-    """``per_stream`` rounds of one standard normal reading per stream, a minute apart."""
+    """``per_stream`` rounds of one standard normal reading per stream, a minute apart; with
+    ``shift``, the level jumps between +shift and -shift sigma every few readings (streams in
+    alarm: most readings complete some test)."""
     from limitwatch.model import Reading
 
-    values = rng.normal(0.0, 1.0, (per_stream, len(names))).tolist()
+    values = rng.normal(0.0, 1.0, (per_stream, len(names)))
+    if shift:
+        steps = np.arange(first_step, first_step + per_stream)
+        values += shift * np.where(np.sin(steps / 7.0) >= 0.0, 1.0, -1.0)[:, None]
+    values = values.tolist()
     return [
         [Reading(name, T0 + 60.0 * (first_step + k), v) for name, v in zip(names, row, strict=True)]
         for k, row in enumerate(values)
@@ -257,7 +270,12 @@ def _run_flat(states: list[Any], rounds: list[list[Any]]) -> list[tuple[str, str
 
 
 def engine_runs(
-    streams: int, per_stream: int, repeats: int, rules: str = ALL_DETECTORS, seed: int = 1
+    streams: int,
+    per_stream: int,
+    repeats: int,
+    rules: str = ALL_DETECTORS,
+    seed: int = 1,
+    shift: float = 0.0,
 ) -> tuple[list[dict[str, float]], int]:
     """Each run's CPU-time and wall-clock rates, CPU time per reading and the load average,
     and the signals raised in all of them.
@@ -271,7 +289,7 @@ def engine_runs(
     runs: list[dict[str, float]] = []
     signals = 0
     for repeat in range(repeats):
-        rounds = _engine_rounds(names, per_stream, rng, repeat * per_stream)
+        rounds = _engine_rounds(names, per_stream, rng, repeat * per_stream, shift)
         gc.collect()
         clock = Clock()
         signals += len(_run_engine(monitors, rounds))
@@ -358,6 +376,29 @@ def measure_engine(sizes: Sizes) -> list[Figure]:
             )
         )
     streams, per_stream = sizes.engine_few
+    load = load_average()
+    runs, signals = engine_runs(streams, per_stream, sizes.repeats, shift=SIGNAL_HEAVY_SHIFT)
+    out.append(
+        Figure(
+            f"engine {streams:,} streams, signal-heavy",
+            "readings/s",
+            [r["cpu_rate"] for r in runs],
+            {
+                "streams": streams,
+                "readings_per_run": streams * per_stream,
+                "rules": ALL_DETECTORS,
+                "readings": f"the level jumps between +{SIGNAL_HEAVY_SHIFT:g} and "
+                f"-{SIGNAL_HEAVY_SHIFT:g} sigma every 22 readings or so: streams in alarm",
+                "clock": "readings per second of process CPU time",
+                "signals_per_reading": round(signals / (streams * per_stream * sizes.repeats), 3),
+                "load_average": load,
+            },
+            extra={
+                "wall_clock_readings_per_s": statistics.median(r["wall_rate"] for r in runs),
+                "cpu_us_per_reading": statistics.median(r["cpu_us"] for r in runs),
+            },
+        )
+    )
     load = load_average()
     flat = flat_comparison(streams, per_stream, sizes.flat_pairs)
     out.append(
