@@ -105,6 +105,9 @@ def test_mqtt_ratio_pairs_the_two_clients_of_the_same_run(report):
     ratio = figures["mqtt end to end / bare subscriber"]
     assert ratio["runs"] == pytest.approx([o / b for o, b in zip(ours, bare, strict=True)])
     assert ratio["target"] == ">= 0.7"
+    live = figures["mqtt end to end, live publisher"]
+    assert len(live["runs"]) == TINY.repeats and live["extra"]["publisher_messages_per_s"] > 0
+    assert "as fast as the broker acknowledges" in live["conditions"]["how"]
     for batch_wait, _ in bench.LATENCY_BATCH_WAITS:
         p50 = figures[f"publish to commit p50, batch_wait {batch_wait}"]["value"]
         p99 = figures[f"publish to commit p99, batch_wait {batch_wait}"]["value"]

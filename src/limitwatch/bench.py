@@ -18,6 +18,8 @@ returns :class:`Figure` objects that ``limitwatch bench`` prints or writes as JS
     The service draining a backlog of QoS 1 messages from a private Mosquitto (persistent
     session, manual acknowledgement after each commit), beside a bare paho-mqtt subscriber that
     only counts the same number of messages from the same broker: the ceiling for a Python client.
+    Then the same with a live publisher: the service subscribed while another process publishes
+    as fast as the broker takes the messages, all sharing the machine as on a site.
 ``latency``
     Delay from publish to commit while a publisher in another process sends at a fixed rate; the
     publish time travels in each message as the reading's time.
@@ -633,8 +635,9 @@ def _message(i: int, streams: int, t: float, value: float) -> tuple[str, bytes]:
     return topic, json.dumps({"v": value, "t": t, "seq": i // streams + 1}).encode()
 
 
-def _publish_backlog(port: int, messages: int, streams: int, seed: int) -> None:
-    """Publish QoS 1 messages as fast as the broker takes them; return once all are acknowledged."""
+def _publish_backlog(port: int, messages: int, streams: int, seed: int) -> float:
+    """Publish QoS 1 messages as fast as the broker takes them; return once all are acknowledged,
+    with the time (epoch seconds) the first was handed to the client."""
     mqtt = _paho()
     rng = np.random.default_rng(seed)
     values = np.round(rng.normal(50.0, 1.0, messages), 3).tolist()
@@ -643,6 +646,7 @@ def _publish_backlog(port: int, messages: int, streams: int, seed: int) -> None:
     client.max_queued_messages_set(0)
     client.connect("127.0.0.1", port)
     client.loop_start()
+    first = time.time()
     try:
         # In slices: paho scans its whole list of unacknowledged messages on every PUBACK.
         for start in range(0, messages, 1000):
@@ -655,6 +659,7 @@ def _publish_backlog(port: int, messages: int, streams: int, seed: int) -> None:
     finally:
         client.disconnect()
         client.loop_stop()
+    return first
 
 
 def _bare_session(port: int, client_id: str) -> Any:
@@ -780,6 +785,29 @@ def _cpu_with_children() -> float:
     return time.process_time() + children.ru_utime + children.ru_stime
 
 
+def live_mqtt_run(
+    folder: Path, port: int, publisher: Any, messages: int, streams: int, seed: int
+) -> tuple[float, float]:
+    """The service subscribed while a publisher in another process sends ``messages`` as fast
+    as the broker takes them: both share the machine, as on a live site. Returns the service's
+    readings per second (first publish to last commit) and the publisher's messages per second."""
+    from limitwatch.config import load_config
+
+    folder.mkdir(parents=True, exist_ok=True)
+    config = load_config(_service_config(folder, source=_mqtt_source(port, "bench-live")))
+    service = _timed_service_class()(config)
+    service.expect = messages
+    with _running(service):
+        _wait(lambda: service.mqtt["gateway"].subscribed.is_set(), 10, "the subscription")
+        first = publisher.apply_async(_publish_backlog, (port, messages, streams, seed)).get(
+            timeout=600
+        )
+        published = time.time()
+        _await_commits(service)
+    assert service.last_commit_at is not None
+    return messages / (service.last_commit_at - first), messages / (published - first)
+
+
 def measure_mqtt(sizes: Sizes, workdir: Path) -> list[Figure]:
     conditions = {
         "messages_per_run": sizes.mqtt_messages,
@@ -820,6 +848,25 @@ def measure_mqtt(sizes: Sizes, workdir: Path) -> list[Figure]:
         **conditions,
         "client": "paho-mqtt, MQTT 5, persistent session, automatic acks; counts only",
     }
+    live_rates, publisher_rates = [], []
+    live_load = load_average()
+    with multiprocessing.get_context("spawn").Pool(1) as publisher:
+        for i in range(sizes.repeats):
+            folder = workdir / f"mqtt-live-{i}"
+            with private_broker(folder / "broker", sizes.mqtt_messages + 1000) as port:
+                ours, theirs = live_mqtt_run(
+                    folder, port, publisher, sizes.mqtt_messages, sizes.mqtt_streams, seed=i
+                )
+            live_rates.append(ours)
+            publisher_rates.append(theirs)
+    live_conditions = {
+        **service_conditions,
+        "how": "the service subscribed first; a publisher in another process then sends the "
+        "messages as fast as the broker acknowledges them (QoS 1, 1,000 in flight) while the "
+        "service drains them; rate = messages / (last commit - first publish)",
+        "clock": "wall clock; publisher, broker and service share the machine",
+        "load_average": live_load,
+    }
     return [
         Figure(
             "mqtt end to end",
@@ -839,6 +886,13 @@ def measure_mqtt(sizes: Sizes, workdir: Path) -> list[Figure]:
             ratios,
             {"runs_paired": "each ratio pairs the two clients of one run on one broker"},
             target=(">=", 0.70),
+        ),
+        Figure(
+            "mqtt end to end, live publisher",
+            "readings/s",
+            live_rates,
+            live_conditions,
+            extra={"publisher_messages_per_s": statistics.median(publisher_rates)},
         ),
     ]
 
