@@ -41,6 +41,10 @@ and presets may be mixed in::
 
 :func:`build_detectors` turns the parsed list into fresh detector objects for one stream.
 
+These classes are the reference for each test. A stream monitor runs its selection through
+:mod:`limitwatch.stats.fused`, one call per reading, which the tests hold to exactly these
+classes' signals and states.
+
 References
 ----------
 Western Electric Co. (1956). *Statistical Quality Control Handbook*. Indianapolis.
@@ -58,9 +62,8 @@ import inspect
 import math
 import operator
 import re
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from functools import partial
 from types import MappingProxyType
 from typing import Any, ClassVar
 
@@ -600,11 +603,6 @@ class RuleSpec:
     def build(self) -> Detector:
         """A fresh detector; every stream gets its own."""
         return DETECTORS[self.rule](**dict(self.params))
-
-    def maker(self) -> Callable[[], Detector]:
-        """:meth:`build` ready-made, for callers that build the same detector many times (a
-        restart builds one per stream): the parameters are unpacked once."""
-        return partial(DETECTORS[self.rule], **dict(self.params))
 
     def __str__(self) -> str:
         if not self.params:
