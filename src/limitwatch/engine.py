@@ -4,9 +4,8 @@ A :class:`StreamMonitor` owns everything one stream needs: the learning buffer (
 locked baseline, the previous reading (for the moving range and for refusing redeliveries) and
 the counters of every configured test (one :class:`~limitwatch.stats.fused.FusedRules`, run in
 one call per reading and held by the tests to the separate detectors' results). It does no I/O
-and reads no clock -- the time
-arrives on the :class:`~limitwatch.model.Reading` -- so the live service, ``limitwatch replay``
-and the tests all run exactly the same code.
+and reads no clock -- the time arrives on the :class:`~limitwatch.model.Reading` -- so the live
+service, ``limitwatch replay`` and the tests all run exactly the same code.
 
 Conventions worth knowing:
 
