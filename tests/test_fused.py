@@ -60,10 +60,10 @@ class Reference:
         self.x = [d for d in built if d.chart == "x"]
         self.mr = [d for d in built if d.chart == "mr"]
 
-    def update(self, index: int, z: float, mr: float | None) -> list:
-        out = [s for d in self.x if (s := d.update(index, z)) is not None]
+    def update(self, index: int, z: float, mr: float | None) -> tuple:
+        out = tuple(s for d in self.x if (s := d.update(index, z)) is not None)
         if mr is not None:
-            out += [s for d in self.mr if (s := d.update(index, mr)) is not None]
+            out += tuple(s for d in self.mr if (s := d.update(index, mr)) is not None)
         return out
 
     def states(self) -> list:

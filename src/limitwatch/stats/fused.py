@@ -26,7 +26,7 @@ derived from them. A stream's :class:`FusedRules` holds only its counters.
 >>> plan = FusedPlan(parse_rules("western-electric"))
 >>> rules = FusedRules(plan)
 >>> [rules.update(i, z, None) for i, z in enumerate([2.5, 0.3])]
-[[], []]
+[(), ()]
 >>> [(s.rule, s.side, s.involved) for s in rules.update(2, 2.1, 0.5)]
 [('two-of-three-zone-a', 'upper', (0, 1, 2))]
 
@@ -216,18 +216,18 @@ class FusedRules:
         start = 0.0 if self._plan.cusum is None else self._plan.cusum[2]
         self._cu = self._cd = start
 
-    def update(self, index: int, z: float, mr: float | None) -> list[Signal]:
-        if not -_INF < z < _INF or (mr is not None and not mr < _INF):  # NaN fails both
+    def update(self, index: int, z: float, mr: float | None) -> tuple[Signal, ...]:
+        if z - z != 0.0 or (mr is not None and mr - mr != 0.0):  # inf - inf and NaN are NaN
             raise ValueError(f"reading {index}: z={z!r}, moving range {mr!r} is not finite")
         plan = self._plan
         self._last = index
-        hits: list[Signal] = []
+        hits: tuple[Signal, ...] = ()
         az = z if z >= 0.0 else -z
         # beyond-limits (k is inf when not selected)
         k = plan.beyond_k
         if az > k:
             side, bound = ("upper", k) if z > 0.0 else ("lower", -k)
-            hits.append(Signal("beyond-limits", "x", side, index, (index,), z, bound))
+            hits += (Signal("beyond-limits", "x", side, index, (index,), z, bound),)
         # two-of-three-zone-a and four-of-five-zone-b on the shared window
         win = (self._win << 4) & plan.full
         if az > plan.zone_low:
@@ -243,7 +243,7 @@ class FusedRules:
                         win &= others
                         first = index - ((mask.bit_length() - 1) >> 2)
                         side = "upper" if z > 0.0 else "lower"
-                        hits.append(Signal(rule, "x", side, index, tuple(range(first, index + 1))))
+                        hits += (Signal(rule, "x", side, index, tuple(range(first, index + 1))),)
         self._win = win
         # run-one-side
         length = plan.run_len
@@ -259,7 +259,7 @@ class FusedRules:
                 self._run = 0
                 side = "upper" if run > 0 else "lower"
                 involved = tuple(range(index - length + 1, index + 1))
-                hits.append(Signal("run-one-side", "x", side, index, involved))
+                hits += (Signal("run-one-side", "x", side, index, involved),)
             else:
                 self._run = run
         # trend
@@ -276,7 +276,7 @@ class FusedRules:
                 self._trend_prev, self._trend_run = None, 0
                 side = "upper" if run > 0 else "lower"
                 involved = tuple(range(index - length + 1, index + 1))
-                hits.append(Signal("trend", "x", side, index, involved))
+                hits += (Signal("trend", "x", side, index, involved),)
             else:
                 self._trend_prev, self._trend_run = z, run
         # alternating
@@ -293,7 +293,7 @@ class FusedRules:
             if n >= length:
                 self._alt_prev, self._alt_step, self._alt_len = None, 0, 0
                 involved = tuple(range(index - n + 1, index + 1))
-                hits.append(Signal("alternating", "x", "both", index, involved))
+                hits += (Signal("alternating", "x", "both", index, involved),)
             else:
                 self._alt_prev, self._alt_step, self._alt_len = z, step, n
         # hugging-center
@@ -303,7 +303,7 @@ class FusedRules:
             if n >= length:
                 self._hug = 0
                 involved = tuple(range(index - n + 1, index + 1))
-                hits.append(Signal("hugging-center", "x", "both", index, involved))
+                hits += (Signal("hugging-center", "x", "both", index, involved),)
             else:
                 self._hug = n
         # avoiding-center
@@ -313,7 +313,7 @@ class FusedRules:
             if n >= length:
                 self._avoid = 0
                 involved = tuple(range(index - n + 1, index + 1))
-                hits.append(Signal("avoiding-center", "x", "both", index, involved))
+                hits += (Signal("avoiding-center", "x", "both", index, involved),)
             else:
                 self._avoid = n
         # EWMA
@@ -326,7 +326,7 @@ class FusedRules:
                 self._ew, self._ew_n = 0.0, 0
                 side, bound = ("upper", limit) if w > 0 else ("lower", -limit)
                 involved = tuple(range(index - min(n, span) + 1, index + 1))
-                hits.append(Signal("ewma", "x", side, index, involved, w, bound))
+                hits += (Signal("ewma", "x", side, index, involved, w, bound),)
             else:
                 self._ew, self._ew_n = w, n
         # CUSUM
@@ -347,16 +347,16 @@ class FusedRules:
                 self._cu_len = self._cd_len = 0
                 side, stat, n = ("upper", up, up_len) if up > h else ("lower", down, down_len)
                 involved = tuple(range(index - n + 1, index + 1))
-                hits.append(Signal("cusum", "x", side, index, involved, stat, h))
+                hits += (Signal("cusum", "x", side, index, involved, stat, h),)
             else:
                 self._cu, self._cd, self._cu_len, self._cd_len = up, down, up_len, down_len
         # mr-beyond-limit (limit inf when not selected)
         limit = plan.mr_limit
         if mr is not None and mr > limit:
             involved = (index - 1, index) if index > 0 else (index,)
-            hits.append(Signal("mr-beyond-limit", "mr", "upper", index, involved, mr, limit))
+            hits += (Signal("mr-beyond-limit", "mr", "upper", index, involved, mr, limit),)
         if len(hits) > 1:
-            hits.sort(key=lambda s: plan.rank[s.rule])
+            hits = tuple(sorted(hits, key=lambda s: plan.rank[s.rule]))
         return hits
 
     # -- checkpoints: each reference detector's state() list, in selection order ------------
