@@ -4,15 +4,19 @@
 temporary directory, so store and lifecycle tests exercise the same WAL file the service uses.
 """
 
+import dataclasses
 import inspect
 import os
 import types
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 from hypothesis import settings
 
+from limitwatch.model import Reading
+from limitwatch.stats.signal import Signal
 from limitwatch.store import Store
 
 # `scripts/test.sh --fast` sets HYPOTHESIS_PROFILE=fast: fewer examples for property tests that
@@ -20,6 +24,32 @@ from limitwatch.store import Store
 # tests that choose their own max_examples keep it in both.
 settings.register_profile("fast", max_examples=25)
 settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "default"))
+
+# -- Readings and signals are read-only -----------------------------------------------------------
+# Reading and Signal are plain (not frozen) slotted dataclasses because one is made per message
+# (per signal) and a frozen one's __init__ cost three to five times as much. Throughout the tests
+# each refuses a change after construction, so code that would change one fails here
+# (tests/test_model.py checks it).
+
+
+def _read_only(obj: Any, name: str, value: Any) -> None:
+    try:
+        getattr(obj, name)
+    except AttributeError:  # not set yet: __init__, or unpickling
+        object.__setattr__(obj, name, value)
+        return
+    kind = type(obj).__name__
+    raise dataclasses.FrozenInstanceError(f"a {kind} is read-only: cannot assign to {name!r}")
+
+
+def _no_delete(obj: Any, name: str) -> None:
+    kind = type(obj).__name__
+    raise dataclasses.FrozenInstanceError(f"a {kind} is read-only: cannot delete {name!r}")
+
+
+for _kind in (Reading, Signal):
+    _kind.__setattr__ = _read_only  # type: ignore[method-assign,assignment]
+    _kind.__delattr__ = _no_delete  # type: ignore[method-assign,assignment]
 
 
 @pytest.fixture

@@ -449,6 +449,34 @@ def test_round_trip_without_capability_and_missing_key() -> None:
         Baseline.from_dict(data)
 
 
+def test_a_stored_baseline_read_back_without_checks_equals_the_checked_one() -> None:
+    """``from_stored`` (restart path, trusts what the store wrote) and ``from_dict`` agree on
+    every kind of baseline, and a document of another shape takes the checked path."""
+    x = np.round(np.random.default_rng(41).exponential(5.0, 45), 2)
+    x[30] = 80.0
+    fitted = [
+        fit_baseline(x, exclude_beyond=True, lower_bound=0.0, spec_upper=30.0),
+        fit_baseline(noisy(25, seed=2), method="median"),
+        fit_baseline(noisy(12, seed=3), warn_points=20),
+        Baseline.from_limits(center=20.0, sigma=1.5, lower_bound=16.0, spec_lower=14.0),
+    ]
+    assert fitted[0].exclusions and fitted[0].capability and fitted[2].warnings
+    for b in fitted:
+        data = json.loads(json.dumps(b.to_dict()))
+        assert Baseline.from_stored(data) == Baseline.from_dict(data) == b
+        assert isinstance(Baseline.from_stored(data).excluded, tuple)
+    data = fitted[1].to_dict()
+    del data["mr_ucl"]
+    with pytest.raises(BaselineError, match="mr_ucl"):
+        Baseline.from_stored(data)
+    data["extra"] = 1.0  # as many keys as to_dict writes, one unknown
+    with pytest.raises(BaselineError, match="mr_ucl"):
+        Baseline.from_stored(data)
+    data = {**fitted[1].to_dict(), "method": "mode"}
+    with pytest.raises(BaselineError, match="method"):
+        Baseline.from_stored(data)
+
+
 def test_from_limits_uses_the_factors_sigma_implies() -> None:
     b = Baseline.from_limits(center=20.0, sigma=1.5, lower_bound=16.0, spec_lower=14.0)
     assert (b.ucl, b.lcl_raw) == (24.5, 15.5)

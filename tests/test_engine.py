@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -188,3 +189,39 @@ def test_restore_with_changed_rules_starts_detectors_fresh():
 def test_settings_refuse_a_learning_window_below_the_floor():
     with pytest.raises(ValueError, match="learn_count"):
         MonitorSettings(learn_count=5, min_points=10)
+
+
+DATA = Path(__file__).parent / "data"
+CHECKPOINT_BEFORE_FUSED = DATA / "checkpoint-format-2-separate-detectors.json"
+
+
+def test_a_checkpoint_written_by_the_separate_detectors_restores_to_the_same_state():
+    """The file was written by the engine before it ran every test in one fused call; restoring
+    it must give back exactly that state, and continue as an uninterrupted monitor does."""
+    doc = json.loads(CHECKPOINT_BEFORE_FUSED.read_text())
+    saved, values = doc["checkpoint"], doc["readings"]
+    config = MonitorSettings(learn_count=20, rules="nelson,ewma,cusum")
+    restored = StreamMonitor.restore(json.loads(json.dumps(saved)), config)
+    assert restored.snapshot() == saved
+    assert any(state and state[0] for state in saved["states"]), "live run-test state"
+    whole = StreamMonitor(saved["stream"], config)
+    feed(whole, values)
+    assert whole.snapshot() == saved
+    later = [50.0 + 3.5 * (-1) ** i for i in range(40)]
+    start = len(values) * 60.0
+    got, expected = feed(restored, later, start=start), feed(whole, later, start=start)
+    assert [o.signals for o in got] == [o.signals for o in expected]
+    assert any(o.signals for o in got)
+
+
+def test_a_format_1_checkpoint_restores_to_the_same_state():
+    """Format 1 kept each detector's full snapshot (parameters included) under ``detectors``."""
+    doc = json.loads(CHECKPOINT_BEFORE_FUSED.read_text())
+    saved = doc["checkpoint"]
+    config = MonitorSettings(learn_count=20, rules="nelson,ewma,cusum")
+    x, mr = config.build_detectors()
+    for detector, values in zip((*x, *mr), saved["states"], strict=True):
+        detector.set_state(values)
+    old = {k: v for k, v in saved.items() if k not in ("states", "rules")}
+    old = {**old, "format": 1, "detectors": [d.snapshot() for d in (*x, *mr)]}
+    assert StreamMonitor.restore(json.loads(json.dumps(old)), config).snapshot() == saved

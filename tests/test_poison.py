@@ -384,16 +384,23 @@ def test_an_engine_failure_is_an_engine_error_dead_letter_naming_the_stream(fres
     assert "one at a time" not in caplog.text and "no monitor can be made" in caplog.text
 
 
+def _spoil_run_count(state: dict) -> None:
+    """Edit a checkpoint the way a careless hand would: the run-one-side count becomes text,
+    which the restore takes as it is and the next reading trips over."""
+    position = list(SETTINGS.plan.order).index("run-one-side")
+    state["states"][position][0] = "eight"
+
+
 def test_an_engine_failure_after_the_monitor_moved_is_undone_from_the_store(fresh_db, caplog):
-    """A checkpoint edited by hand (its count no longer matches its detectors' positions): the
-    detectors raise after the monitor moved. The batch is applied again one item at a time,
-    the monitor is rebuilt from the store, and only that reading is a dead letter."""
+    """A checkpoint edited by hand (a run count that is not a number): the detectors raise
+    after the monitor moved. The batch is applied again one item at a time, the monitor is
+    rebuilt from the store, and only that reading is a dead letter."""
     pipe = pipeline(fresh_db)
     pipe.process([_good("a", i) for i in range(10)], now=T0)
     pipe.checkpoint_all(now=T0)
     state = fresh_db.load_checkpoint("a")
     assert state is not None and state["baseline"] is not None
-    state["count"] += 7
+    _spoil_run_count(state)
     with fresh_db.transaction():
         fresh_db.save_checkpoint("a", state, now=T0)
     again = pipeline(fresh_db)
@@ -403,7 +410,7 @@ def test_an_engine_failure_after_the_monitor_moved_is_undone_from_the_store(fres
     assert [reason for _, reason in result.dead] == ["engine-error"]
     assert [o.reading.stream for o in result.outcomes] == ["b", "b"]
     (letter,) = fresh_db.dead_letters()
-    assert "stream 'a'" in letter.reason and "expected reading position" in letter.reason
+    assert "stream 'a'" in letter.reason and "TypeError" in letter.reason
     assert again.monitors["a"].snapshot() == before
     assert "one at a time" in caplog.text
 
@@ -416,7 +423,7 @@ def test_a_checkpoint_that_cannot_be_caught_up_does_not_stop_the_start(fresh_db,
     pipe.checkpoint_all(now=T0)
     state = fresh_db.load_checkpoint("a")
     assert state is not None
-    state["count"] += 7
+    _spoil_run_count(state)
     with fresh_db.transaction():
         fresh_db.save_checkpoint("a", state, now=T0)
     pipe.process([_good("a", 10)], now=T0)  # committed after the checkpoint, not in it

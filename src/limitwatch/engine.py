@@ -2,9 +2,10 @@
 
 A :class:`StreamMonitor` owns everything one stream needs: the learning buffer (phase I), the
 locked baseline, the previous reading (for the moving range and for refusing redeliveries) and
-one fresh instance of every configured detector. It does no I/O and reads no clock -- the time
-arrives on the :class:`~limitwatch.model.Reading` -- so the live service, ``limitwatch replay``
-and the tests all run exactly the same code.
+the counters of every configured test (one :class:`~limitwatch.stats.fused.FusedRules`, run in
+one call per reading and held by the tests to the separate detectors' results). It does no I/O
+and reads no clock -- the time arrives on the :class:`~limitwatch.model.Reading` -- so the live
+service, ``limitwatch replay`` and the tests all run exactly the same code.
 
 Conventions worth knowing:
 
@@ -40,14 +41,14 @@ Conventions worth knowing:
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from limitwatch.model import Outcome, Phase, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError, check_usable, fit_baseline
+from limitwatch.stats.fused import FusedPlan, FusedRules
 from limitwatch.stats.rules import DETECTORS, RuleSpec, parse_rules
-from limitwatch.stats.signal import Detector
+from limitwatch.stats.signal import Detector, Signal
 
 Z_LIMIT = 1e100
 """Farthest a reading may lie from the center line, in sigmas (and largest moving range, in
@@ -98,23 +99,16 @@ class MonitorSettings:
     detectors_key: str = field(init=False, repr=False, compare=False)
     """Every detector with all its parameters, X chart first: a checkpoint whose key differs
     was written under other rules, and its run counts must not be reused."""
-    _makers: tuple[tuple[Callable[[], Detector], ...], ...] = field(
-        init=False, repr=False, compare=False
-    )
-    """One ready-made constructor call per detector (X chart, MR chart): a restart builds a
-    dozen detectors for each of its streams, and the spec's parameters need not be unpacked
-    again every time."""
+    plan: FusedPlan = field(init=False, repr=False, compare=False)
+    """Every selected test's parameters, checked once here: each stream's tests run in one
+    :class:`~limitwatch.stats.fused.FusedRules`, made from this plan without checking again."""
 
     def __post_init__(self) -> None:
         specs = parse_rules(self.rules) if isinstance(self.rules, str) else tuple(self.rules)
         object.__setattr__(self, "rule_specs", tuple(specs))
         object.__setattr__(self, "x_specs", tuple(s for s in specs if _chart(s) == "x"))
         object.__setattr__(self, "mr_specs", tuple(s for s in specs if _chart(s) == "mr"))
-        object.__setattr__(
-            self,
-            "_makers",
-            tuple(tuple(s.maker() for s in chart) for chart in (self.x_specs, self.mr_specs)),
-        )
+        object.__setattr__(self, "plan", FusedPlan((*self.x_specs, *self.mr_specs)))
         object.__setattr__(self, "detectors_key", _detectors_key(self))
         if self.learn_count < self.min_points:
             raise ValueError(
@@ -125,9 +119,9 @@ class MonitorSettings:
             raise ValueError(f"max_gap must be positive seconds, got {self.max_gap}")
 
     def build_detectors(self) -> tuple[tuple[Detector, ...], tuple[Detector, ...]]:
-        """Fresh detectors for one stream: (X chart, MR chart), each in selection order."""
-        x, mr = self._makers
-        return tuple([make() for make in x]), tuple([make() for make in mr])
+        """Fresh reference detectors (X chart, MR chart), each in selection order: what a
+        stream's :class:`~limitwatch.stats.fused.FusedRules` stands in for."""
+        return tuple(s.build() for s in self.x_specs), tuple(s.build() for s in self.mr_specs)
 
     def fit(self, values: list[float]) -> Baseline:
         """Fit a baseline with these settings (phase I)."""
@@ -156,9 +150,8 @@ class StreamMonitor:
         "_last_time",
         "_last_value",
         "_learning",
-        "_mr_detectors",
+        "_rules",
         "_sigma",
-        "_x_detectors",
         "baseline",
         "baseline_version",
         "count",
@@ -185,8 +178,8 @@ class StreamMonitor:
         self.last_fit_error: str | None = None
         self.baseline: Baseline | None = None
         self.baseline_version = 0
-        self._x_detectors: tuple[Detector, ...] = ()
-        self._mr_detectors: tuple[Detector, ...] = ()
+        self._rules: FusedRules | None = None
+        """Every selected test's counters; made when a baseline is locked."""
         self._center = 0.0
         self._sigma = 1.0
         if baseline is not None:
@@ -217,7 +210,7 @@ class StreamMonitor:
         self._center = baseline.center
         self._sigma = baseline.sigma
         self._learning = None
-        self._x_detectors, self._mr_detectors = self.settings.build_detectors()
+        self._rules = FusedRules(self.settings.plan)
 
     # -- the hot path ---------------------------------------------------------------------------
 
@@ -278,16 +271,10 @@ class StreamMonitor:
         if learning:
             return self._learn(reading, index, mr)
 
-        signals: tuple[StreamSignal, ...] = ()  # most readings raise none: no list to build
-        for detector in self._x_detectors:
-            hit = detector.update(index, z)
-            if hit is not None:
-                signals += (self._place(hit, reading, mr),)
-        if mr is not None:
-            for detector in self._mr_detectors:
-                hit = detector.update(index, mr_sigma)
-                if hit is not None:
-                    signals += (self._place(hit, reading, mr),)
+        rules = self._rules
+        assert rules is not None
+        hits = rules.update(index, z, None if mr is None else mr_sigma)
+        signals = tuple([self._place(hit, reading, mr) for hit in hits]) if hits else ()
         # Positional: Outcome(reading, accepted, reason, index, phase, z, mr, signals)
         return Outcome(reading, True, None, index, "monitoring", z, mr, signals)
 
@@ -311,7 +298,7 @@ class StreamMonitor:
             reading, accepted=True, index=index, phase="learning", mr=mr, baseline_fitted=True
         )
 
-    def _place(self, hit: Any, reading: Reading, mr: float | None) -> StreamSignal:
+    def _place(self, hit: Signal, reading: Reading, mr: float | None) -> StreamSignal:
         baseline = self.baseline
         assert baseline is not None
         sigma = self._sigma
@@ -362,7 +349,7 @@ class StreamMonitor:
             "baseline": self.baseline.to_dict() if locked else None,  # type: ignore[union-attr]
             "baseline_version": self.baseline_version,
             "rules": self.settings.detectors_key if locked else None,
-            "states": [d.state() for d in (*self._x_detectors, *self._mr_detectors)],  # type: ignore[attr-defined]
+            "states": [] if self._rules is None else self._rules.states(),
         }
 
     @classmethod
@@ -385,29 +372,25 @@ class StreamMonitor:
         if data["baseline"] is None:
             monitor._learning = list(data["learning"])
             return monitor
-        monitor.set_baseline(Baseline.from_dict(data["baseline"]), data["baseline_version"])
+        # The store wrote this baseline: its numbers are trusted, not converted again.
+        monitor.set_baseline(Baseline.from_stored(data["baseline"]), data["baseline_version"])
         if found == 1:
             monitor._restore_format_1_detectors(data["detectors"])
         elif data["rules"] == settings.detectors_key:
             # Every detector's state ends with the position of the last reading it saw. JSON
             # gives each its own int object (28 bytes); the live monitor shares one.
-            position = monitor.count - 1
-            fresh = (*monitor._x_detectors, *monitor._mr_detectors)
-            for detector, values in zip(fresh, data["states"], strict=True):
-                if values and values[-1] == position:
-                    values = [*values[:-1], position]
-                detector.set_state(values)  # type: ignore[attr-defined]
+            monitor._rules.set_states(data["states"], position=monitor.count - 1)  # type: ignore[union-attr]
         return monitor
 
     def _restore_format_1_detectors(self, saved: list[dict[str, Any]]) -> None:
         """Format 1 kept each detector's full snapshot, parameters included."""
-        fresh = [*self._x_detectors, *self._mr_detectors]
+        x, mr = self.settings.build_detectors()
+        fresh = [*x, *mr]
         if [s.get("rule") for s in saved] == [d.rule for d in fresh] and all(
             _same_params(s, d.snapshot()) for s, d in zip(saved, fresh, strict=True)
         ):
             restored = [type(d).from_snapshot(s) for d, s in zip(fresh, saved, strict=True)]
-            split = len(self._x_detectors)
-            self._x_detectors, self._mr_detectors = tuple(restored[:split]), tuple(restored[split:])
+            self._rules.set_states([d.state() for d in restored])  # type: ignore[union-attr,attr-defined]
 
 
 _isfinite = math.isfinite

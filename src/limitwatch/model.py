@@ -11,11 +11,17 @@ from limitwatch.stats.signal import Chart, Side
 Phase = Literal["learning", "monitoring"]
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Reading:
     """One individual value of one stream. ``time`` is epoch seconds (UTC) and always supplied by
     the caller: the engine never reads a clock. ``seq`` is an optional sender sequence number,
-    the preferred key for refusing redelivered readings."""
+    the preferred key for refusing redelivered readings.
+
+    Treat it as read-only: a reading is a fact that arrived. It is not ``frozen`` because one is
+    made for every message, and a frozen dataclass's ``__init__`` (a guarded
+    ``object.__setattr__`` per field) cost about three times as much. The test suite makes
+    every ``Reading`` refuse changes after construction (``tests/conftest.py``), so code that
+    would change one fails there."""
 
     stream: str
     time: float

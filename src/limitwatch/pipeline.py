@@ -131,7 +131,9 @@ class Pipeline:
             for stream, state in self.store.iter_checkpoints():
                 try:
                     monitor = StreamMonitor.restore(state, self._settings_for(stream))
-                except (ValueError, KeyError, TypeError) as exc:
+                except Exception as exc:
+                    if store_failed(exc):
+                        raise
                     # e.g. a baseline this version refuses (a subnormal sigma): one stream's
                     # checkpoint must not keep the service from starting
                     log.error(
@@ -203,7 +205,9 @@ class Pipeline:
                             reading.time,
                             outcome.reason,
                         )
-            except ValueError as exc:  # a detector refusing its state (an edited checkpoint)
+            except Exception as exc:  # a checkpoint's state that cannot go on (edited by hand)
+                if store_failed(exc):
+                    raise
                 log.error(
                     "stream %s: the readings after its checkpoint cannot be applied (%s); "
                     "it starts afresh",

@@ -41,6 +41,10 @@ and presets may be mixed in::
 
 :func:`build_detectors` turns the parsed list into fresh detector objects for one stream.
 
+These classes are the reference for each test. A stream monitor runs its selection through
+:mod:`limitwatch.stats.fused`, one call per reading, which the tests hold to exactly these
+classes' signals and states.
+
 References
 ----------
 Western Electric Co. (1956). *Statistical Quality Control Handbook*. Indianapolis.
@@ -60,7 +64,6 @@ import operator
 import re
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from functools import partial
 from types import MappingProxyType
 from typing import Any, ClassVar
 
@@ -636,12 +639,6 @@ class RuleSpec:
         """A fresh detector; every stream gets its own."""
         make: Callable[..., Detector] = DETECTORS[self.rule]  # parameters checked when parsed
         return make(**dict(self.params))
-
-    def maker(self) -> Callable[[], Detector]:
-        """:meth:`build` ready-made, for callers that build the same detector many times (a
-        restart builds one per stream): the parameters are unpacked once."""
-        make: Callable[..., Detector] = DETECTORS[self.rule]
-        return partial(make, **dict(self.params))
 
     def __str__(self) -> str:
         if not self.params:

@@ -15,13 +15,17 @@ Chart = Literal["x", "mr"]
 Side = Literal["upper", "lower", "both"]
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Signal:
     """A rule that fired.
 
     ``index`` is the 0-based position (within its stream's monitored readings) of the reading that
     completed the pattern; ``involved`` lists the positions of every reading that is part of it,
     in ascending order and ending with ``index``.
+
+    Treat it as read-only. It is not ``frozen`` because a stream in a long alarm makes one for
+    most of its readings, and a frozen dataclass's ``__init__`` cost about five times as much;
+    the test suite makes every ``Signal`` refuse changes after construction (``tests/conftest.py``).
     """
 
     rule: str
