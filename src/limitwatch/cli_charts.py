@@ -39,7 +39,7 @@ from __future__ import annotations
 import glob
 import math
 from collections.abc import Sequence
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -211,6 +211,28 @@ def _chart_of(rule: str) -> str:
     return "x" if detector is None else detector.chart
 
 
+@dataclass(frozen=True, slots=True)
+class _RuleSpan:
+    """One rule's part of an incident: its first and last signalling reading."""
+
+    rule: str
+    first_index: int | None
+    last_index: int | None
+    signal: dict[str, Any]
+
+
+def _per_rule(alerts: Sequence[Alert]) -> list[_RuleSpan]:
+    """Each incident's rules as spans of their own (an incident from before rules were kept
+    per incident counts as one span of its opening rule)."""
+    out = []
+    for a in alerts:
+        if not a.rules:
+            out.append(_RuleSpan(a.rule, a.first_index, a.last_index, a.signal))
+        for t in a.rules.values():
+            out.append(_RuleSpan(t.rule, t.first_index, t.last_index, t.signal))
+    return out
+
+
 def flags_from_alerts(
     alerts: Sequence[Alert],
     readings: Sequence[StoredReading],
@@ -234,7 +256,7 @@ def flags_from_alerts(
         return found
 
     out: list[charts.Flag] = []
-    for a in alerts:
+    for a in _per_rule(alerts):
         chart = "mr" if a.signal.get("chart") == "mr" else "x"
         for index in {a.first_index, a.last_index}:
             if index is not None and index in by_index:

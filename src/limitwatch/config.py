@@ -22,7 +22,7 @@ Sections (``config/example.toml`` documents every key):
     ``type`` picks a notifier plugin; its keys are checked by that plugin's settings model.
 ``[[routes]]``
     which notifiers hear about which streams and severities. Every matching route applies;
-    with no routes at all, every notifier hears every notice except escalations.
+    with no routes at all, every notifier hears the default kinds of notice (not escalations).
 ``[budget]``
     the false-alarm budget the planner works to.
 
@@ -78,7 +78,15 @@ from pydantic import (
 )
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
-from limitwatch.alerts.lifecycle import SEVERITIES, AlertPolicy, NoticeKind, SeverityRule
+from limitwatch.alerts.lifecycle import (
+    DEFAULT_NOTICES,
+    NOTICE_KINDS,
+    SEVERITIES,
+    AlertPolicy,
+    NoticeKind,
+    SeverityRule,
+)
+from limitwatch.alerts.messages import StreamInfo
 from limitwatch.durations import parse_duration
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.payload import field_path
@@ -473,6 +481,7 @@ class AlertsSection(_Section):
     repeat_every: OffDuration = _POLICY.repeat_every_s
     escalate_after: OffDuration = _POLICY.escalate_after_s
     give_up_after: OffDuration = _POLICY.notification_ttl_s
+    max_shelf: PositiveDuration = 7 * 86400.0
     severity: list[SeverityEntry] = []
 
 
@@ -693,6 +702,9 @@ class Route(_Section):
     severities: list[Severity] = Field(default_factory=lambda: list(SEVERITIES), min_length=1)
     notifiers: list[str] = []
     escalate_to: list[str] = []
+    notify_on: list[Literal[NOTICE_KINDS]] = Field(  # type: ignore[valid-type]
+        default_factory=lambda: list(DEFAULT_NOTICES)
+    )
 
     @model_validator(mode="after")
     def _somewhere(self) -> Route:
@@ -928,19 +940,30 @@ class Config(_Section):
             severities=tuple(severities),
             notification_ttl_s=self.alerts.give_up_after,
             targets=self.targets,
+            stream_info=self.stream_info,
         )
 
+    def stream_info(self, stream: str) -> StreamInfo:
+        """The stream's ``description`` and ``unit`` from its settings, for notification texts."""
+        s = self.stream_settings(stream)
+        return StreamInfo(s.description, s.unit)
+
     def targets(self, stream: str, rule: str, severity: str, kind: NoticeKind) -> tuple[str, ...]:
-        """Notifier names for one notice: the ``notifiers`` (or, for an escalation, the
-        ``escalate_to``) of every route that covers the stream and severity, each name once.
-        With no routes configured, every notifier gets every notice but escalations."""
+        """Notifier names for one notice: the ``notifiers`` of every route that covers the
+        stream and severity and subscribes to the kind (``notify_on``), and for an escalation
+        also its ``escalate_to``; each name once. With no routes configured, every notifier
+        gets the default kinds but escalations."""
         if not self.routes:
-            return () if kind == "escalation" else tuple(n["name"] for n in self.notifiers)
+            if kind == "escalated" or kind not in DEFAULT_NOTICES:
+                return ()
+            return tuple(n["name"] for n in self.notifiers)
         names: dict[str, None] = {}
         for route in self.routes:
             if route.covers(stream, severity):
-                chosen = route.escalate_to if kind == "escalation" else route.notifiers
-                names.update(dict.fromkeys(chosen))
+                if kind in route.notify_on:
+                    names.update(dict.fromkeys(route.notifiers))
+                if kind == "escalated":
+                    names.update(dict.fromkeys(route.escalate_to))
         return tuple(names)
 
     def notifier(self, name: str) -> dict[str, Any]:
@@ -1082,7 +1105,9 @@ class Config(_Section):
                     out.append(Problem(f"notifiers[{i}]", f"{entry.get('name')!r} is in no route"))
         elif self.notifiers:
             out.append(
-                Problem("routes", "no routes: every notifier gets every notice but escalations")
+                Problem(
+                    "routes", "no routes: every notifier gets the default notices but escalations"
+                )
             )
         return out
 

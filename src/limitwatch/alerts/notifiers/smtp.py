@@ -14,8 +14,8 @@ Why these choices:
   fixed); a server that does not offer STARTTLS is not (it is the wrong server or port).
 
 >>> subject_line({"severity": "warning", "stream": "pack-2/downtime", "rule": "beyond-limits",
-...               "kind": "opened"})
-'[limitwatch] warning: pack-2/downtime beyond-limits'
+...               "kind": "opened", "incident_id": 4})
+'[limitwatch] New warning incident 4 on pack-2/downtime'
 >>> mid = message_id("12:reminder:3", "plant.example")
 >>> mid.startswith("<limitwatch.12-reminder-3."), mid.endswith("@plant.example>")
 (True, True)
@@ -43,6 +43,7 @@ from typing import Annotated, Any, Literal, Self
 from pydantic import AfterValidator, Field, model_validator
 
 import limitwatch
+from limitwatch.alerts.messages import headline
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier, NotifierSettings
 from limitwatch.alerts.notifiers.console import notification_lines
 from limitwatch.secrets import resolve_secret
@@ -51,14 +52,8 @@ log = logging.getLogger(__name__)
 
 
 def subject_line(notification: dict[str, Any]) -> str:
-    """``[limitwatch] SEVERITY: STREAM RULE``, with the reminder number or escalation after it."""
-    n = notification
-    subject = f"[limitwatch] {n.get('severity', 'alert')}: {n.get('stream', '?')} {n.get('rule')}"
-    if n.get("kind") == "reminder":
-        subject += f" (reminder {n.get('number')})"
-    elif n.get("kind") == "escalation":
-        subject += " (escalation)"
-    return subject
+    """``[limitwatch]`` and the headline: what happened to which incident, how severe."""
+    return f"[limitwatch] {headline(notification)}"
 
 
 def message_id(event_id: str, domain: str) -> str:
