@@ -27,6 +27,7 @@ from limitwatch.alerts.lifecycle import (
     Notice,
     SeverityRule,
     covering_shelf,
+    decide,
     held_until,
     notices_due,
 )
@@ -893,3 +894,129 @@ def test_signals_for_two_streams_with_the_same_rule_open_two_incidents(fresh_db)
         "pack-1/downtime",
         "pack-2/downtime",
     }
+
+
+# --------------------------------------------------------------------------- batch invariance
+
+
+def _everything(store: Store) -> tuple[list, list, list]:
+    """Incidents (every field, rules included), each incident's events, every outbox row."""
+    incidents = list(reversed(store.alerts()))
+    events = [
+        [(e.kind, e.time, e.actor, e.note, e.data) for e in store.alert_events(a.id)]
+        for a in incidents
+    ]
+    outbox = [(n.idempotency_key, n.route, n.payload, n.expires_at) for n in store.notifications()]
+    return incidents, events, outbox
+
+
+def _split_run(outcomes: list[Outcome], bounds: list[int], now: float) -> tuple[list, list, list]:
+    with tempfile.TemporaryDirectory() as tmp, Store.open(Path(tmp) / "p.db") as store:
+        policy = replace(POLICY, severities=(SeverityRule("*", "run-one-side", "critical"),))
+        book = AlertBook(store, policy)
+        for a, b in itertools.pairwise(bounds):
+            if b > a:
+                book.apply(outcomes[a:b], now=now)
+                live = [x.stream for x in store.live_alerts()]
+                assert len(live) == len(set(live))  # one live incident per stream, always
+        return _everything(store)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    steps=st.lists(
+        st.tuples(
+            st.sampled_from(["line-1/a", "line-1/b", "line-2/c"]),
+            st.sets(st.sampled_from(["beyond-limits", "trend", "run-one-side"]), max_size=3),
+            st.booleans(),  # monitoring (True) or learning
+            st.floats(-4.5, 4.5),  # the reading's distance from the center line, in sigmas
+        ),
+        min_size=1,
+        max_size=50,
+    ),
+    cuts=st.sets(st.integers(1, 49), max_size=10),
+)
+def test_the_same_readings_in_batches_of_any_size_give_the_same_incidents_events_and_notices(
+    steps, cuts
+):
+    # One "now" for every batch: the split is the only difference between the two runs.
+    outcomes = []
+    for i, (stream, rules, monitoring, z) in enumerate(steps):
+        o = reading(
+            T0 + i,
+            *(sig(rule, T0 + i, stream=stream) for rule in sorted(rules)),
+            stream=stream,
+            phase="monitoring" if monitoring else "learning",
+        )
+        o.z = z
+        outcomes.append(o)
+    now = T0 + 10_000
+    bounds = [0, *sorted(c for c in cuts if c < len(outcomes)), len(outcomes)]
+    one_by_one = list(range(len(outcomes) + 1))
+    whole = _split_run(outcomes, [0, len(outcomes)], now)
+    assert _split_run(outcomes, bounds, now) == whole
+    assert _split_run(outcomes, one_by_one, now) == whole
+
+
+def test_decide_leaves_its_inputs_alone_and_writes_only_what_changed(fresh_db: Store):
+    book = AlertBook(fresh_db, POLICY)
+    book.apply([hit(T0), hit(T0, stream="line-9/x")], now=T0)
+    live = {a.stream: a for a in fresh_db.live_alerts()}
+    before = {s: a.copy() for s, a in live.items()}
+    decision = decide(
+        live, [quiet(T0 + 1)], policy=POLICY, now=T0 + 1, next_id=fresh_db.next_alert_id()
+    )
+    assert live == before  # nothing it was given changed
+    (changed,) = decision.changes.changed  # the quiet stream's incident only
+    assert (changed.stream, changed.quiet_count) == (STREAM, 1)
+    assert decision.changes.rules == [] and decision.changes.outbox == []
+    assert decision.live == {STREAM: changed}
+
+
+_KILLED_BETWEEN_DECISION_AND_COMMIT = """
+import os, signal, sys
+from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
+from limitwatch.store import Store
+from tests.test_lifecycle import hit, quiet, T0
+
+store = Store.open(sys.argv[1])
+book = AlertBook(store, AlertPolicy(clear_after=3))
+written = Store.write_changes
+
+def write_then_die(self, changes):
+    written(self, changes)  # every row of the decision is written, but not committed
+    os.kill(os.getpid(), signal.SIGKILL)
+
+Store.write_changes = write_then_die
+with store.transaction():
+    store.record_batch([hit(T0), quiet(T0 + 1)], now=T0 + 1)
+    book.apply([hit(T0), quiet(T0 + 1)], now=T0 + 1)
+"""
+
+
+def test_a_kill_9_between_decision_and_commit_loses_and_doubles_no_notification(tmp_path):
+    import subprocess
+    import sys
+
+    db = tmp_path / "killed.db"
+    Store.open(db).close()
+    died = subprocess.run(
+        [sys.executable, "-c", _KILLED_BETWEEN_DECISION_AND_COMMIT, str(db)],
+        cwd=Path(__file__).parent.parent,
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
+    assert died.returncode == -9, died.stderr  # killed, as kill -9 would
+    with Store.open(db) as store:
+        assert store.alerts() == [] and rows(store) == []  # nothing half-written survives
+        # The source redelivers what was never acknowledged; the same decision is made again.
+        book = AlertBook(store, AlertPolicy(clear_after=3))
+        for _ in range(2):  # and a second redelivery changes nothing
+            with store.transaction():
+                store.record_batch([hit(T0), quiet(T0 + 1)], now=T0 + 2)
+                book.apply([hit(T0), quiet(T0 + 1)], now=T0 + 2)
+        (incident,) = store.alerts()
+        assert rows(store) == [(f"{incident.id}:opened:0:default", "default")]
+        assert kinds(store, incident.id) == ["opened", "notified"]
