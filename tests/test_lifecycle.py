@@ -1020,3 +1020,39 @@ def test_a_kill_9_between_decision_and_commit_loses_and_doubles_no_notification(
         (incident,) = store.alerts()
         assert rows(store) == [(f"{incident.id}:opened:0:default", "default")]
         assert kinds(store, incident.id) == ["opened", "notified"]
+
+
+def test_every_kind_of_body_follows_the_published_schema(fresh_db: Store):
+    import jsonschema
+
+    schema_path = Path(__file__).parent.parent / "docs" / "notification.schema.json"
+    schema = json.loads(schema_path.read_text(encoding="utf-8"))
+    policy = replace(POLICY, severities=(SeverityRule("*", "trend", "critical"),))
+    book = AlertBook(fresh_db, policy)
+    book.apply([hit(T0)], now=T0)  # opened
+    book.tick(T0 + 600)  # reminder
+    book.apply([hit(T0 + 700, "trend")], now=T0 + 700)  # raised
+    book.tick(T0 + 1800)  # escalated
+    (incident,) = fresh_db.alerts()
+    fresh_db.acknowledge(incident.id, by="m.chen", note="swapping the probe", now=T0 + 1900)
+    book.tick(T0 + 1901)  # acknowledged
+    book.apply([quiet(T0 + 2000 + i) for i in range(3)], now=T0 + 2100)  # cleared
+    _gone_stale(book, T0 + 9000)  # opened, for a stream that went silent
+    bodies = [n.payload for n in fresh_db.notifications()]
+    assert {b["kind"] for b in bodies} == {
+        "opened",
+        "reminder",
+        "raised",
+        "escalated",
+        "acknowledged",
+        "cleared",
+    }
+    for body in bodies:
+        jsonschema.validate(body, schema, format_checker=jsonschema.FormatChecker())
+        json.dumps(body, allow_nan=False)
+    # The schema is not a formality: a body without its unit, or with a made-up kind, fails.
+    broken = {k: v for k, v in bodies[0].items() if k != "unit"}
+    with pytest.raises(jsonschema.ValidationError, match="'unit' is a required property"):
+        jsonschema.validate(broken, schema)
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.validate({**bodies[0], "kind": "exploded"}, schema)
