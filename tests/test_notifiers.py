@@ -16,6 +16,7 @@ import email
 import email.policy
 import hashlib
 import hmac
+import io
 import json
 import os
 import queue
@@ -47,7 +48,7 @@ from limitwatch.alerts.notifiers.console import ConsoleNotifier
 from limitwatch.alerts.notifiers.mqtt import MqttNotifier
 from limitwatch.alerts.notifiers.smtp import SmtpNotifier
 from limitwatch.alerts.notifiers.webhook import WebhookNotifier
-from limitwatch.store import Alert
+from limitwatch.store import Alert, Store
 from tests.broker import free_port
 from tests.receivers import WebhookReceiver, make_ca, smtp_receiver
 
@@ -444,6 +445,68 @@ def test_smtp_will_not_send_when_starttls_is_not_offered(tmp_path: Path) -> None
         )
     assert not err.value.retryable
     assert mails == []
+
+
+def _shift_body(store: Store) -> dict:
+    """What the lifecycle queues for a real shift: 30 readings stored, the last ones four sigma
+    up, through the real book (which adds the recent readings to the body)."""
+    from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
+    from limitwatch.model import Outcome, Reading, StreamSignal
+
+    outs = []
+    for i in range(30):
+        value = 20.0 + (0.0 if i < 27 else 25.0) + (i % 3 - 1) * 2.0
+        t = T_ALERT + 600.0 * i
+        sigs: tuple = ()
+        if i >= 27:
+            sigs = (
+                StreamSignal("pack-2/downtime", "beyond-limits", "x", "upper", i, t, value,
+                             (i,), 20.0, 6.0, 38.0, 2.0, 9.0, 22.1, 1),
+            )  # fmt: skip
+        phase = "learning" if i < 20 else "monitoring"
+        outs.append(Outcome(Reading("pack-2/downtime", t, value), True, index=i, phase=phase,
+                            z=(value - 20.0) / 6.0, mr=2.0, signals=sigs))  # fmt: skip
+    policy = AlertPolicy(stream_info=lambda stream: INFO)
+    with store.transaction():
+        store.add_readings(outs, now=T_ALERT + 18000)
+        AlertBook(store, policy).apply(outs, now=T_ALERT + 18000)
+    (row,) = store.notifications()
+    return row.payload
+
+
+def test_smtp_mail_carries_the_xmr_chart_as_an_inline_png(fresh_db: Store, tmp_path: Path):
+    from PIL import Image
+
+    body = _shift_body(fresh_db)
+    assert len(body["recent"]["value"]) == 28  # the readings up to the one that opened it
+    with smtp_receiver() as (port, mails):
+        notifier = build_notifier(_mail_settings(port, None, starttls=False))
+        notifier.deliver(body, event_id=body["event_id"])
+    (mail,) = mails
+    msg = email.message_from_bytes(mail.content, policy=email.policy.default)
+    plain = msg.get_body(preferencelist=("plain",))
+    assert plain is not None and "43 min at" in " ".join(plain.get_content().split())
+    html_part = msg.get_body(preferencelist=("html",))
+    assert html_part is not None
+    (image,) = [p for p in msg.walk() if p.get_content_type() == "image/png"]
+    cid = image["Content-ID"].strip("<>")
+    assert f'src="cid:{cid}"' in html_part.get_content()  # shown inline, by reference
+    png = image.get_content()
+    assert png.startswith(b"\x89PNG\r\n\x1a\n")
+    picture = Image.open(io.BytesIO(png))
+    picture.verify()  # a whole, decodable image
+    assert picture.size == (900, 600)
+    assert " ".join(SAFETY_CAUTION.split()) in " ".join(plain.get_content().split())
+
+
+def test_smtp_mail_is_plain_text_when_there_are_no_readings_to_draw(tmp_path: Path) -> None:
+    with smtp_receiver() as (port, mails):
+        build_notifier(_mail_settings(port, None, starttls=False)).deliver(
+            payload(), event_id="12:opened:0"
+        )
+    (mail,) = mails
+    msg = email.message_from_bytes(mail.content, policy=email.policy.default)
+    assert msg.get_content_type() == "text/plain"
 
 
 @pytest.mark.parametrize(

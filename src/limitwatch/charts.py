@@ -267,7 +267,9 @@ def caption_lines(data: ChartData, *, most: int = 3) -> list[str]:
         lines.append(
             f"{head}: center {num(s.center, 5)} · sigma {num(s.sigma, 4)} · "
             f"LCL {_limit_text(s.lcl, s.lower_bound)} · UCL {_limit_text(s.ucl, s.upper_bound)} · "
-            f"MR limit {num(s.mr_ucl, 4)} · n {s.n} · sigma from the {method_words(s.method)}"
+            f"MR limit {num(s.mr_ucl, 4)}"
+            + (f" · n {s.n}" if s.n > 0 else "")  # unknown (0) in a notification's chart
+            + f" · sigma from the {method_words(s.method)}"
         )
     if not shown:
         learning = any(p.learning for p in data.points)

@@ -57,10 +57,13 @@ from fnmatch import fnmatchcase
 from typing import Literal
 
 from limitwatch.alerts.messages import (
+    RECENT_FOR,
+    RECENT_READINGS,
     RULE_WORDS,
     StreamInfo,
     describe,
     notification_payload,
+    recent_block,
     rule_words,
     silence_words,
 )
@@ -726,6 +729,28 @@ class AlertBook:
         live = self._live
         return {s: live[s] for s in streams if s in live}
 
+    def _add_recent(self, rows: Sequence[OutboxRow]) -> None:
+        """Give each body the stream's last readings up to the notice, for the chart an e-mail
+        carries. Read here, not in :func:`decide`: the decision needs no readings, and only
+        the few notices that go out pay for the query."""
+        done: set[int] = set()
+        for row in rows:
+            payload = row.payload
+            if id(payload) in done or not isinstance(payload, dict):
+                continue
+            done.add(id(payload))
+            if payload.get("kind") not in RECENT_FOR:
+                continue
+            upto = payload.get("time") if payload.get("kind") != "cleared" else None
+            upto = payload.get("cleared_through") or upto
+            readings = [
+                r
+                for r in self.store.recent_readings(payload["stream"], last=RECENT_READINGS)
+                if upto is None or r.time <= upto
+            ]
+            if readings:
+                payload["recent"] = recent_block(readings)
+
     def _remember(self, decision: Decision) -> None:
         for stream, alert in decision.live.items():
             if alert is None:
@@ -781,6 +806,7 @@ class AlertBook:
 
     def _write(self, decision: Decision) -> BookReport:
         if decision.changes:
+            self._add_recent(decision.changes.outbox)
             self.store.write_changes(decision.changes)
         self._remember(decision)
         return decision.report

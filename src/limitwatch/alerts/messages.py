@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import math
 import shlex
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
@@ -141,6 +142,25 @@ def _quoted(stream: str) -> str:
 
 # --------------------------------------------------------------------------- the body
 
+RECENT_READINGS = 60
+"""How many of the stream's last readings a body carries for a chart."""
+
+RECENT_FOR = frozenset({"opened", "raised", "reminder", "escalated", "cleared"})
+"""Kinds whose body carries the recent readings (an acknowledgement needs no picture)."""
+
+
+def recent_block(readings: Sequence[Any]) -> dict[str, Any]:
+    """The last readings as plain lists (index, time, value, moving range, learning, rules
+    that signalled), oldest first: what a receiver needs to draw the X and MR charts."""
+    return {
+        "index": [r.index for r in readings],
+        "time": [r.time for r in readings],
+        "value": [_num(r.value) for r in readings],
+        "mr": [_num(r.mr) for r in readings],
+        "learning": [r.phase == "learning" for r in readings],
+        "signals": [list(r.signals or ()) for r in readings],
+    }
+
 
 def notification_payload(
     alert: Alert, notice: Notice, now: float, info: StreamInfo | None = None
@@ -209,6 +229,7 @@ def notification_payload(
         "cleared_at": alert.cleared_at,
         "cleared_at_iso": iso_time(alert.cleared_at),
         "lasted_s": lasted,
+        "cleared_through": alert.seen_time if alert.state == "cleared" else None,
         "created_at": now,
         "created_at_iso": iso_time(now),
         "commands": {
