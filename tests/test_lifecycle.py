@@ -1052,7 +1052,64 @@ def test_every_kind_of_body_follows_the_published_schema(fresh_db: Store):
         json.dumps(body, allow_nan=False)
     # The schema is not a formality: a body without its unit, or with a made-up kind, fails.
     broken = {k: v for k, v in bodies[0].items() if k != "unit"}
-    with pytest.raises(jsonschema.ValidationError, match="'unit' is a required property"):
+    with pytest.raises(jsonschema.ValidationError):
         jsonschema.validate(broken, schema)
+    incident_only = {"$defs": schema["$defs"], "$ref": "#/$defs/incident"}
+    with pytest.raises(jsonschema.ValidationError, match="'unit' is a required property"):
+        jsonschema.validate(broken, incident_only)
     with pytest.raises(jsonschema.ValidationError):
         jsonschema.validate({**bodies[0], "kind": "exploded"}, schema)
+
+
+# --------------------------------------------------------------------------- floods
+
+
+def _crossing(n: int, t: float) -> list[Outcome]:
+    """``n`` streams crossing a limit together, as one cause upstream would do it."""
+    return [hit(t + i * 0.01, stream=f"hall-b/pump-{i:03d}") for i in range(n)]
+
+
+def test_many_streams_at_once_become_one_flood_notice_per_route(fresh_db: Store):
+    policy = replace(POLICY, flood_after=10, flood_window_s=600.0)
+    book = AlertBook(fresh_db, policy)
+    report = book.apply(_crossing(300, T0), now=T0)
+    assert report.opened == 300 and report.flood_started == 1
+    kinds_queued = [k.split(":")[1] for k, _ in rows(fresh_db)]
+    # The first ten are told one by one; the eleventh starts the flood, which tells the rest.
+    assert kinds_queued == ["opened"] * 10 + ["flood"]
+    flood_notice = fresh_db.notifications()[-1].payload
+    assert flood_notice["changes"] == 11 and len(flood_notice["streams"]) == 11
+    assert "hall-b/pump-010" in flood_notice["text"] and SAFETY_CAUTION in flood_notice["text"]
+    (flood,) = fresh_db.floods()
+    assert (flood.changes, len(flood.streams), flood.ended_at) == (300, 300, None)
+    folded = fresh_db.alerts(stream_glob="hall-b/pump-299")[0]
+    assert "folded into flood 1" in (fresh_db.alert_events(folded.id)[-1].note or "")
+    # More in a later batch while it lasts: still no message each, and no second flood notice.
+    book.apply(_crossing(20, T0 + 60), now=T0 + 60)  # readings clear nothing: all still live
+    assert len(rows(fresh_db)) == 11
+    # The surge passes: the flood ends, logged in its row, and notices go one by one again.
+    report = book.tick(T0 + 60 + 601)
+    assert report.flood_ended == 1
+    assert fresh_db.floods()[0].ended_at == T0 + 661
+    book.apply([hit(T0 + 700, stream="hall-c/fan-1")], now=T0 + 700)
+    assert rows(fresh_db)[-1][0].split(":")[1] == "opened"
+
+
+def test_a_flood_notice_follows_its_published_schema(fresh_db: Store):
+    import jsonschema
+
+    schema = json.loads(
+        (Path(__file__).parent.parent / "docs" / "notification.schema.json").read_text("utf-8")
+    )
+    book = AlertBook(fresh_db, replace(POLICY, flood_after=2))
+    book.apply(_crossing(5, T0), now=T0)
+    flood_notice = fresh_db.notifications()[-1].payload
+    assert flood_notice["kind"] == "flood"
+    jsonschema.validate(flood_notice, schema, format_checker=jsonschema.FormatChecker())
+
+
+def test_flood_handling_can_be_turned_off(fresh_db: Store):
+    book = AlertBook(fresh_db, replace(POLICY, flood_after=None))
+    book.apply(_crossing(30, T0), now=T0)
+    assert [k.split(":")[1] for k, _ in rows(fresh_db)] == ["opened"] * 30
+    assert fresh_db.floods() == []

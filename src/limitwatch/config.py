@@ -482,6 +482,8 @@ class AlertsSection(_Section):
     escalate_after: OffDuration = _POLICY.escalate_after_s
     give_up_after: OffDuration = _POLICY.notification_ttl_s
     max_shelf: PositiveDuration = 7 * 86400.0
+    flood_after: Annotated[int, Field(ge=1)] | Literal["off"] = 10
+    flood_window: PositiveDuration = _POLICY.flood_window_s
     severity: list[SeverityEntry] = []
 
 
@@ -941,6 +943,8 @@ class Config(_Section):
             notification_ttl_s=self.alerts.give_up_after,
             targets=self.targets,
             stream_info=self.stream_info,
+            flood_after=None if self.alerts.flood_after == "off" else self.alerts.flood_after,
+            flood_window_s=self.alerts.flood_window,
         )
 
     def stream_info(self, stream: str) -> StreamInfo:

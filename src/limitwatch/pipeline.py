@@ -67,6 +67,8 @@ class BatchResult:
     signals: list[StreamSignal] = field(default_factory=list)
     opened: int = 0
     queued: int = 0
+    flood_started: int = 0
+    flood_ended: int = 0
 
 
 class Pipeline:
@@ -244,6 +246,7 @@ class Pipeline:
         self._saved(due)
         result.opened = report.opened
         result.queued = report.queued
+        result.flood_started, result.flood_ended = report.flood_started, report.flood_ended
         return result
 
     def _record_learned(self, monitor: StreamMonitor, outcome: Outcome, now: float) -> None:

@@ -347,6 +347,21 @@ MIGRATIONS: tuple[Migration, ...] = (
         "at most one live incident per stream",
         ("CREATE UNIQUE INDEX incidents_one_live ON alerts (stream) WHERE state != 'cleared'",),
     ),
+    Migration(
+        7,
+        "floods: many incidents at once, told in one notice",
+        (
+            """CREATE TABLE floods (
+                id INTEGER PRIMARY KEY,
+                started_at REAL NOT NULL,
+                ended_at REAL,
+                changes INTEGER NOT NULL,
+                streams_json TEXT NOT NULL DEFAULT '[]'
+            )""",
+            "CREATE INDEX alerts_by_opened_at ON alerts (opened_at)",
+            "CREATE INDEX alerts_by_cleared_at ON alerts (cleared_at) WHERE cleared_at IS NOT NULL",
+        ),
+    ),
 )
 
 
@@ -806,6 +821,22 @@ class DeadLetter:
     payload: bytes | str | None
 
 
+@dataclass(slots=True)
+class Flood:
+    """Many incidents opening or clearing at once: from ``started_at`` until ``ended_at`` the
+    per-incident notifications are folded into one flood notice. ``changes`` counts the
+    incidents opened or cleared since it started, ``streams`` names them."""
+
+    id: int
+    started_at: float
+    ended_at: float | None = None
+    changes: int = 0
+    streams: list[str] = field(default_factory=list)
+
+    def copy(self) -> Flood:
+        return Flood(self.id, self.started_at, self.ended_at, self.changes, list(self.streams))
+
+
 @dataclass(frozen=True, slots=True)
 class EventRow:
     """One line for an incident's audit trail, as decided (see :meth:`Store.write_changes`)."""
@@ -842,9 +873,12 @@ class ChangeSet:
     rules: list[tuple[int, RuleTally]] = field(default_factory=list)
     events: list[EventRow] = field(default_factory=list)
     outbox: list[OutboxRow] = field(default_factory=list)
+    floods: list[Flood] = field(default_factory=list)
 
     def __bool__(self) -> bool:
-        return bool(self.opened or self.changed or self.rules or self.events or self.outbox)
+        return bool(
+            self.opened or self.changed or self.rules or self.events or self.outbox or self.floods
+        )
 
 
 _INCIDENT_COLUMNS = (
@@ -1532,6 +1566,17 @@ class Store:
                         for e in changes.events
                     ],
                 )
+            if changes.floods:
+                conn.executemany(
+                    """INSERT INTO floods (id, started_at, ended_at, changes, streams_json)
+                    VALUES (?, ?, ?, ?, ?) ON CONFLICT (id) DO UPDATE SET
+                        ended_at = excluded.ended_at, changes = excluded.changes,
+                        streams_json = excluded.streams_json""",
+                    [
+                        (f.id, f.started_at, f.ended_at, f.changes, json.dumps(f.streams))
+                        for f in changes.floods
+                    ],
+                )
             queued = 0
             if changes.outbox:
                 before = conn.total_changes
@@ -1606,6 +1651,31 @@ class Store:
             )
             found.extend(Alert._from_row(r) for r in rows)
         return self._with_rules(found)
+
+    def changes_since(self, since: float) -> list[str]:
+        """The stream of every incident opened, and of every one cleared, after ``since`` (a
+        flood's measure), oldest first."""
+        rows = self.db.execute(
+            """SELECT stream, opened_at AS t, id FROM alerts WHERE opened_at > ?
+            UNION ALL
+            SELECT stream, cleared_at AS t, id FROM alerts WHERE cleared_at > ?
+            ORDER BY t, id""",
+            (since, since),
+        ).fetchall()
+        return [r[0] for r in rows]
+
+    def live_flood(self) -> Flood | None:
+        """The flood still going on, if any."""
+        row = self._one("SELECT * FROM floods WHERE ended_at IS NULL ORDER BY id DESC LIMIT 1")
+        return None if row is None else _flood(row)
+
+    def floods(self) -> list[Flood]:
+        """Every flood, oldest first."""
+        return [_flood(r) for r in self._all("SELECT * FROM floods ORDER BY id")]
+
+    def next_flood_id(self) -> int:
+        row = self.db.execute("SELECT coalesce(max(id), 0) + 1 FROM floods").fetchone()
+        return int(row[0])
 
     def last_seen_times(self, streams: Iterable[str]) -> dict[str, float]:
         """For each stream, the time of the last reading any of its incidents saw."""
@@ -1851,6 +1921,16 @@ class Store:
             if row is None:
                 raise NotificationNotFound(_no_notification(notification_id))
             # Already delivered (e.g. a late failure report after a retry succeeded): keep it so.
+
+
+def _flood(row: Mapping[str, Any]) -> Flood:
+    return Flood(
+        row["id"],
+        row["started_at"],
+        row["ended_at"],
+        row["changes"],
+        json.loads(row["streams_json"]),
+    )
 
 
 def _notification(row: Mapping[str, Any]) -> Notification:

@@ -62,17 +62,20 @@ from limitwatch.alerts.messages import (
     RULE_WORDS,
     StreamInfo,
     describe,
+    flood_payload,
     notification_payload,
     recent_block,
     rule_words,
     silence_words,
 )
+from limitwatch.durations import format_duration
 from limitwatch.model import Outcome, StreamSignal
 from limitwatch.store import (
     SEVERITIES,
     Alert,
     ChangeSet,
     EventRow,
+    Flood,
     OutboxRow,
     RuleTally,
     Shelf,
@@ -168,10 +171,22 @@ class AlertPolicy:
     ``route``."""
     stream_info: Callable[[str], StreamInfo] | None = None
     """The stream's description and unit, for notification texts."""
+    flood_after: int | None = 10
+    """More incidents than this opening or clearing within ``flood_window_s`` are a flood:
+    their notifications fold into one flood notice. Ten in ten minutes is the common
+    alarm-management target for one operator (EEMUA 191, ANSI/ISA-18.2; common practice,
+    cited from memory). None turns flood handling off."""
+    flood_window_s: float = 600.0
 
     def __post_init__(self) -> None:
         if self.clear_after < 1:
             raise ValueError(f"clear_after must be at least 1 reading, not {self.clear_after}")
+        if self.flood_after is not None and self.flood_after < 1:
+            raise ValueError(
+                f"flood_after must be at least 1 or None (off), not {self.flood_after}"
+            )
+        if not self.flood_window_s > 0:
+            raise ValueError("flood_window_s must be a positive number of seconds")
         for name in ("repeat_every_s", "escalate_after_s", "notification_ttl_s"):
             value = getattr(self, name)
             if value is not None and not value > 0:
@@ -309,6 +324,8 @@ class BookReport:
     replayed: int = 0
     queued: int = 0
     suppressed: int = 0
+    flood_started: int = 0
+    flood_ended: int = 0
 
 
 @dataclass(slots=True)
@@ -319,6 +336,8 @@ class Decision:
     changes: ChangeSet
     live: dict[str, Alert | None]
     report: BookReport = field(default_factory=BookReport)
+    flood: Flood | None = None
+    """The flood going on after this decision, if any."""
 
 
 class _Work:
@@ -333,9 +352,17 @@ class _Work:
         now: float,
         next_id: int,
         last_seen: Mapping[str, float] | None = None,
+        surge: FloodInput | None = None,
     ) -> None:
         self.original = live
         self.last_seen = last_seen or {}
+        surge = surge or FloodInput()
+        self.recent: list[str] = list(surge.recent)
+        self.flood = surge.flood.copy() if surge.flood is not None else None
+        self.flood_before = surge.flood
+        self.next_flood_id = surge.next_id
+        self.flood_routes: dict[str, None] = {}
+        self.flood_notice: dict | None = None
         self.shelves, self.policy, self.now, self.next_id = shelves, policy, now, next_id
         self.current: dict[str, Alert | None] = {}
         self.touched: dict[int, Alert] = {}
@@ -343,6 +370,38 @@ class _Work:
         self.events: list[EventRow] = []
         self.outbox: list[OutboxRow] = []
         self.report = BookReport()
+        self.ended_flood: Flood | None = None
+        if (
+            self.flood is not None
+            and self.policy.flood_after is not None
+            and len(self.recent) <= self.policy.flood_after
+        ):
+            self.flood.ended_at = now  # the surge has passed: notifications one by one again
+            self.ended_flood = self.flood
+            self.report.flood_ended += 1
+
+    # ---- floods
+
+    def changed_state(self, alert: Alert) -> None:
+        """An incident opened or cleared: count it towards a flood, start one if it is."""
+        self.recent.append(alert.stream)
+        limit = self.policy.flood_after
+        live = self.flood if self.flood is not None and self.flood.ended_at is None else None
+        if live is None and limit is not None and len(self.recent) > limit:
+            live = self.flood = Flood(self.next_flood_id, self.now)
+            self.next_flood_id += 1
+            live.streams = sorted(set(self.recent))
+            live.changes = len(self.recent)
+            self.report.flood_started += 1
+            # Told as it stood when it started, whichever batch the rest arrive in.
+            self.flood_notice = flood_payload(live, self.policy, self.now)
+        elif live is not None:
+            live.changes += 1
+            if alert.stream not in live.streams:
+                live.streams.append(alert.stream)
+
+    def flooding(self) -> Flood | None:
+        return self.flood if self.flood is not None and self.flood.ended_at is None else None
 
     # ---- reading and writing the working set
 
@@ -415,6 +474,7 @@ class _Work:
             time=signal.time,
             index=signal.index,
         )
+        self.changed_state(alert)
         self.settle(alert)
         return alert
 
@@ -471,6 +531,7 @@ class _Work:
         self.current[alert.stream] = None
         self.report.cleared += 1
         self.event(alert, "cleared", note)
+        self.changed_state(alert)
         if alert.notified_at is not None:
             self.send(alert, Notice("cleared", 0))
 
@@ -503,6 +564,22 @@ class _Work:
 
     def send(self, alert: Alert, notice: Notice) -> None:
         policy, now = self.policy, self.now
+        flood = self.flooding()
+        if flood is not None:
+            # Told in the flood notice instead (to the routes that hear floods).
+            self.flood_routes.update(dict.fromkeys(policy.routes_for(alert, "flood")))
+            self.event(
+                alert,
+                "suppressed",
+                f"{notice.kind} notification folded into flood {flood.id} "
+                f"(more than {policy.flood_after} incidents within "
+                f"{format_duration(policy.flood_window_s)})",
+                flood_id=flood.id,
+                held=[notice.event_id(alert.id)],
+            )
+            self.report.suppressed += 1
+            after_sending(alert, notice, now)
+            return
         payload = notification_payload(alert, notice, now, policy.info(alert.stream))
         routes = policy.routes_for(alert, notice.kind)
         ttl = policy.notification_ttl_s
@@ -581,7 +658,28 @@ class _Work:
                 )
 
     def finish(self) -> Decision:
+        flood = self.flood
+        if flood is not None and self.flood_routes:
+            # Queued again by each decision during the flood; the key makes repeats no-ops, so a
+            # route hears of the flood once, listing the incidents that made it.
+            payload = self.flood_notice or flood_payload(flood, self.policy, self.now)
+            ttl = self.policy.notification_ttl_s
+            for route in self.flood_routes:
+                self.outbox.append(
+                    OutboxRow(
+                        f"{payload['event_id']}:{route}",
+                        None,
+                        route,
+                        payload,
+                        self.now,
+                        None if ttl is None else self.now + ttl,
+                    )
+                )
         changes = ChangeSet(outbox=self.outbox, events=self.events)
+        if self.ended_flood is not None and self.ended_flood is not flood:
+            changes.floods.append(self.ended_flood)
+        if flood is not None and flood != self.flood_before:
+            changes.floods.append(flood)
         for alert_id, alert in self.touched.items():
             if alert_id in self.new:
                 changes.opened.append(alert)
@@ -593,7 +691,19 @@ class _Work:
                 for rule, tally in alert.rules.items():
                     if before.rules.get(rule) != tally:
                         changes.rules.append((alert_id, tally))
-        return Decision(changes, dict(self.current), self.report)
+        live_flood = flood if flood is not None and flood.ended_at is None else None
+        return Decision(changes, dict(self.current), self.report, live_flood)
+
+
+@dataclass(frozen=True, slots=True)
+class FloodInput:
+    """What a decision needs to know about floods: the streams of the incidents opened or
+    cleared within the policy's window before it (one entry each), the flood going on, and
+    the number a new flood would get."""
+
+    recent: tuple[str, ...] = ()
+    flood: Flood | None = None
+    next_id: int = 1
 
 
 def _iso(t: float | None) -> str:
@@ -612,6 +722,7 @@ def decide(
     now: float,
     next_id: int,
     last_seen: Mapping[str, float] | None = None,
+    surge: FloodInput | None = None,
 ) -> Decision:
     """Fold a batch into the incidents: accepted ``outcomes`` in order, then ``signals`` that
     came without a reading. ``live`` maps streams to their live incident (at least every stream
@@ -621,7 +732,7 @@ def decide(
     ``last_seen`` gives, for streams without a live incident, the time of the last reading a
     cleared one saw: a reading at or before it is a replay and changes nothing (a redelivered
     batch must not reopen what it once cleared)."""
-    work = _Work(live, shelves, policy, now, next_id, last_seen)
+    work = _Work(live, shelves, policy, now, next_id, last_seen, surge)
     for outcome in outcomes:
         if not outcome.accepted:
             continue
@@ -647,10 +758,12 @@ def decide_tick(
     shelves: Sequence[Shelf] = (),
     policy: AlertPolicy,
     now: float,
+    surge: FloodInput | None = None,
 ) -> Decision:
     """What the live incidents owe at ``now`` with no reading: reminders, escalations,
-    acknowledgements to announce, and notices a shelf held that may now go out."""
-    work = _Work(live, shelves, policy, now, next_id=0)
+    acknowledgements to announce, and notices a shelf held that may now go out; and whether
+    a flood is over."""
+    work = _Work(live, shelves, policy, now, next_id=0, surge=surge)
     for stream in live:
         work.incident(stream)
     return work.finish()
@@ -729,6 +842,17 @@ class AlertBook:
         live = self._live
         return {s: live[s] for s in streams if s in live}
 
+    def _surge(self, now: float) -> FloodInput | None:
+        """What the store knows of floods: three small indexed reads per batch."""
+        if self.policy.flood_after is None:
+            return None
+        store = self.store
+        return FloodInput(
+            tuple(store.changes_since(now - self.policy.flood_window_s)),
+            store.live_flood(),
+            store.next_flood_id(),
+        )
+
     def _add_recent(self, rows: Sequence[OutboxRow]) -> None:
         """Give each body the stream's last readings up to the notice, for the chart an e-mail
         carries. Read here, not in :func:`decide`: the decision needs no readings, and only
@@ -775,6 +899,7 @@ class AlertBook:
                 now=now,
                 next_id=self.store.next_alert_id(),
                 last_seen=self.store.last_seen_times(opening) if opening else None,
+                surge=self._surge(now),
             )
             return self._write(decision)
 
@@ -790,6 +915,7 @@ class AlertBook:
                 policy=self.policy,
                 now=now,
                 next_id=self.store.next_alert_id(),
+                surge=self._surge(now),
             )
             return self._write(decision)
 
@@ -798,7 +924,11 @@ class AlertBook:
         with self.store.transaction():
             live = {a.stream: a for a in self.store.live_alerts()}
             decision = decide_tick(
-                live, shelves=self.store.active_shelves(now), policy=self.policy, now=now
+                live,
+                shelves=self.store.active_shelves(now),
+                policy=self.policy,
+                now=now,
+                surge=self._surge(now),
             )
             report = self._write(decision)
         self.forget()  # the tick read everything fresh; the next batch reads its streams again

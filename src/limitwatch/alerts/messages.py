@@ -37,6 +37,7 @@ if TYPE_CHECKING:
     from limitwatch.store import Alert
 
 SCHEMA = "limitwatch.notification/1"
+FLOOD_SCHEMA = "limitwatch.flood/1"
 """The ``schema`` value of every body; the number goes up when a field changes meaning or goes."""
 
 RULE_WORDS: dict[str, str] = {
@@ -243,6 +244,36 @@ def notification_payload(
     return payload
 
 
+def flood_payload(flood: Any, policy: Any, now: float) -> dict[str, Any]:
+    """The body of a flood notice: many incidents at once, named in one message."""
+    window = format_duration(policy.flood_window_s)
+    payload: dict[str, Any] = {
+        "schema": FLOOD_SCHEMA,
+        "event_id": f"{flood.id}:flood:0",
+        "kind": "flood",
+        "number": 0,
+        "flood_id": flood.id,
+        "started_at": flood.started_at,
+        "started_at_iso": iso_time(flood.started_at),
+        "threshold": policy.flood_after,
+        "window_s": policy.flood_window_s,
+        "changes": flood.changes,
+        "streams": list(flood.streams),
+        "created_at": now,
+        "created_at_iso": iso_time(now),
+        "commands": {"list": "limitwatch alerts", "acknowledge": "limitwatch ack --all-open"},
+        "caution": SAFETY_CAUTION,
+    }
+    payload["text"] = (
+        f"Flood: {flood.changes} incidents opened or cleared within {window}, more than the "
+        f"{policy.flood_after} told one by one (common alarm-management target: at most ten "
+        f"in ten minutes per operator). Streams: {', '.join(flood.streams)}. Their "
+        "notifications are held while it lasts; 'limitwatch alerts' lists every incident, "
+        f"'limitwatch ack --stream GLOB' acknowledges a group. {SAFETY_CAUTION}"
+    )
+    return payload
+
+
 # --------------------------------------------------------------------------- the text
 
 
@@ -270,6 +301,8 @@ def headline(p: dict[str, Any]) -> str:
         return f"Incident {n} on {stream} acknowledged by {p.get('acknowledged_by') or 'someone'}"
     if kind == "cleared":
         return f"Incident {n} on {stream} is over"
+    if kind == "flood":
+        return f"Flood {p.get('flood_id', '?')}: {p.get('changes', '?')} incidents at once"
     return f"{kind}: incident {n} on {stream}"
 
 
@@ -359,6 +392,14 @@ def _next_lines(p: dict[str, Any]) -> list[tuple[str, str]]:
 
 def text_lines(p: dict[str, Any]) -> list[tuple[str, str]]:
     """The human text as (label, text) pairs after the headline, caution last."""
+    if p.get("kind") == "flood":
+        return [
+            ("streams", ", ".join(p.get("streams") or [])),
+            ("since", str(p.get("started_at_iso") or "n/a")),
+            ("held", "each incident's own notifications, while the flood lasts"),
+            ("list", "limitwatch alerts"),
+            ("caution", str(p.get("caution") or SAFETY_CAUTION)),
+        ]
     lines = [("stream", _stream_words(p))]
     if p.get("unit"):
         lines.append(("unit", str(p["unit"])))
