@@ -1113,3 +1113,34 @@ def test_flood_handling_can_be_turned_off(fresh_db: Store):
     book.apply(_crossing(30, T0), now=T0)
     assert [k.split(":")[1] for k, _ in rows(fresh_db)] == ["opened"] * 30
     assert fresh_db.floods() == []
+
+
+def test_receivers_that_heard_of_an_incident_hear_when_a_shelf_holds_it_and_when_it_ends(
+    fresh_db: Store,
+):
+    import jsonschema
+
+    schema = json.loads(
+        (Path(__file__).parent.parent / "docs" / "notification.schema.json").read_text("utf-8")
+    )
+    book = AlertBook(fresh_db, POLICY)
+    book.apply([hit(T0)], now=T0)
+    (incident,) = fresh_db.alerts()
+    fresh_db.shelve(STREAM, until=T0 + 3600, reason="bearing swap", by="r.diaz", now=T0 + 10)
+    assert book.tick(T0 + 11).queued == 1
+    assert book.tick(T0 + 12).queued == 0  # told once
+    shelved = fresh_db.notifications()[-1].payload
+    assert shelved["event_id"] == f"{incident.id}:shelved:1"
+    assert shelved["shelf"]["by"] == "r.diaz" and "bearing swap" in shelved["text"]
+    # While shelved, the reminder is held; when the shelf ends early, receivers hear it.
+    assert book.tick(T0 + 700).queued == 0
+    fresh_db.unshelve(STREAM, by="r.diaz", now=T0 + 800)
+    book.tick(T0 + 801)
+    tail = [n.payload["kind"] for n in fresh_db.notifications()][-2:]
+    assert tail == ["unshelved", "reminder"]
+    for note in fresh_db.notifications():
+        jsonschema.validate(note.payload, schema, format_checker=jsonschema.FormatChecker())
+    # An incident nobody was told of is not announced as shelved (its opened notice is held).
+    fresh_db.shelve("line-9/x", until=T0 + 3600, reason="stop", by="x", now=T0 + 900)
+    book.apply([hit(T0 + 901, stream="line-9/x")], now=T0 + 901)
+    assert all(n.payload["stream"] != "line-9/x" for n in fresh_db.notifications())

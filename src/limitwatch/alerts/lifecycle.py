@@ -63,6 +63,7 @@ from limitwatch.alerts.messages import (
     StreamInfo,
     describe,
     flood_payload,
+    iso_time,
     notification_payload,
     recent_block,
     rule_words,
@@ -104,7 +105,15 @@ __all__ = [
 ]
 
 NoticeKind = Literal[
-    "opened", "raised", "reminder", "escalated", "acknowledged", "cleared", "flood"
+    "opened",
+    "raised",
+    "reminder",
+    "escalated",
+    "acknowledged",
+    "shelved",
+    "unshelved",
+    "cleared",
+    "flood",
 ]
 NOTICE_KINDS: tuple[str, ...] = (
     "opened",
@@ -112,6 +121,8 @@ NOTICE_KINDS: tuple[str, ...] = (
     "reminder",
     "escalated",
     "acknowledged",
+    "shelved",
+    "unshelved",
     "cleared",
     "flood",
 )
@@ -220,7 +231,8 @@ class AlertPolicy:
 class Notice:
     """A notification an incident owes. ``number`` makes the event id stable however often it
     is decided: 0 for ``opened``, ``acknowledged`` and ``cleared``, the reminder's ordinal,
-    1 for ``escalated``, and the new severity's rank for ``raised``."""
+    1 for ``escalated``, the new severity's rank for ``raised``, the shelf's id for
+    ``shelved`` and the end of the hold (epoch seconds) for ``unshelved``."""
 
     kind: NoticeKind
     number: int
@@ -538,12 +550,16 @@ class _Work:
     # ---- notifications
 
     def settle(self, alert: Alert) -> None:
-        """Queue what the incident owes now, or record once that a shelf holds it."""
+        """Queue what the incident owes now, or record once that a shelf holds it; tell the
+        receivers who heard of it when a shelf starts or stops holding it."""
+        hold = held_until(self.shelves, alert, self.now) if self.shelves else None
+        self.shelf_news(alert, hold)
         notices = notices_due(alert, self.policy, self.now)
         if not notices:
             return
         held = [n for n in notices if n.kind in HELD_BY_SHELVES]
-        hold = held_until(self.shelves, alert, self.now) if held else None
+        if not held:
+            hold = None
         for notice in notices:
             if hold is None or notice.kind not in HELD_BY_SHELVES:
                 self.send(alert, notice)
@@ -562,7 +578,25 @@ class _Work:
                 self.report.suppressed += 1
                 alert.suppressed_until = until
 
-    def send(self, alert: Alert, notice: Notice) -> None:
+    def shelf_news(self, alert: Alert, hold: tuple[float, Shelf] | None) -> None:
+        """``shelved`` when a shelf starts holding an announced incident, ``unshelved`` when
+        the hold ends (early or at its time); an incident never announced gets neither."""
+        if alert.state == "cleared":
+            return
+        if hold is None:
+            if alert.suppressed_until is not None:
+                ended = alert.suppressed_until
+                alert.suppressed_until = None  # a later shelf is a new hold
+                if alert.notified_at is not None:
+                    self.send(alert, Notice("unshelved", round(ended)))
+            return
+        until, shelf = hold
+        new = alert.suppressed_until is None or until > alert.suppressed_until
+        if new and alert.notified_at is not None:
+            self.send(alert, Notice("shelved", shelf.id), shelf=shelf)
+            alert.suppressed_until = until
+
+    def send(self, alert: Alert, notice: Notice, *, shelf: Shelf | None = None) -> None:
         policy, now = self.policy, self.now
         flood = self.flooding()
         if flood is not None:
@@ -581,6 +615,15 @@ class _Work:
             after_sending(alert, notice, now)
             return
         payload = notification_payload(alert, notice, now, policy.info(alert.stream))
+        if shelf is not None:
+            payload["shelf"] = {
+                "id": shelf.id,
+                "until": shelf.until,
+                "until_iso": iso_time(shelf.until),
+                "by": shelf.shelved_by,
+                "reason": shelf.reason,
+            }
+            payload["text"] = describe(payload)
         routes = policy.routes_for(alert, notice.kind)
         ttl = policy.notification_ttl_s
         expires = None if ttl is None else now + ttl

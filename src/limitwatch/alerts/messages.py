@@ -301,6 +301,11 @@ def headline(p: dict[str, Any]) -> str:
         return f"Incident {n} on {stream} acknowledged by {p.get('acknowledged_by') or 'someone'}"
     if kind == "cleared":
         return f"Incident {n} on {stream} is over"
+    if kind == "shelved":
+        shelf = p.get("shelf") or {}
+        return f"Incident {n} on {stream} shelved until {shelf.get('until_iso', '?')}"
+    if kind == "unshelved":
+        return f"Incident {n} on {stream}: the shelf is over, notifications flow again"
     if kind == "flood":
         return f"Flood {p.get('flood_id', '?')}: {p.get('changes', '?')} incidents at once"
     return f"{kind}: incident {n} on {stream}"
@@ -366,6 +371,15 @@ def _kind_lines(p: dict[str, Any]) -> list[tuple[str, str]]:
                 "acknowledged",
                 f"by {who} at {p.get('acknowledged_at_iso') or 'n/a'}"
                 + (f": {note}" if note else ""),
+            )
+        )
+    elif kind == "shelved":
+        shelf = p.get("shelf") or {}
+        out.append(
+            (
+                "shelved",
+                f"by {shelf.get('by', 'someone')} until {shelf.get('until_iso', '?')}: "
+                f"{shelf.get('reason', '')}",
             )
         )
     elif kind == "cleared":
