@@ -370,13 +370,29 @@ def gather(
             "Readings stored by an older limitwatch do not record their signals: there, run "
             f"rules mark each alert's first and last signal only; the alerts counted {counts}."
         )
+    points = to_points(readings)
+    gaps = charts.silences(points)
+    for a in alerts:
+        if a.state != "cleared" and a.silent_since is not None:
+            gaps.append(charts.Silence(a.silent_since, None, a.last_time))
     return charts.ChartData(
         stream=stream,
-        points=to_points(readings),
+        points=points,
         limits=tuple(limits),
         flags=tuple(signal_flags(alerts, readings, limits)),
         window=window,
         notes=tuple(notes),
+        incidents=tuple(
+            charts.IncidentSpan(
+                a.id,
+                a.first_time,
+                a.seen_time if a.state == "cleared" else None,
+                tuple(t.rule for t in sorted(a.rules.values(), key=lambda t: t.first_time))
+                or (a.rule,),
+            )
+            for a in reversed(alerts)
+        ),
+        silences=tuple(gaps),
     )
 
 
@@ -488,7 +504,8 @@ def _alert_row(a: Alert) -> AlertRow:
     at = "" if a.first_index is None else f"reading {a.first_index}, "
     return AlertRow(
         id=a.id,
-        rule=a.rule,
+        rule=", ".join(t.rule for t in sorted(a.rules.values(), key=lambda t: t.first_time))
+        or a.rule,
         state=a.state,
         severity=a.severity,
         opened=iso_s(a.opened_at),
