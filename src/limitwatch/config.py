@@ -1102,13 +1102,15 @@ class Config(_Section):
                     "no route has escalate_to, so escalations reach nobody",
                 )
             )
-        if self.alerts.repeat_every is not None and self.notifiers and not any(
-            "reminder" in r.notify_on and r.notifiers for r in self.routes
+        if (
+            self.alerts.repeat_every is not None
+            and self.notifiers
+            and not any("reminder" in r.notify_on and r.notifiers for r in self.routes)
         ):
             out.append(
                 Problem(
                     "alerts.repeat_every",
-                    "reminders are due but no route hears them; add \"reminder\" to a route's "
+                    'reminders are due but no route hears them; add "reminder" to a route\'s '
                     'notify_on, or set repeat_every = "off"',
                 )
             )
