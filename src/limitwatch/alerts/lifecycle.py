@@ -98,6 +98,7 @@ __all__ = [
     "decide",
     "decide_tick",
     "describe",
+    "held_until",
     "notices_due",
     "notification_payload",
     "rule_words",
@@ -750,8 +751,6 @@ class FloodInput:
 
 
 def _iso(t: float | None) -> str:
-    from limitwatch.alerts.messages import iso_time
-
     return iso_time(t) or "an unknown time"
 
 
