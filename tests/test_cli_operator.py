@@ -864,3 +864,24 @@ def test_shelve_by_glob_lists_and_records_the_streams_and_refuses_too_long(plant
     assert ended.returncode == 0, ended.stderr
     assert KILN in ended.stdout and LONG in ended.stdout
     assert all(s["shelves"] == [] for s in plant.json("streams"))
+
+
+def test_with_a_config_the_tables_name_each_streams_unit_and_description(plant: Plant) -> None:
+    config = plant.path.parent / "site.toml"
+    config.write_text(
+        f'[store]\npath = "{plant.path.name}"\n'
+        f'[[streams]]\nmatch = "{KILN}"\ndescription = "kiln 2 crown temperature"\n'
+        'unit = "degC"\n',
+        encoding="utf-8",
+    )
+    number = alert_id(plant, KILN, "beyond-limits")
+    log = run_cli("log", str(number), "--config", str(config))
+    assert log.returncode == 0, log.stderr
+    flat = " ".join(log.stdout.split())
+    assert f"{KILN} (kiln 2 crown temperature)" in flat
+    assert f"{plant.values[KILN][44]:.5g} degC" in flat
+    listed = run_cli("alerts", "--config", str(config))
+    kiln_row = next(line for line in listed.stdout.splitlines() if KILN in line)
+    assert kiln_row.rstrip().endswith("degC")
+    long_row = next(line for line in listed.stdout.splitlines() if "comp-a/" in line)
+    assert "degC" not in long_row  # no unit configured for that stream

@@ -51,6 +51,7 @@ import sqlite_utils
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import held_until, rule_words
+from limitwatch.alerts.messages import StreamInfo, with_unit
 from limitwatch.cli import FORMATS, InputProblem, baseline, main
 from limitwatch.config import ConfigError, load_config
 from limitwatch.durations import DurationError, format_duration, parse_duration
@@ -403,6 +404,22 @@ def alert_record(alert: Alert, shelved_until: float | None) -> dict[str, Any]:
     }
 
 
+def _load(config_file: str | None) -> Any:
+    if config_file is None:
+        return None
+    try:
+        return load_config(config_file)
+    except ConfigError as exc:
+        raise InputProblem(str(exc)) from None
+
+
+def _stream_info(config_file: str | None, stream: str) -> StreamInfo:
+    """The stream's description and unit from ``--config``; nothing without one (the database
+    does not keep them)."""
+    config = _load(config_file)
+    return StreamInfo() if config is None else config.stream_info(stream)
+
+
 def _tallies(alert: Alert) -> list[Any]:
     return sorted(alert.rules.values(), key=lambda t: (t.first_time, t.rule))
 
@@ -498,6 +515,7 @@ def alerts_cmd(
         which = "" if state == "all" else f"{' or '.join(states)} "
         click.echo(f"No {which}incidents{where}.")
         return
+    config = _load(config_file)
     rows = [
         [
             str(a.id),
@@ -507,7 +525,7 @@ def alerts_cmd(
             _rules_cell(a),
             str(a.signal_count),
             ago_text(a.opened_at, now),
-            _g(a.last_value),
+            with_unit(_g(a.last_value), config.stream_info(a.stream).unit if config else None),
         ]
         for a in found
     ]
@@ -643,11 +661,13 @@ def log_cmd(alert_id: int, fmt: str, db_path: str | None, config_file: str | Non
             {"alert": alert_record(alert, held), "events": [event_record(e) for e in events]}
         )
         return
+    info = _stream_info(config_file, alert.stream)
+    about = f" ({info.description})" if info.description else ""
     click.echo(
         _wrap(
-            f"Incident {alert.id} on {alert.stream}: {alert.severity}, now {alert.state}; "
-            f"{alert.signal_count} signal(s), last reading {_g(alert.last_value)} at "
-            f"{iso_s(alert.last_time)}."
+            f"Incident {alert.id} on {alert.stream}{about}: {alert.severity}, now {alert.state}; "
+            f"{alert.signal_count} signal(s), last reading "
+            f"{with_unit(_g(alert.last_value), info.unit)} at {iso_s(alert.last_time)}."
         )
     )
     if alert.merged_into is not None:

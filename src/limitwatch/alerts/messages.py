@@ -118,7 +118,7 @@ def fmt_value(x: float | None, sigma: float | None = None) -> str:
 
 
 def with_unit(text: str, unit: str | None) -> str:
-    return text if not unit or text == "n/a" else f"{text} {unit}"
+    return text if not unit or text in ("n/a", "-") else f"{text} {unit}"
 
 
 def silence_words(silent_s: float, expected_s: float) -> str:
