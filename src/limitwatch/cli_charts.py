@@ -356,13 +356,14 @@ def gather(
         )
     unrecorded = any(r.signals is None for r in readings)
     partial = {
-        a.rule: a.signal_count
+        t.rule: t.signal_count
         for a in alerts
+        for t in (a.rules.values() if a.rules else ())
         if unrecorded
-        and a.rule not in _EVERY_SIGNAL_MARKED
-        and a.signal_count > 2
-        and a.first_index is not None
-        and a.first_index >= (readings[0].index or 0 if readings else 0)
+        and t.rule not in _EVERY_SIGNAL_MARKED
+        and t.signal_count > 2
+        and t.first_index is not None
+        and t.first_index >= (readings[0].index or 0 if readings else 0)
     }
     if partial:
         counts = ", ".join(f"{rule} {n}" for rule, n in sorted(partial.items()))
