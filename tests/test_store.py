@@ -736,11 +736,17 @@ def test_an_old_file_with_several_live_alerts_per_stream_gets_one_incident_each(
         )
         return cur.lastrowid
 
-    a = alert("pack-2/downtime", "beyond-limits", "open", "warning", T0 + 10, T0 + 40, 3, T0)
+    a = alert(
+        "pack-2/downtime", "beyond-limits", "acknowledged", "warning", T0 + 10, T0 + 40, 3, T0
+    )
+    old.execute(
+        "UPDATE alerts SET acknowledged_at = ?, acknowledged_by = 'kim' WHERE id = ?", (T0, a)
+    )
     b = alert("pack-2/downtime", "run-one-side", "acknowledged", "critical", T0 + 5, T0 + 50, 2)
     c = alert("pack-2/downtime", "mr-beyond-limit", "open", "info", T0 + 20, T0 + 20, 1)
     gone = alert("pack-2/downtime", "trend", "cleared", "warning", T0 - 99, T0 - 90, 4)
-    alone = alert("oven-1/energy", "trend", "acknowledged", "warning", T0, T0 + 1, 1)
+    alone = alert("oven-1/energy", "trend", "acknowledged", "warning", T0, T0 + 1, 1, T0)
+    old.execute("UPDATE alerts SET acknowledged_at = ? WHERE id = ?", (T0 + 1, alone))
     old.execute(
         """INSERT INTO outbox (idempotency_key, alert_id, route, payload_json, created_at,
             next_attempt_at) VALUES ('k', ?, 'r', '{}', 0, 0)""",
@@ -759,7 +765,8 @@ def test_an_old_file_with_several_live_alerts_per_stream_gets_one_incident_each(
         assert incident.signal_count == 6
         assert (incident.first_time, incident.last_time) == (T0 + 5, T0 + 50)
         assert incident.severity == "critical"  # the highest of its parts
-        assert incident.state == "open"  # not every part was acknowledged
+        assert incident.state == "open"  # not every part was acknowledged ...
+        assert incident.acknowledged_by is None  # ... so it waits for someone again
         assert incident.announced_severity == "warning"  # so a "raised" notice is owed
         for merged in (b, c):
             row = store.alert(merged)
@@ -771,6 +778,8 @@ def test_an_old_file_with_several_live_alerts_per_stream_gets_one_incident_each(
         assert store.alert(gone).state == "cleared" and store.alert(gone).merged_into is None
         assert live["oven-1/energy"].id == alone and live["oven-1/energy"].state == "acknowledged"
         assert set(live["oven-1/energy"].rules) == {"trend"}
+        # Acknowledged before the upgrade: receivers are not told of it again.
+        assert live["oven-1/energy"].ack_announced_at == T0 + 1
         # The outbox row of a merged alert still points at a row that exists.
         (row,) = store.notifications()
         assert row.alert_id == c

@@ -335,6 +335,9 @@ MIGRATIONS: tuple[Migration, ...] = (
             # The severity the last opened/raised notification told; a higher one owes another.
             "ALTER TABLE alerts ADD COLUMN announced_severity TEXT",
             "UPDATE alerts SET announced_severity = severity WHERE notified_at IS NOT NULL",
+            # Acknowledged before the upgrade: nothing left to announce about it.
+            """UPDATE alerts SET ack_announced_at = acknowledged_at
+            WHERE acknowledged_at IS NOT NULL""",
             "ALTER TABLE alerts ADD COLUMN cleared_announced_at REAL",
             "ALTER TABLE alerts ADD COLUMN merged_into INTEGER REFERENCES alerts (id)",
             "ALTER TABLE shelves ADD COLUMN pattern TEXT",
@@ -399,6 +402,12 @@ def _merge_live_alerts(db: sqlite_utils.Database, now: float | None) -> None:
                 keep[0],
             ),
         )
+        if state == "open":  # a part nobody acknowledged: the incident waits for someone
+            db.execute(
+                """UPDATE alerts SET acknowledged_at = NULL, acknowledged_by = NULL,
+                    ack_note = NULL, ack_announced_at = NULL WHERE id = ?""",
+                (keep[0],),
+            )
         for other in others:
             db.execute(
                 "UPDATE incident_rules SET alert_id = ? WHERE alert_id = ?", (keep[0], other[0])
