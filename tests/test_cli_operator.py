@@ -50,6 +50,7 @@ ALERT_KEYS = {
     "stream",
     "rule",
     "rule_words",
+    "rules",
     "state",
     "severity",
     "count",
@@ -58,6 +59,8 @@ ALERT_KEYS = {
     "first_value",
     "last_time",
     "last_value",
+    "worst_zone",
+    "silent_since",
     "center",
     "lcl",
     "ucl",
@@ -66,6 +69,7 @@ ALERT_KEYS = {
     "acknowledged_by",
     "ack_note",
     "cleared_at",
+    "merged_into",
     "shelved_until",
 }
 
@@ -172,8 +176,8 @@ def _build(path: Path) -> Plant:
     with Store.open(path, now=plant.base) as store:
         book = AlertBook(store, POLICY)
 
-        # Kiln: beyond-limits three times in a row (one alert, count 3), then a trend alert on
-        # the last reading, which sits 2.5 sigma above the center line (zone A).
+        # Kiln: beyond-limits three times in a row, then a trend signal on the last reading,
+        # which sits 2.5 sigma above the center line (zone A): one incident, count 4.
         kiln = [round(float(v), 2) for v in rng.normal(820.0, 2.0, 45)]
         first = np.array(kiln[:25])
         center, sigma = float(first.mean()), float(np.abs(np.diff(first)).mean()) / D2
@@ -203,7 +207,8 @@ def _build(path: Path) -> Plant:
         _feed(plant, store, book, OVEN, oven, {37: ["beyond-limits"]})
 
         for a in store.alerts():
-            plant.alerts[f"{a.stream} {a.rule}"] = a.id
+            for rule in a.rules:
+                plant.alerts[f"{a.stream} {rule}"] = a.id
     return plant
 
 
@@ -222,22 +227,29 @@ def alert_id(plant: Plant, stream: str, rule: str) -> int:
 def test_alerts_lists_open_and_acknowledged_by_default(plant: Plant) -> None:
     listed = plant.json("alerts")
     assert isinstance(listed, list)
+    # One incident per stream; the trend on the kiln joined its beyond-limits incident.
     assert {(a["stream"], a["rule"]) for a in listed} == {
         (KILN, "beyond-limits"),
-        (KILN, "trend"),
         (LONG, "four-of-five-zone-b"),
     }
     assert [a["id"] for a in listed] == sorted((a["id"] for a in listed), reverse=True)
     for a in listed:
         assert set(a) == ALERT_KEYS
         assert a["state"] == "open" and a["cleared_at"] is None
-    kiln = next(a for a in listed if a["stream"] == KILN and a["rule"] == "beyond-limits")
-    assert kiln["severity"] == "critical" and kiln["count"] == 3
-    assert kiln["last_value"] == plant.values[KILN][42]
+    kiln = next(a for a in listed if a["stream"] == KILN)
+    assert kiln["severity"] == "critical" and kiln["count"] == 4
+    assert kiln["last_value"] == plant.values[KILN][44]
     assert epoch(kiln["first_time"]) == pytest.approx(plant.time_of(40))
-    assert epoch(kiln["last_time"]) == pytest.approx(plant.time_of(42))
-    trend = next(a for a in listed if a["rule"] == "trend")
-    assert trend["severity"] == "warning" and trend["count"] == 1
+    assert epoch(kiln["last_time"]) == pytest.approx(plant.time_of(44))
+    assert kiln["worst_zone"] == "beyond"  # the readings at 4 sigma
+    by_rule = {r["rule"]: r for r in kiln["rules"]}
+    assert list(by_rule) == ["beyond-limits", "trend"]
+    assert (by_rule["beyond-limits"]["count"], by_rule["beyond-limits"]["severity"]) == (
+        3,
+        "critical",
+    )
+    assert (by_rule["trend"]["count"], by_rule["trend"]["severity"]) == (1, "warning")
+    assert epoch(by_rule["trend"]["first_time"]) == pytest.approx(plant.time_of(44))
 
 
 def test_alerts_filters_by_state_and_stream(plant: Plant) -> None:
@@ -247,10 +259,15 @@ def test_alerts_filters_by_state_and_stream(plant: Plant) -> None:
         (OVEN, "beyond-limits", "cleared"),  # three quiet readings after the wild batch
     }
     assert all(a["cleared_at"] is not None for a in cleared)
-    assert len(plant.json("alerts", "--state", "all")) == 5
+    assert len(plant.json("alerts", "--state", "all")) == 4
     kiln_only = plant.json("alerts", "--stream", "kiln-*")
-    assert {a["stream"] for a in kiln_only} == {KILN} and len(kiln_only) == 2
+    assert {a["stream"] for a in kiln_only} == {KILN} and len(kiln_only) == 1
     assert plant.json("alerts", "--stream", "nothing-*") == []
+    # The state filter takes the words the table prints.
+    plant.cli("ack", str(kiln_only[0]["id"]), "--by", "dana")
+    for word in ("acked", "ACKED", "acknowledged"):
+        assert [a["id"] for a in plant.json("alerts", "--state", word)] == [kiln_only[0]["id"]]
+    assert len(plant.json("alerts", "--state", "live")) == 2
 
 
 def test_alerts_table_fits_80_columns_and_names_every_alert(plant: Plant) -> None:
@@ -263,17 +280,20 @@ def test_alerts_table_fits_80_columns_and_names_every_alert(plant: Plant) -> Non
         "state",
         "severity",
         "stream",
-        "rule",
+        "rules",
         "count",
         "opened",
         "value",
     ]
     for key, number in plant.alerts.items():
         row = next(line for line in lines[2:] if line.split()[0] == str(number))
-        assert key.split()[1][:8] in row
+        if key != f"{KILN} trend":
+            assert key.split()[1][:8] in row
+    kiln = next(line for line in lines[2:] if line.split()[0] == str(plant.alerts[f"{KILN} trend"]))
+    assert "beyond-limits +1" in kiln  # the rule that opened it, and one that joined
     # The long stream id is shortened with an ellipsis, not wrapped or dropped.
     assert "comp-a/" in result.stdout and "…" in result.stdout
-    assert "5 alert(s)." in result.stdout
+    assert "4 incident(s)." in result.stdout
     assert "ago" in result.stdout
 
 
@@ -284,7 +304,7 @@ def test_ack_then_ack_again_is_an_error(plant: Plant) -> None:
     number = alert_id(plant, KILN, "beyond-limits")
     first = plant.cli("ack", str(number), "--note", "burner 3 flame check", "--by", "dana")
     assert first.returncode == 0, first.stderr
-    assert f"alert {number}" in first.stdout and "dana" in first.stdout
+    assert f"incident {number}" in first.stdout and "dana" in first.stdout
     listed = {a["id"]: a for a in plant.json("alerts")}
     assert listed[number]["state"] == "acknowledged"
     assert listed[number]["acknowledged_by"] == "dana"
@@ -329,11 +349,12 @@ def test_log_shows_opened_and_acknowledged_with_actor_and_note(plant: Plant) -> 
     result = plant.cli("log", str(number))
     assert result.returncode == 0, result.stderr
     assert fits_80(result.stdout)
-    assert f"Alert {number}: {KILN}, trend" in result.stdout
-    assert "kept rising" in result.stdout  # the rule in words
+    assert f"Incident {number} on {KILN}" in result.stdout
+    assert "kept rising" in result.stdout  # each rule in words
+    assert "beyond-limits" in result.stdout and "trend" in result.stdout
     rows = result.stdout.splitlines()
-    kinds = [line.split()[1] for line in rows if line[:4].isdigit()]
-    assert kinds[0] == "opened" and kinds[-1] == "acknowledged"
+    kinds = [line.split()[1] for line in rows if line[:4].isdigit() and "T" in line.split()[0]]
+    assert kinds[0] == "opened" and kinds[-1] == "acknowledged" and "joined" in kinds
     ack_row = next(line for line in rows if " acknowledged " in line)
     assert "rafa" in ack_row
     # The long note is wrapped, not cut: every word of it is in the table.
@@ -369,9 +390,12 @@ def _stream(plant: Plant, name: str) -> dict:
 def test_shelve_and_unshelve_round_trip(plant: Plant) -> None:
     live = alert_id(plant, KILN, "trend")  # still live after the reading added below
     before = time.time()
-    shelved = plant.cli("shelve", KILN, "--for", "2h", "--reason", "burner service", "--by", "sam")
+    shelved = plant.cli(
+        "shelve", "kiln-*", "--for", "2h", "--reason", "burner service", "--by", "sam"
+    )
     assert shelved.returncode == 0, shelved.stderr
     assert fits_80(shelved.stdout)
+    assert "Streams covered (1):" in shelved.stdout and f"  {KILN}" in shelved.stdout
     assert SAFETY_CAUTION in " ".join(shelved.stdout.split())
 
     row = _stream(plant, KILN)
@@ -387,19 +411,20 @@ def test_shelve_and_unshelve_round_trip(plant: Plant) -> None:
     assert "all 1h59m" in kiln_row or "all 2h" in kiln_row
     assert [a["shelved_until"] for a in plant.json("alerts", "--stream", KILN)] == [
         row["shelved_until"]
-    ] * 2
+    ]
 
     # The live alert's log says who shelved it and why ...
     events = plant.json("log", str(live))["events"]
     shelf_event = next(e for e in events if e["kind"] == "shelved")
     assert shelf_event["actor"] == "sam" and "burner service" in shelf_event["note"]
 
-    # ... and a new alert on the shelved stream is recorded but its notification held.
+    # ... and a new incident on a shelved stream is recorded but its notification held.
+    assert plant.cli("shelve", PRESS, "--for", "1h", "--reason", "die change").returncode == 0
     with Store.open(plant.path) as store:
         book = AlertBook(store, POLICY)
         t = time.time()
         sig = StreamSignal(
-            KILN,
+            PRESS,
             "two-of-three-zone-a",
             "x",
             "upper",
@@ -415,16 +440,15 @@ def test_shelve_and_unshelve_round_trip(plant: Plant) -> None:
             7.4,
             1,
         )
-        out = Outcome(Reading(KILN, t, 826.0), True, index=45, phase="monitoring", signals=(sig,))
+        out = Outcome(Reading(PRESS, t, 826.0), True, index=45, phase="monitoring", signals=(sig,))
         with store.transaction():
             store.add_readings([out], now=t)
             report = book.apply([out], now=t)
         assert report.opened == 1 and report.suppressed == 1 and report.queued == 0
-        held = store.latest_alert(KILN, "two-of-three-zone-a")
-        assert held is not None
+        (held,) = store.live_alerts([PRESS])
     held_events = plant.json("log", str(held.id))["events"]
     assert [e["kind"] for e in held_events] == ["opened", "suppressed"]
-    assert "shelved by sam" in held_events[1]["note"]
+    assert "die change" in held_events[1]["note"]
 
     ended = plant.cli("unshelve", KILN, "--by", "sam")
     assert ended.returncode == 0, ended.stderr
@@ -438,14 +462,18 @@ def test_shelve_and_unshelve_round_trip(plant: Plant) -> None:
     assert again.returncode == 1 and "nothing is shelved" in again.stderr
 
 
-def test_shelve_one_rule_leaves_the_others(plant: Plant) -> None:
+def test_shelve_one_rule_holds_only_incidents_made_of_that_rule(plant: Plant) -> None:
     result = plant.cli("shelve", KILN, "--rule", "trend", "--for", "90m", "--reason", "probe swap")
     assert result.returncode == 0, result.stderr
-    by_rule = {a["rule"]: a for a in plant.json("alerts", "--stream", KILN)}
-    assert by_rule["trend"]["shelved_until"] is not None
-    assert by_rule["beyond-limits"]["shelved_until"] is None
+    # The kiln incident says beyond-limits too, which is not shelved: nothing is held.
+    (kiln,) = plant.json("alerts", "--stream", KILN)
+    assert kiln["shelved_until"] is None
+    assert plant.cli("shelve", KILN, "--rule", "beyond-limits", "--for", "1h", "--reason", "x")
+    (kiln,) = plant.json("alerts", "--stream", KILN)
+    assert kiln["shelved_until"] is not None  # now every rule in it is shelved
     row = _stream(plant, KILN)
-    assert row["shelved_until"] is None and [s["rule"] for s in row["shelves"]] == ["trend"]
+    assert row["shelved_until"] is None
+    assert sorted(s["rule"] for s in row["shelves"]) == ["beyond-limits", "trend"]
 
 
 def test_shelve_refuses_bad_options(plant: Plant) -> None:
@@ -479,7 +507,7 @@ def test_streams_reports_last_value_zone_version_and_alerts(plant: Plant) -> Non
     assert epoch(kiln["last_time"]) == pytest.approx(plant.time_of(44))
     assert kiln["zone"] == "zone-a-upper"  # the last reading was placed 2.5 sigma above
     assert kiln["phase"] == "monitoring" and kiln["baseline_version"] == 1
-    assert kiln["open_alerts"] == 2 and kiln["acknowledged_alerts"] == 0
+    assert kiln["open_alerts"] == 1 and kiln["acknowledged_alerts"] == 0
     first = np.array(plant.values[KILN][:25])
     mr_bar = float(np.abs(np.diff(first)).mean())
     assert kiln["center"] == pytest.approx(float(first.mean()))
@@ -496,7 +524,7 @@ def test_streams_reports_last_value_zone_version_and_alerts(plant: Plant) -> Non
         "zone-a-upper",
         "monitoring",
         "v1",
-        "2",
+        "1",
     ]
     assert [s["stream"] for s in plant.json("streams", "--stream", "*/temp")] == [KILN]
 
@@ -682,7 +710,7 @@ def test_default_location_and_environment_variable(plant: Plant, tmp_path: Path)
         "alerts", "--format", "json", cwd=work, env={"LIMITWATCH_DB": str(plant.path)}
     )
     assert via_env.returncode == 0, via_env.stderr
-    assert len(json.loads(via_env.stdout)) == 3
+    assert len(json.loads(via_env.stdout)) == 2
 
 
 def test_not_a_database_and_a_foreign_database_are_refused(tmp_path: Path) -> None:
@@ -711,7 +739,7 @@ def test_config_file_names_the_database(plant: Plant, tmp_path: Path) -> None:
     elsewhere.mkdir()
     result = cli("alerts", "--config", str(config), "--format", "json", cwd=elsewhere)
     assert result.returncode == 0, result.stderr
-    assert len(json.loads(result.stdout)) == 3
+    assert len(json.loads(result.stdout)) == 2
 
     both = plant.cli("alerts", "--config", str(config))
     assert both.returncode == 2 and "not both" in both.stderr
@@ -791,3 +819,100 @@ def test_streams_and_alerts_escape_control_characters_in_stream_ids(tmp_path: Pa
         result = plant.cli(*command)
         assert result.returncode == 0, result.stderr
         assert not (set(result.stdout.replace("\n", "")) & CONTROL), (command, result.stdout)
+
+
+# -- acknowledging and shelving at an operator's speed --------------------------------------------
+
+
+def test_ack_takes_several_ids_and_reports_each(plant: Plant) -> None:
+    kiln, long = alert_id(plant, KILN, "trend"), alert_id(plant, LONG, "four-of-five-zone-b")
+    result = plant.cli("ack", str(kiln), str(long), "--by", "dana", "--note", "walkround")
+    assert result.returncode == 0, result.stderr
+    acked = {a["id"]: a for a in plant.json("alerts", "--state", "acknowledged")}
+    assert set(acked) == {kiln, long}
+    assert {a["ack_note"] for a in acked.values()} == {"walkround"}
+    # Again, with a cleared one among them: each is named in the error, and nothing changes.
+    press = alert_id(plant, PRESS, "run-one-side")
+    again = plant.cli("ack", str(kiln), str(press), "--by", "lee")
+    assert again.returncode == 1
+    assert "already acknowledged by dana" in again.stderr and "already cleared" in again.stderr
+    assert plant.json("alerts", "--state", "acknowledged")[0]["acknowledged_by"] == "dana"
+
+
+def test_ack_by_stream_glob_takes_every_open_incident_of_those_streams(plant: Plant) -> None:
+    result = plant.cli("ack", "--stream", "comp-*", "--by", "dana")
+    assert result.returncode == 0, result.stderr
+    (acked,) = plant.json("alerts", "--state", "acknowledged")
+    assert acked["stream"] == LONG
+    assert [a["stream"] for a in plant.json("alerts", "--state", "open")] == [KILN]
+    none = plant.cli("ack", "--stream", "comp-*", "--by", "dana")
+    assert none.returncode == 0 and "No open incidents" in none.stdout
+
+
+def test_ack_all_open_asks_first_unless_yes(plant: Plant) -> None:
+    refused = subprocess.run(
+        [str(CLI), "ack", "--all-open", "--by", "dana", "--db", str(plant.path)],
+        input="n\n",
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert refused.returncode == 1 and "2 open incident(s)" in refused.stdout
+    assert len(plant.json("alerts", "--state", "open")) == 2
+    done = plant.cli("ack", "--all-open", "--yes", "--by", "dana")
+    assert done.returncode == 0, done.stderr
+    assert plant.json("alerts", "--state", "open") == []
+    assert plant.cli("ack", "--by", "dana").returncode == 2  # nothing named
+
+
+def test_shelve_by_glob_lists_and_records_the_streams_and_refuses_too_long(plant: Plant) -> None:
+    too_long = plant.cli("shelve", "*", "--for", "8d", "--reason", "shutdown")
+    assert too_long.returncode == 1 and "longer than the maximum of 7d" in too_long.stderr
+    assert all(s["shelves"] == [] for s in plant.json("streams"))
+    forced = plant.cli("shelve", "*temp*", "--for", "8d", "--reason", "shutdown", "--force")
+    assert forced.returncode == 0, forced.stderr
+    assert "Streams covered (2):" in forced.stdout
+    assert f"  {KILN}" in forced.stdout and f"  {LONG}" in forced.stdout
+    with Store.open(plant.path) as store:
+        shelves = store.active_shelves(time.time())
+    assert {(s.stream, s.pattern) for s in shelves} == {(KILN, "*temp*"), (LONG, "*temp*")}
+    # A second shelf over the same streams replaces the first, and says which way it goes.
+    shorter = plant.cli("shelve", KILN, "--for", "2h", "--reason", "back early", "--by", "sam")
+    assert shorter.returncode == 0, shorter.stderr
+    assert "replaces the shelf" in shorter.stdout and "shortens it" in shorter.stdout
+    (kiln_shelf,) = _stream(plant, KILN)["shelves"]
+    assert kiln_shelf["reason"] == "back early"
+    longer = plant.cli("shelve", KILN, "--for", "3h", "--reason", "not yet", "--by", "sam")
+    assert "extends it" in longer.stdout
+    # A config can set a different maximum.
+    config = plant.path.parent / "site.toml"
+    config.write_text(
+        f'[store]\npath = "{plant.path.name}"\n[alerts]\nmax_shelf = "1h"\n', encoding="utf-8"
+    )
+    capped = cli("shelve", OVEN, "--for", "2h", "--reason", "x", "--config", str(config))
+    assert capped.returncode == 1 and "maximum of 1h" in capped.stderr
+    ended = plant.cli("unshelve", "*temp*", "--by", "sam")
+    assert ended.returncode == 0, ended.stderr
+    assert KILN in ended.stdout and LONG in ended.stdout
+    assert all(s["shelves"] == [] for s in plant.json("streams"))
+
+
+def test_with_a_config_the_tables_name_each_streams_unit_and_description(plant: Plant) -> None:
+    config = plant.path.parent / "site.toml"
+    config.write_text(
+        f'[store]\npath = "{plant.path.name}"\n'
+        f'[[streams]]\nmatch = "{KILN}"\ndescription = "kiln 2 crown temperature"\n'
+        'unit = "degC"\n',
+        encoding="utf-8",
+    )
+    number = alert_id(plant, KILN, "beyond-limits")
+    log = cli("log", str(number), "--config", str(config))
+    assert log.returncode == 0, log.stderr
+    flat = " ".join(log.stdout.split())
+    assert f"{KILN} (kiln 2 crown temperature)" in flat
+    assert f"{plant.values[KILN][44]:.5g} degC" in flat
+    listed = cli("alerts", "--config", str(config))
+    kiln_row = next(line for line in listed.stdout.splitlines() if KILN in line)
+    assert kiln_row.rstrip().endswith("degC")
+    long_row = next(line for line in listed.stdout.splitlines() if "comp-a/" in line)
+    assert "degC" not in long_row  # no unit configured for that stream

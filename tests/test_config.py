@@ -491,7 +491,7 @@ def test_routes_choose_notifiers_by_stream_and_severity():
         {
             "notifiers": NOTIFIERS,
             "routes": [
-                {"name": "all", "notifiers": ["desk"]},
+                {"name": "all", "notifiers": ["desk"], "notify_on": ["opened", "reminder"]},
                 {
                     "name": "crit",
                     "streams": "comp-*",
@@ -504,8 +504,17 @@ def test_routes_choose_notifiers_by_stream_and_severity():
     )
     assert config.targets("comp-a/temp", "trend", "critical", "opened") == ("desk", "hook")
     assert config.targets("comp-a/temp", "trend", "warning", "reminder") == ("desk",)
-    assert config.targets("comp-a/temp", "trend", "critical", "escalation") == ("pager",)
-    assert config.targets("pack-1/downtime", "trend", "critical", "escalation") == ()
+    # "crit" hears the default kinds: the end of an incident, but no reminders.
+    assert config.targets("comp-a/temp", "trend", "critical", "cleared") == ("hook", "desk")
+    assert config.targets("comp-a/temp", "trend", "critical", "reminder") == ("desk",)
+    assert config.targets("comp-a/temp", "trend", "critical", "acknowledged") == ()
+    # An escalation reaches escalate_to, and the route's own notifiers when they subscribe.
+    assert config.targets("comp-a/temp", "trend", "critical", "escalated") == (
+        "hook",
+        "desk",
+        "pager",
+    )
+    assert config.targets("pack-1/downtime", "trend", "critical", "escalated") == ()
     assert config.alert_policy().targets is not None
     assert config.notifier("hook")["url"] == "https://hooks.quillmoor.example/x"
 
@@ -513,7 +522,9 @@ def test_routes_choose_notifiers_by_stream_and_severity():
 def test_without_routes_every_notifier_hears_everything_but_escalations():
     config = config_from_dict({"notifiers": NOTIFIERS})
     assert config.targets("x", "trend", "info", "opened") == ("desk", "hook", "pager")
-    assert config.targets("x", "trend", "critical", "escalation") == ()
+    assert config.targets("x", "trend", "critical", "escalated") == ()
+    assert config.targets("x", "trend", "critical", "cleared") == ("desk", "hook", "pager")
+    assert config.targets("x", "trend", "critical", "reminder") == ()
 
 
 def test_route_references_must_resolve():
@@ -725,6 +736,7 @@ def test_warnings_for_legal_but_risky_settings():
         "sources[0].topics[1].filter",
         "streams[1].match",
         "alerts.escalate_after",
+        "alerts.repeat_every",  # the route hears the default kinds, which leave reminders out
         "notifiers[1]",
         "notifiers[2]",
     }

@@ -42,16 +42,20 @@ EXPECTED = {
 }
 
 
-def alerts_by_stream(db: Path) -> dict[str, set[str]]:
+def incidents_by_stream(db: Path) -> dict[str, list[set[str]]]:
+    """Each stream's incidents, oldest first, as the set of rules that joined each."""
     conn = sqlite3.connect(db)
     try:
-        rows = conn.execute("SELECT stream, rule FROM alerts").fetchall()
+        rows = conn.execute(
+            """SELECT a.stream, a.id, r.rule FROM alerts a JOIN incident_rules r
+            ON r.alert_id = a.id ORDER BY a.id"""
+        ).fetchall()
     finally:
         conn.close()
-    out: dict[str, set[str]] = {}
-    for stream, rule in rows:
-        out.setdefault(stream, set()).add(rule)
-    return out
+    found: dict[str, dict[int, set[str]]] = {}
+    for stream, alert_id, rule in rows:
+        found.setdefault(stream, {}).setdefault(alert_id, set()).add(rule)
+    return {stream: list(incidents.values()) for stream, incidents in found.items()}
 
 
 @pytest.mark.parametrize("transport", ["file", "mqtt"])
@@ -64,17 +68,24 @@ def test_demo_raises_alerts_for_the_injected_causes_and_nothing_else(tmp_path, t
         args.append("--mqtt")
     result = run_cli(*args)
     assert result.returncode == 0, result.stderr
-    found = alerts_by_stream(folder / "quillmoor.db")
+    found = incidents_by_stream(folder / "quillmoor.db")
     for spec in STREAMS:
-        rules = found.get(spec.stream, set())
+        incidents = found.get(spec.stream, [])
         allowed = EXPECTED[spec.injected]
-        assert rules <= allowed, (spec.stream, rules)
-        if allowed:
-            assert rules, f"{spec.stream}: the injected {spec.injected} raised no alert"
+        if not allowed:
+            assert incidents == [], (spec.stream, incidents)
+            continue
+        # One cause, one incident, however many rules it made fire.
+        (rules,) = incidents
+        assert rules and rules <= allowed, (spec.stream, rules)
+    assert len(STREAMS) == 5 and sum(len(i) for i in found.values()) == 4
     out = result.stdout
     assert "not a safety system" in out
     assert f"Everything is in {folder}" in out
-    assert "pack-1/downtime          no alert" in out
+    assert "4 incident(s), one per cause" in out
+    assert "pack-1/downtime          no incident" in out
+    # Every notification names the stream's unit and description.
+    assert "unit:         min" in out and "(unplanned downtime per shift)" in out
     # the commands it suggests work as printed, from a shell whose PATH lacks the venv (the
     # README installs without activating it)
     suggested = next_commands(out)

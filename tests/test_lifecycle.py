@@ -1,6 +1,7 @@
-"""The alert lifecycle, driven by explicit times against a real SQLite file.
+"""The incident lifecycle, driven by explicit times against a real SQLite file.
 
 Signals and outcomes are built by hand, so each test states exactly which readings arrive when.
+A stream has one live incident at a time; every rule that signals while it lives joins it.
 The shelving behaviour follows the idea of shelving in ANSI/ISA-18.2-2016 (cited from memory): a
 shelved alarm is still tracked, and if it is still active when the shelf ends it is announced.
 """
@@ -26,8 +27,8 @@ from limitwatch.alerts.lifecycle import (
     Notice,
     SeverityRule,
     covering_shelf,
-    hold_is_new,
-    judge_signal,
+    decide,
+    held_until,
     notices_due,
 )
 from limitwatch.model import Outcome, Reading, StreamSignal
@@ -156,10 +157,37 @@ def test_one_reading_counts_once_per_rule(book: AlertBook):
     assert alert.signal_count == 1
 
 
-def test_different_rules_on_one_stream_are_different_alerts(book: AlertBook):
-    book.apply([reading(T0, sig("beyond-limits", T0), sig("mr-beyond-limit", T0, chart="mr"))], T0)
-    assert sorted(a.rule for a in book.store.alerts()) == ["beyond-limits", "mr-beyond-limit"]
-    assert len(rows(book.store)) == 2
+def test_different_rules_on_one_stream_join_one_incident_and_notify_once(book: AlertBook):
+    # One sustained shift: five rules within five readings, one incident, one notification.
+    rules = ["beyond-limits", "mr-beyond-limit", "two-of-three-zone-a", "four-of-five-zone-b"]
+    batch = [reading(T0, sig(rules[0], T0), sig(rules[1], T0, chart="mr"))]
+    batch += [reading(T0 + i, sig(r, T0 + i)) for i, r in enumerate(rules[2:], start=1)]
+    batch += [hit(T0 + 3, "run-one-side"), hit(T0 + 4, "beyond-limits")]
+    report = book.apply(batch, T0 + 5)
+    (incident,) = book.store.alerts()
+    assert incident.rule == "beyond-limits"  # the rule that opened it
+    assert set(incident.rules) == {*rules, "run-one-side"}
+    assert incident.rules["beyond-limits"].signal_count == 2
+    assert (incident.rules["beyond-limits"].first_time, incident.last_time) == (T0, T0 + 4)
+    assert incident.signal_count == 6
+    assert rows(book.store) == [(f"{incident.id}:opened:0:default", "default")]
+    assert kinds(book.store, incident.id).count("joined") == 4
+    assert (report.opened, report.joined, report.repeated) == (1, 4, 1)
+
+
+def test_a_joining_rule_notifies_only_when_it_raises_the_severity(fresh_db: Store):
+    policy = replace(POLICY, severities=(SeverityRule("*", "run-one-side", "critical"),))
+    book = AlertBook(fresh_db, policy)
+    book.apply([hit(T0), hit(T0 + 1, "trend")], now=T0 + 1)
+    assert [k.split(":")[1] for k, _ in rows(fresh_db)] == ["opened"]
+    book.apply([hit(T0 + 2, "run-one-side"), hit(T0 + 3, "run-one-side")], now=T0 + 3)
+    (incident,) = fresh_db.alerts()
+    assert incident.severity == "critical"
+    assert incident.rules["trend"].severity == "warning"
+    assert [k.split(":")[1:3] for k, _ in rows(fresh_db)] == [["opened", "0"], ["raised", "2"]]
+    raised = fresh_db.notifications()[1].payload
+    assert raised["text"].startswith(f"Incident {incident.id} on {STREAM} is now critical")
+    assert "raised" in kinds(fresh_db, incident.id)
 
 
 def test_an_acknowledged_alert_keeps_counting_signals(book: AlertBook):
@@ -169,7 +197,14 @@ def test_an_acknowledged_alert_keeps_counting_signals(book: AlertBook):
     book.apply([hit(T0 + 60)], now=T0 + 60)
     (again,) = book.store.alerts()
     assert (again.id, again.state, again.signal_count) == (alert.id, "acknowledged", 2)
-    assert len(rows(book.store)) == 1
+    # The acknowledgement itself is announced once, with who and the note; nothing more.
+    assert [k.split(":")[1] for k, _ in rows(book.store)] == ["opened", "acknowledged"]
+    ack = book.store.notifications()[1].payload
+    assert (ack["acknowledged_by"], ack["ack_note"]) == ("m.chen", "on it")
+    assert "acknowledged by m.chen" in ack["text"] and "on it" in ack["text"]
+    book.apply([hit(T0 + 120)], now=T0 + 120)
+    assert book.tick(T0 + 9999).queued == 0
+    assert len(rows(book.store)) == 2
 
 
 # --------------------------------------------------------------------------- hysteresis
@@ -182,7 +217,7 @@ def test_an_alert_clears_after_n_consecutive_quiet_monitoring_readings(book: Ale
     report = book.apply([quiet(T0 + 180)], now=T0 + 180)
     cleared = book.store.alert(alert.id)
     assert (cleared.state, cleared.cleared_at, cleared.quiet_count) == ("cleared", T0 + 180, 3)
-    assert kinds(book.store, alert.id)[-1] == "cleared"
+    assert kinds(book.store, alert.id)[-2:] == ["cleared", "notified"]  # and announced
     assert report.cleared == 1
 
 
@@ -208,11 +243,26 @@ def test_learning_phase_and_refused_readings_do_not_count_as_quiet(book: AlertBo
     assert (alert.state, alert.quiet_count) == ("open", 0)
 
 
-def test_another_rule_firing_is_quiet_for_this_rule(book: AlertBook):
+def test_any_rule_firing_keeps_the_incident_live(book: AlertBook):
     book.apply([hit(T0, "trend")], now=T0)
     book.apply([hit(T0 + t, "beyond-limits") for t in (1, 2, 3)], now=T0 + 3)
-    states = {a.rule: a.state for a in book.store.alerts()}
-    assert states == {"trend": "cleared", "beyond-limits": "open"}
+    (incident,) = book.store.alerts()
+    assert (incident.state, incident.quiet_count, set(incident.rules)) == (
+        "open",
+        0,
+        {"trend", "beyond-limits"},
+    )
+
+
+def test_clearing_is_announced_with_how_long_it_lasted(book: AlertBook):
+    book.apply([hit(T0), hit(T0 + 600)], now=T0 + 600)
+    book.apply([quiet(T0 + 1200), quiet(T0 + 1800), quiet(T0 + 2400)], now=T0 + 2400)
+    (incident,) = book.store.alerts()
+    assert incident.state == "cleared"
+    cleared = book.store.notifications()[-1].payload
+    assert cleared["event_id"] == f"{incident.id}:cleared:0"
+    assert cleared["lasted_s"] == 2400.0  # first signal to the reading that cleared it
+    assert "it lasted 40m" in cleared["text"] and cleared["text"].endswith(SAFETY_CAUTION)
 
 
 def test_a_signal_after_clearing_opens_a_new_alert_and_notifies(book: AlertBook):
@@ -223,6 +273,7 @@ def test_a_signal_after_clearing_opens_a_new_alert_and_notifies(book: AlertBook)
     assert newer.id != older.id
     assert rows(book.store) == [
         (f"{older.id}:opened:0:default", "default"),
+        (f"{older.id}:cleared:0:default", "default"),
         (f"{newer.id}:opened:0:default", "default"),
     ]
 
@@ -254,7 +305,7 @@ def test_reminders_come_at_the_repeat_interval(book: AlertBook):
     ]
     reminder = book.store.notifications()[2].payload
     assert (reminder["kind"], reminder["number"]) == ("reminder", 2)
-    assert reminder["text"].startswith("Reminder 2, not yet acknowledged")
+    assert reminder["text"].startswith(f"Reminder 2: warning incident {alert.id} on {STREAM}")
     assert kinds(book.store, alert.id) == ["opened", "notified", "reminded", "reminded"]
 
 
@@ -281,10 +332,10 @@ def test_escalation_goes_once_to_the_second_route(book: AlertBook):
     book.tick(T0 + 1800 + 600)
     book.tick(T0 + 1800 + 6000)
     escalations = [k for k, route in rows(book.store) if route == "escalation"]
-    assert escalations == [f"{alert.id}:escalation:1:escalation"]
+    assert escalations == [f"{alert.id}:escalated:1:escalation"]
     assert kinds(book.store, alert.id).count("escalated") == 1
     payload = next(n.payload for n in book.store.notifications() if n.route == "escalation")
-    assert payload["text"].startswith("Escalation, not acknowledged after 30 min")
+    assert payload["text"].startswith("Escalation: warning incident")
 
 
 def test_acknowledging_stops_reminders_and_escalation(book: AlertBook):
@@ -292,9 +343,14 @@ def test_acknowledging_stops_reminders_and_escalation(book: AlertBook):
     (alert,) = book.store.alerts()
     book.tick(T0 + 600)
     book.store.acknowledge(alert.id, by="m.chen", now=T0 + 700)
+    assert book.tick(T0 + 701).queued == 1  # the acknowledgement is announced
     for t in (1200, 1800, 3600, 86400):
         assert book.tick(T0 + t).queued == 0
-    assert [k.split(":")[1] for k, _ in rows(book.store)] == ["opened", "reminder"]
+    assert [k.split(":")[1] for k, _ in rows(book.store)] == [
+        "opened",
+        "reminder",
+        "acknowledged",
+    ]
 
 
 # --------------------------------------------------------------------------- shelving
@@ -327,7 +383,7 @@ def test_when_the_shelf_expires_what_is_still_owed_goes_out_once(book: AlertBook
     assert book.tick(T0 + 3600).queued == 2
     assert rows(book.store) == [
         (f"{alert.id}:opened:0:default", "default"),
-        (f"{alert.id}:escalation:1:escalation", "escalation"),
+        (f"{alert.id}:escalated:1:escalation", "escalation"),
     ]
     assert book.tick(T0 + 3601).queued == 0
     assert book.tick(T0 + 4200).queued == 1  # reminders resume from the late notification
@@ -340,12 +396,14 @@ def test_an_alert_that_clears_during_the_shelf_never_notifies(book: AlertBook):
     assert rows(book.store) == []
 
 
-def test_a_rule_shelf_covers_only_that_rule(book: AlertBook):
+def test_a_rule_shelf_holds_an_incident_only_while_all_its_rules_are_shelved(book: AlertBook):
     book.store.shelve(STREAM, "trend", until=T0 + 3600, reason="ramp-up", by="x", now=T0 - 1)
-    book.apply([reading(T0, sig("trend", T0), sig("beyond-limits", T0))], now=T0)
-    notified = {book.store.alert(int(k.split(":")[0])).rule for k, _ in rows(book.store)}
-    assert notified == {"beyond-limits"}
-    assert len(book.store.alerts()) == 2
+    book.apply([hit(T0, "trend"), hit(T0 + 1, "trend")], now=T0 + 1)
+    assert rows(book.store) == []
+    # Another rule joins: the incident now says something the shelf does not cover.
+    book.apply([hit(T0 + 2, "beyond-limits")], now=T0 + 2)
+    (incident,) = book.store.alerts()
+    assert rows(book.store) == [(f"{incident.id}:opened:0:default", "default")]
 
 
 def test_a_shelf_on_another_stream_changes_nothing(book: AlertBook):
@@ -394,7 +452,7 @@ def test_a_replayed_batch_changes_nothing_and_enqueues_nothing_twice(book: Alert
     assert book.store.alerts() == before
     assert kinds(book.store, before[0].id) == events
     assert len(rows(book.store)) == 1
-    assert (report.opened, report.repeated, report.replayed) == (0, 0, 2)
+    assert (report.opened, report.repeated, report.replayed) == (0, 0, 3)
 
 
 def test_a_replay_after_clearing_does_not_reopen(book: AlertBook):
@@ -403,7 +461,7 @@ def test_a_replay_after_clearing_does_not_reopen(book: AlertBook):
     book.apply(batch, now=T0 + 10)
     (alert,) = book.store.alerts()
     assert alert.state == "cleared"
-    assert len(rows(book.store)) == 1
+    assert [k.split(":")[1] for k, _ in rows(book.store)] == ["opened", "cleared"]
 
 
 def test_a_rolled_back_batch_leaves_no_alert_and_the_retry_enqueues_once(book: AlertBook):
@@ -556,11 +614,20 @@ def test_severity_comes_from_the_first_matching_rule_or_the_default(fresh_db: St
         ],
         now=T0,
     )
-    found = {(a.stream, a.rule): a.severity for a in fresh_db.alerts()}
+    found = {
+        (a.stream, rule): tally.severity
+        for a in fresh_db.alerts()
+        for rule, tally in a.rules.items()
+    }
     assert found == {
         (STREAM, "beyond-limits"): "critical",
         (STREAM, "trend"): "warning",
         ("line-3/gearbox-temp", "beyond-limits"): "info",
+    }
+    # An incident is as severe as its most severe rule.
+    assert {a.stream: a.severity for a in fresh_db.alerts()} == {
+        STREAM: "critical",
+        "line-3/gearbox-temp": "info",
     }
 
 
@@ -587,12 +654,12 @@ def test_a_router_can_send_one_event_to_several_notifiers(fresh_db: Store):
         severities=(SeverityRule("*", "beyond-limits", "critical"),), targets=targets
     )
     book = AlertBook(fresh_db, policy)
-    book.apply([reading(T0, sig("beyond-limits", T0), sig("trend", T0))], now=T0)
+    book.apply([hit(T0, "trend"), hit(T0, "beyond-limits", stream="line-9/x")], now=T0)
     by_route = {
-        (n.route, n.payload["rule"]): n.payload["event_id"] for n in fresh_db.notifications()
+        (n.route, n.payload["stream"]): n.payload["event_id"] for n in fresh_db.notifications()
     }
-    assert set(by_route) == {("pager", "beyond-limits"), ("log", "beyond-limits"), ("log", "trend")}
-    assert by_route["pager", "beyond-limits"] == by_route["log", "beyond-limits"]
+    assert set(by_route) == {("pager", "line-9/x"), ("log", "line-9/x"), ("log", STREAM)}
+    assert by_route["pager", "line-9/x"] == by_route["log", "line-9/x"]
 
 
 def test_no_matching_route_is_recorded_not_retried(fresh_db: Store):
@@ -626,13 +693,14 @@ def _gone_stale(book: AlertBook, now: float, limit: float = 300.0) -> None:
 
 
 @pytest.mark.parametrize("phase", ["learning", "monitoring"])
-def test_a_stale_alert_clears_on_the_first_recent_reading_in_either_phase(book, phase):
+def test_a_stale_incident_clears_on_the_first_recent_reading_in_either_phase(book, phase):
     now = T0 + 3600
     _gone_stale(book, now)
     book.apply([reading(now - 20, stream=STREAM, phase=phase)], now=now + 5)
     (alert,) = book.store.alerts()
     assert alert.state == "cleared"
-    assert "readings arrive again" in (book.store.alert_events(alert.id)[-1].note or "")
+    (event,) = [e for e in book.store.alert_events(alert.id) if e.kind == "cleared"]
+    assert "readings arrive again" in (event.note or "")
 
 
 def test_readings_sent_late_from_before_the_silence_leave_a_stale_alert_open(book: AlertBook):
@@ -647,13 +715,19 @@ def test_readings_sent_late_from_before_the_silence_leave_a_stale_alert_open(boo
     assert book.store.alerts()[0].state == "cleared"
 
 
-def test_a_recent_reading_clears_stale_but_counts_only_quietly_for_other_rules(book: AlertBook):
+def test_stale_joins_a_live_incident_and_a_recent_reading_only_ends_the_silence(book: AlertBook):
     now = T0 + 3600
-    book.apply([hit(now - 1000)], now=now - 1000)  # a beyond-limits alert, left live
+    book.apply([hit(now - 1000)], now=now - 1000)  # a beyond-limits incident, left live
     _gone_stale(book, now)
+    (incident,) = book.store.alerts()
+    assert set(incident.rules) == {"beyond-limits", "stale"}
+    assert incident.silent_since == now - 360.0
     book.apply([quiet(now)], now=now + 5)
-    states = {a.rule: a.state for a in book.store.alerts()}
-    assert states == {"stale": "cleared", "beyond-limits": "open"}
+    (incident,) = book.store.alerts()
+    assert (incident.state, incident.silent_since, incident.quiet_count) == ("open", None, 1)
+    assert kinds(book.store, incident.id)[-1] == "resumed"
+    book.apply([quiet(now + 1), quiet(now + 2)], now=now + 5)
+    assert book.store.alerts()[0].state == "cleared"
 
 
 def test_a_stale_text_says_how_long_in_durations_not_seconds(book: AlertBook):
@@ -661,10 +735,11 @@ def test_a_stale_text_says_how_long_in_durations_not_seconds(book: AlertBook):
     stale = replace(sig("stale", T0 + 7512, value=86.5), statistic=7512.0, limit=2400.0)
     book.apply_signals([stale], now=T0 + 7512)
     text = book.store.notifications()[0].payload["text"]
-    assert "no reading for 2h5m12s (expected within 40m)" in text
+    assert "silent for 2h5m12s (expected within 40m)" in text
     assert "Statistic" not in text and "7512" not in text
     # the reading shown is the last one, at its own time, not the time of the check
-    assert "Last reading 86.5 at 2023-11-14T22:13:20Z" in text  # T0 = 2023-11-14T22:13:20Z
+    assert "Last reading: 86.5 at 2023-11-14T22:13:20Z" in text  # T0 = 2023-11-14T22:13:20Z
+    assert "Since: 2023-11-14T22:13:20Z" in text
     assert text.endswith(SAFETY_CAUTION)
 
 
@@ -672,7 +747,8 @@ def test_a_stale_text_without_any_reading(book: AlertBook):
     stale = replace(sig("stale", T0 + 90, value=math.nan), statistic=90.0, limit=60.0)
     book.apply_signals([stale], now=T0 + 90)
     text = book.store.notifications()[0].payload["text"]
-    assert "No reading for 1m30s (expected within 1m)" in text and SAFETY_CAUTION in text
+    assert "Last reading: at 1970-01-01T00:00:00Z" not in text
+    assert "silent for 1m30s (expected within 1m)" in text and SAFETY_CAUTION in text
 
 
 def test_every_rule_id_has_words():
@@ -697,15 +773,18 @@ def test_every_rule_id_has_words():
 def test_the_moving_range_text_names_the_moving_range_limit(book: AlertBook):
     book.apply([reading(T0, sig("mr-beyond-limit", T0, value=95.0, chart="mr"))], now=T0)
     text = book.store.notifications()[0].payload["text"]
-    assert "Moving range 15 against an upper limit of 11.06" in text
+    assert "Limits: moving range 15, upper limit 11.1." in text  # to a tenth of sigma (3)
     assert "Statistic" not in text and "natural process limits" not in text
 
 
-def test_an_ewma_text_names_its_statistic_and_limit(book: AlertBook):
+def test_an_ewma_text_keeps_its_statistic_for_machines_not_for_people(book: AlertBook):
     ewma = replace(sig("ewma", T0), statistic=0.84, limit=0.79)
     book.apply([reading(T0, ewma)], now=T0)
-    text = book.store.notifications()[0].payload["text"]
-    assert "Statistic 0.84 against limit 0.79" in text and "71 to 89" in text
+    payload = book.store.notifications()[0].payload
+    assert (payload["statistic"], payload["limit"]) == (0.84, 0.79)
+    text = payload["text"]
+    assert "0.84" not in text and "statistic" not in text.lower() and "71 to 89" in text
+    assert "event" not in text.lower()
 
 
 # --------------------------------------------------------------------------- pure decisions
@@ -731,6 +810,7 @@ def _alert(**fields) -> Alert:
         signal={},
         notified_at=T0,
         last_notice_at=T0,
+        announced_severity="warning",
     )
     base.update(fields)
     return Alert(**base)  # type: ignore[arg-type]
@@ -747,10 +827,13 @@ def _alert(**fields) -> Alert:
             (Notice("reminder", 4),),
         ),
         ({"notified_at": None, "last_notice_at": None}, T0 + 1, (Notice("opened", 0),)),
-        ({"last_notice_at": T0 + 1500}, T0 + 1800, (Notice("escalation", 1),)),
-        ({}, T0 + 1800, (Notice("reminder", 1), Notice("escalation", 1))),
+        ({"last_notice_at": T0 + 1500}, T0 + 1800, (Notice("escalated", 1),)),
+        ({}, T0 + 1800, (Notice("reminder", 1), Notice("escalated", 1))),
         ({"escalated_at": T0 + 1800, "last_notice_at": T0 + 1800}, T0 + 2000, ()),
-        ({"state": "acknowledged"}, T0 + 9999, ()),
+        ({"state": "acknowledged"}, T0 + 9999, (Notice("acknowledged", 0),)),
+        ({"state": "acknowledged", "ack_announced_at": T0 + 5}, T0 + 9999, ()),
+        ({"state": "acknowledged", "notified_at": None, "last_notice_at": None}, T0 + 9999, ()),
+        ({"announced_severity": "info"}, T0 + 1, (Notice("raised", 1),)),
         ({"state": "cleared"}, T0 + 9999, ()),
     ],
 )
@@ -758,15 +841,7 @@ def test_notices_due(fields: dict, now: float, expected: tuple):
     assert notices_due(_alert(**fields), POLICY, now) == expected
 
 
-def test_judge_signal():
-    assert judge_signal(None, sig(t=T0)) == "open"
-    assert judge_signal(_alert(seen_time=T0), sig(t=T0 + 1)) == "repeat"
-    assert judge_signal(_alert(seen_time=T0), sig(t=T0)) == "replayed"
-    assert judge_signal(_alert(state="cleared", seen_time=T0), sig(t=T0 + 1)) == "open"
-    assert judge_signal(_alert(state="cleared", seen_time=T0), sig(t=T0 - 5)) == "replayed"
-
-
-def test_covering_shelf_and_hold_is_new():
+def test_covering_shelf_and_held_until():
     def shelf(id: int, rule: str | None, until: float, ended_at: float | None = None) -> Shelf:
         return Shelf(id, STREAM, rule, T0, until, "r", "x", ended_at)
 
@@ -779,12 +854,16 @@ def test_covering_shelf_and_hold_is_new():
     assert covering_shelf(shelves, STREAM, "trend", T0 + 50).id == 2  # type: ignore[union-attr]
     assert covering_shelf(shelves, STREAM, "beyond-limits", T0 + 50).id == 1  # type: ignore[union-attr]
     assert covering_shelf(shelves, STREAM, "beyond-limits", T0 + 100) is None
-    assert hold_is_new(_alert(), shelves[0])
-    assert not hold_is_new(_alert(suppressed_until=T0 + 100), shelves[0])
-    assert hold_is_new(_alert(suppressed_until=T0 + 100), shelves[1])
+    trend = _alert()
+    trend.rules = {"trend": None}  # type: ignore[dict-item]
+    assert held_until(shelves, trend, T0 + 50) == (T0 + 500, shelves[1])
+    both = _alert()
+    both.rules = {"trend": None, "beyond-limits": None}  # type: ignore[dict-item]
+    assert held_until(shelves, both, T0 + 50) == (T0 + 100, shelves[0])  # the first to end
+    assert held_until(shelves, both, T0 + 100) is None  # beyond-limits no longer shelved
 
 
-def test_signals_for_two_streams_with_the_same_rule_open_two_alerts(fresh_db):
+def test_signals_for_two_streams_with_the_same_rule_open_two_incidents(fresh_db):
     """Regression: repeats were keyed by rule alone, so a stale check covering several
     streams in one call opened an alert for the first stream only."""
     from limitwatch.alerts.lifecycle import AlertBook
@@ -816,3 +895,253 @@ def test_signals_for_two_streams_with_the_same_rule_open_two_alerts(fresh_db):
         "pack-1/downtime",
         "pack-2/downtime",
     }
+
+
+# --------------------------------------------------------------------------- batch invariance
+
+
+def _everything(store: Store) -> tuple[list, list, list]:
+    """Incidents (every field, rules included), each incident's events, every outbox row."""
+    incidents = list(reversed(store.alerts()))
+    events = [
+        [(e.kind, e.time, e.actor, e.note, e.data) for e in store.alert_events(a.id)]
+        for a in incidents
+    ]
+    outbox = [(n.idempotency_key, n.route, n.payload, n.expires_at) for n in store.notifications()]
+    return incidents, events, outbox
+
+
+def _split_run(outcomes: list[Outcome], bounds: list[int], now: float) -> tuple[list, list, list]:
+    with tempfile.TemporaryDirectory() as tmp, Store.open(Path(tmp) / "p.db") as store:
+        policy = replace(POLICY, severities=(SeverityRule("*", "run-one-side", "critical"),))
+        book = AlertBook(store, policy)
+        for a, b in itertools.pairwise(bounds):
+            if b > a:
+                book.apply(outcomes[a:b], now=now)
+                live = [x.stream for x in store.live_alerts()]
+                assert len(live) == len(set(live))  # one live incident per stream, always
+        return _everything(store)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    steps=st.lists(
+        st.tuples(
+            st.sampled_from(["line-1/a", "line-1/b", "line-2/c"]),
+            st.sets(st.sampled_from(["beyond-limits", "trend", "run-one-side"]), max_size=3),
+            st.booleans(),  # monitoring (True) or learning
+            st.floats(-4.5, 4.5),  # the reading's distance from the center line, in sigmas
+        ),
+        min_size=1,
+        max_size=50,
+    ),
+    cuts=st.sets(st.integers(1, 49), max_size=10),
+)
+def test_the_same_readings_in_batches_of_any_size_give_the_same_incidents_events_and_notices(
+    steps, cuts
+):
+    # One "now" for every batch: the split is the only difference between the two runs.
+    outcomes = []
+    for i, (stream, rules, monitoring, z) in enumerate(steps):
+        o = reading(
+            T0 + i,
+            *(sig(rule, T0 + i, stream=stream) for rule in sorted(rules)),
+            stream=stream,
+            phase="monitoring" if monitoring else "learning",
+        )
+        o.z = z
+        outcomes.append(o)
+    now = T0 + 10_000
+    bounds = [0, *sorted(c for c in cuts if c < len(outcomes)), len(outcomes)]
+    one_by_one = list(range(len(outcomes) + 1))
+    whole = _split_run(outcomes, [0, len(outcomes)], now)
+    assert _split_run(outcomes, bounds, now) == whole
+    assert _split_run(outcomes, one_by_one, now) == whole
+
+
+def test_decide_leaves_its_inputs_alone_and_writes_only_what_changed(fresh_db: Store):
+    book = AlertBook(fresh_db, POLICY)
+    book.apply([hit(T0), hit(T0, stream="line-9/x")], now=T0)
+    live = {a.stream: a for a in fresh_db.live_alerts()}
+    before = {s: a.copy() for s, a in live.items()}
+    decision = decide(
+        live, [quiet(T0 + 1)], policy=POLICY, now=T0 + 1, next_id=fresh_db.next_alert_id()
+    )
+    assert live == before  # nothing it was given changed
+    (changed,) = decision.changes.changed  # the quiet stream's incident only
+    assert (changed.stream, changed.quiet_count) == (STREAM, 1)
+    assert decision.changes.rules == [] and decision.changes.outbox == []
+    assert decision.live == {STREAM: changed}
+
+
+_KILLED_BETWEEN_DECISION_AND_COMMIT = """
+import os, signal, sys
+from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
+from limitwatch.store import Store
+from tests.test_lifecycle import hit, quiet, T0
+
+store = Store.open(sys.argv[1])
+book = AlertBook(store, AlertPolicy(clear_after=3))
+written = Store.write_changes
+
+def write_then_die(self, changes):
+    written(self, changes)  # every row of the decision is written, but not committed
+    os.kill(os.getpid(), signal.SIGKILL)
+
+Store.write_changes = write_then_die
+with store.transaction():
+    store.record_batch([hit(T0), quiet(T0 + 1)], now=T0 + 1)
+    book.apply([hit(T0), quiet(T0 + 1)], now=T0 + 1)
+"""
+
+
+def test_a_kill_9_between_decision_and_commit_loses_and_doubles_no_notification(tmp_path):
+    import subprocess
+    import sys
+
+    db = tmp_path / "killed.db"
+    Store.open(db).close()
+    died = subprocess.run(
+        [sys.executable, "-c", _KILLED_BETWEEN_DECISION_AND_COMMIT, str(db)],
+        cwd=Path(__file__).parent.parent,
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
+    assert died.returncode == -9, died.stderr  # killed, as kill -9 would
+    with Store.open(db) as store:
+        assert store.alerts() == [] and rows(store) == []  # nothing half-written survives
+        # The source redelivers what was never acknowledged; the same decision is made again.
+        book = AlertBook(store, AlertPolicy(clear_after=3))
+        for _ in range(2):  # and a second redelivery changes nothing
+            with store.transaction():
+                store.record_batch([hit(T0), quiet(T0 + 1)], now=T0 + 2)
+                book.apply([hit(T0), quiet(T0 + 1)], now=T0 + 2)
+        (incident,) = store.alerts()
+        assert rows(store) == [(f"{incident.id}:opened:0:default", "default")]
+        assert kinds(store, incident.id) == ["opened", "notified"]
+
+
+def test_every_kind_of_body_follows_the_published_schema(fresh_db: Store):
+    import jsonschema
+
+    schema_path = Path(__file__).parent.parent / "docs" / "notification.schema.json"
+    schema = json.loads(schema_path.read_text(encoding="utf-8"))
+    policy = replace(POLICY, severities=(SeverityRule("*", "trend", "critical"),))
+    book = AlertBook(fresh_db, policy)
+    book.apply([hit(T0)], now=T0)  # opened
+    book.tick(T0 + 600)  # reminder
+    book.apply([hit(T0 + 700, "trend")], now=T0 + 700)  # raised
+    book.tick(T0 + 1800)  # escalated
+    (incident,) = fresh_db.alerts()
+    fresh_db.acknowledge(incident.id, by="m.chen", note="swapping the probe", now=T0 + 1900)
+    book.tick(T0 + 1901)  # acknowledged
+    book.apply([quiet(T0 + 2000 + i) for i in range(3)], now=T0 + 2100)  # cleared
+    _gone_stale(book, T0 + 9000)  # opened, for a stream that went silent
+    bodies = [n.payload for n in fresh_db.notifications()]
+    assert {b["kind"] for b in bodies} == {
+        "opened",
+        "reminder",
+        "raised",
+        "escalated",
+        "acknowledged",
+        "cleared",
+    }
+    for body in bodies:
+        jsonschema.validate(body, schema, format_checker=jsonschema.FormatChecker())
+        json.dumps(body, allow_nan=False)
+    # The schema is not a formality: a body without its unit, or with a made-up kind, fails.
+    broken = {k: v for k, v in bodies[0].items() if k != "unit"}
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.validate(broken, schema)
+    incident_only = {"$defs": schema["$defs"], "$ref": "#/$defs/incident"}
+    with pytest.raises(jsonschema.ValidationError, match="'unit' is a required property"):
+        jsonschema.validate(broken, incident_only)
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.validate({**bodies[0], "kind": "exploded"}, schema)
+
+
+# --------------------------------------------------------------------------- floods
+
+
+def _crossing(n: int, t: float) -> list[Outcome]:
+    """``n`` streams crossing a limit together, as one cause upstream would do it."""
+    return [hit(t + i * 0.01, stream=f"hall-b/pump-{i:03d}") for i in range(n)]
+
+
+def test_many_streams_at_once_become_one_flood_notice_per_route(fresh_db: Store):
+    policy = replace(POLICY, flood_after=10, flood_window_s=600.0)
+    book = AlertBook(fresh_db, policy)
+    report = book.apply(_crossing(300, T0), now=T0)
+    assert report.opened == 300 and report.flood_started == 1
+    kinds_queued = [k.split(":")[1] for k, _ in rows(fresh_db)]
+    # The first ten are told one by one; the eleventh starts the flood, which tells the rest.
+    assert kinds_queued == ["opened"] * 10 + ["flood"]
+    flood_notice = fresh_db.notifications()[-1].payload
+    assert flood_notice["changes"] == 11 and len(flood_notice["streams"]) == 11
+    assert "hall-b/pump-010" in flood_notice["text"] and SAFETY_CAUTION in flood_notice["text"]
+    (flood,) = fresh_db.floods()
+    assert (flood.changes, len(flood.streams), flood.ended_at) == (300, 300, None)
+    folded = fresh_db.alerts(stream_glob="hall-b/pump-299")[0]
+    assert "folded into flood 1" in (fresh_db.alert_events(folded.id)[-1].note or "")
+    # More in a later batch while it lasts: still no message each, and no second flood notice.
+    book.apply(_crossing(20, T0 + 60), now=T0 + 60)  # readings clear nothing: all still live
+    assert len(rows(fresh_db)) == 11
+    # The surge passes: the flood ends, logged in its row, and notices go one by one again.
+    report = book.tick(T0 + 60 + 601)
+    assert report.flood_ended == 1
+    assert fresh_db.floods()[0].ended_at == T0 + 661
+    book.apply([hit(T0 + 700, stream="hall-c/fan-1")], now=T0 + 700)
+    assert rows(fresh_db)[-1][0].split(":")[1] == "opened"
+
+
+def test_a_flood_notice_follows_its_published_schema(fresh_db: Store):
+    import jsonschema
+
+    schema = json.loads(
+        (Path(__file__).parent.parent / "docs" / "notification.schema.json").read_text("utf-8")
+    )
+    book = AlertBook(fresh_db, replace(POLICY, flood_after=2))
+    book.apply(_crossing(5, T0), now=T0)
+    flood_notice = fresh_db.notifications()[-1].payload
+    assert flood_notice["kind"] == "flood"
+    jsonschema.validate(flood_notice, schema, format_checker=jsonschema.FormatChecker())
+
+
+def test_flood_handling_can_be_turned_off(fresh_db: Store):
+    book = AlertBook(fresh_db, replace(POLICY, flood_after=None))
+    book.apply(_crossing(30, T0), now=T0)
+    assert [k.split(":")[1] for k, _ in rows(fresh_db)] == ["opened"] * 30
+    assert fresh_db.floods() == []
+
+
+def test_receivers_that_heard_of_an_incident_hear_when_a_shelf_holds_it_and_when_it_ends(
+    fresh_db: Store,
+):
+    import jsonschema
+
+    schema = json.loads(
+        (Path(__file__).parent.parent / "docs" / "notification.schema.json").read_text("utf-8")
+    )
+    book = AlertBook(fresh_db, POLICY)
+    book.apply([hit(T0)], now=T0)
+    (incident,) = fresh_db.alerts()
+    fresh_db.shelve(STREAM, until=T0 + 3600, reason="bearing swap", by="r.diaz", now=T0 + 10)
+    assert book.tick(T0 + 11).queued == 1
+    assert book.tick(T0 + 12).queued == 0  # told once
+    shelved = fresh_db.notifications()[-1].payload
+    assert shelved["event_id"] == f"{incident.id}:shelved:1"
+    assert shelved["shelf"]["by"] == "r.diaz" and "bearing swap" in shelved["text"]
+    # While shelved, the reminder is held; when the shelf ends early, receivers hear it.
+    assert book.tick(T0 + 700).queued == 0
+    fresh_db.unshelve(STREAM, by="r.diaz", now=T0 + 800)
+    book.tick(T0 + 801)
+    tail = [n.payload["kind"] for n in fresh_db.notifications()][-2:]
+    assert tail == ["unshelved", "reminder"]
+    for note in fresh_db.notifications():
+        jsonschema.validate(note.payload, schema, format_checker=jsonschema.FormatChecker())
+    # An incident nobody was told of is not announced as shelved (its opened notice is held).
+    fresh_db.shelve("line-9/x", until=T0 + 3600, reason="stop", by="x", now=T0 + 900)
+    book.apply([hit(T0 + 901, stream="line-9/x")], now=T0 + 901)
+    assert all(n.payload["stream"] != "line-9/x" for n in fresh_db.notifications())

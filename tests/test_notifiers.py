@@ -16,6 +16,7 @@ import email
 import email.policy
 import hashlib
 import hmac
+import io
 import json
 import os
 import queue
@@ -32,6 +33,7 @@ from pydantic import ValidationError
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import Notice, notification_payload
+from limitwatch.alerts.messages import StreamInfo
 from limitwatch.alerts.notifiers import (
     DeliveryError,
     NotifierSettings,
@@ -46,11 +48,12 @@ from limitwatch.alerts.notifiers.console import ConsoleNotifier
 from limitwatch.alerts.notifiers.mqtt import MqttNotifier
 from limitwatch.alerts.notifiers.smtp import SmtpNotifier
 from limitwatch.alerts.notifiers.webhook import WebhookNotifier
-from limitwatch.store import Alert
+from limitwatch.store import Alert, Store
 from tests.broker import free_port
 from tests.receivers import WebhookReceiver, make_ca, smtp_receiver
 
 T_ALERT = 1_900_000_000.0
+INFO = StreamInfo("unplanned downtime, packing line 2", "min")
 BUILT_INS = {
     "console": ConsoleNotifier,
     "webhook": WebhookNotifier,
@@ -88,7 +91,8 @@ def payload(
         signal={"chart": "x", "side": "upper", "center": 20.0, "sigma": 6.0, "ucl": 38.0,
                 "lcl": 2.0, "mr": 9.0, "mr_ucl": 22.1, "baseline_version": 3},
     )  # fmt: skip
-    return notification_payload(alert, Notice(kind, number), now=T_ALERT + 60)  # type: ignore[arg-type]
+    notice = Notice(kind, number)  # type: ignore[arg-type]
+    return notification_payload(alert, notice, now=T_ALERT + 60, info=INFO)
 
 
 # --------------------------------------------------------------------------- registry
@@ -244,13 +248,15 @@ def test_console_prints_a_readable_block(capsys: pytest.CaptureFixture[str], str
     text = captured.out if stream == "stdout" else captured.err
     assert (captured.err if stream == "stdout" else captured.out) == ""
     flat = " ".join(text.split())
-    assert "new alert 12, severity warning" in flat
-    assert "pack-2/downtime" in flat
+    assert "New warning incident 12 on pack-2/downtime" in flat
+    assert "pack-2/downtime (unplanned downtime, packing line 2)" in flat  # its description
     assert "outside the natural process limits" in flat  # the rule in words
     when = datetime.fromtimestamp(T_ALERT, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    assert f"41.5 at {when}" in flat  # the value and its time
-    assert "natural process limits 2 to 38" in flat
-    assert "12:opened:0" in flat
+    assert f"41.5 min at {when}" in flat  # the value with its unit and its time
+    assert "2 min to 38 min (natural process limits)" in flat
+    assert 'limitwatch ack 12 --note "what you are doing"' in flat  # the next step
+    assert "limitwatch chart pack-2/downtime" in flat
+    assert "12:opened:0" not in flat  # internal ids stay in the machine body
     assert " ".join(SAFETY_CAUTION.split()) in flat
     assert all(len(line) <= 80 for line in text.splitlines())
 
@@ -270,12 +276,12 @@ def _with_signal(note_rule: str, value: float, **signal: object) -> dict:
         signal={"chart": "x", "side": "upper", "center": 20.0, "sigma": 6.0, "ucl": 38.0,
                 "lcl": 2.0, "mr": 9.0, "mr_ucl": 22.1, "baseline_version": 3, **signal},
     )  # fmt: skip
-    return notification_payload(alert, Notice("opened", 0), now=T_ALERT + 60)
+    return notification_payload(alert, Notice("opened", 0), now=T_ALERT + 60, info=INFO)
 
 
 def test_console_labels_keep_a_space_after_the_longest(capsys: pytest.CaptureFixture[str]):
     lines = _console_block(capsys, _with_signal("ewma", 31.0, statistic=0.84, limit=0.79))
-    assert "  statistic: 0.84 against 0.79" in lines
+    assert not any("0.84" in line or "statistic" in line for line in lines)  # jargon stays out
     labelled = [line for line in lines[1:] if line.startswith("  ") and line[2] != " "]
     starts = {len(line) - len(line.split(":", 1)[1].lstrip()) for line in labelled}
     assert len(labelled) >= 6 and len(starts) == 1  # every value in one column
@@ -285,10 +291,10 @@ def test_console_stale_block_says_how_long_in_durations(capsys: pytest.CaptureFi
     # silent 7,512 s = 2 h 5 min 12 s; due within 2,400 s = 40 min
     lines = _console_block(capsys, _with_signal("stale", 41.5, statistic=7512.0, limit=2400.0))
     flat = " ".join(" ".join(lines).split())
-    assert "silent: no reading for 2h5m12s (expected within 40m)" in flat
+    assert "silent for 2h5m12s (expected within 40m)" in flat
     assert "statistic:" not in flat and "7512" not in flat
     last = datetime.fromtimestamp(T_ALERT - 7512, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    assert f"last: 41.5 at {last}" in flat
+    assert f"last reading: 41.5 min at {last}" in flat  # the reading's time, not the check's
     assert " ".join(SAFETY_CAUTION.split()) in flat
     assert all(len(line) <= 80 for line in lines)
 
@@ -403,13 +409,15 @@ def test_smtp_sends_over_verified_starttls_with_login(
     assert first.mail_from == "limitwatch@plant.test"
     assert first.rcpt_tos == ["shift-lead@plant.test", "reliability@plant.test"]
     msg = email.message_from_bytes(first.content, policy=email.policy.default)
-    assert msg["Subject"] == "[limitwatch] warning: pack-2/downtime beyond-limits (reminder 2)"
+    assert msg["Subject"] == (
+        "[limitwatch] Reminder 2: warning incident 31 on pack-2/downtime is not acknowledged"
+    )
     assert msg["X-Limitwatch-Event"] == "31:reminder:2"
     repeat = email.message_from_bytes(again.content, policy=email.policy.default)
     assert msg["Message-ID"] == repeat["Message-ID"]  # recognisable as the same mail
     assert "31" in msg["Message-ID"] and msg["Message-ID"].endswith("@plant.test>")
     body = " ".join(msg.get_content().split())
-    assert "41.5" in body and "2 to 38" in body and "center line 20" in body
+    assert "41.5 min" in body and "2 min to 38 min" in body and "center line 20 min" in body
     assert " ".join(SAFETY_CAUTION.split()) in body
 
 
@@ -423,7 +431,11 @@ def test_console_escapes_control_characters_in_the_stream_id(
     notifier.deliver(payload(stream=HOSTILE_STREAM), event_id="12:opened:0")
     out = capsys.readouterr().out
     assert "\x1b" not in out and "\x07" not in out
-    assert "  stream:    kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test" in out.splitlines()
+    escaped = "kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test"
+    assert any(
+        line.startswith("  stream:") and escaped in line
+        for line in out.splitlines()
+    ), out
 
 
 def test_smtp_sends_an_alert_whose_stream_id_holds_a_newline(tmp_path: Path) -> None:
@@ -437,7 +449,8 @@ def test_smtp_sends_an_alert_whose_stream_id_holds_a_newline(tmp_path: Path) -> 
     msg = email.message_from_bytes(mail.content, policy=email.policy.default)
     assert msg["Bcc"] is None
     assert msg["Subject"] == (
-        "[limitwatch] warning: kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test beyond-limits"
+        "[limitwatch] New warning incident 12 on "
+        "kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test"
     )
     body = msg.get_content()
     assert "\x1b" not in body and "\x07" not in body
@@ -468,6 +481,68 @@ def test_smtp_will_not_send_when_starttls_is_not_offered(tmp_path: Path) -> None
         )
     assert not err.value.retryable
     assert mails == []
+
+
+def _shift_body(store: Store) -> dict:
+    """What the lifecycle queues for a real shift: 30 readings stored, the last ones four sigma
+    up, through the real book (which adds the recent readings to the body)."""
+    from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
+    from limitwatch.model import Outcome, Reading, StreamSignal
+
+    outs = []
+    for i in range(30):
+        value = 20.0 + (0.0 if i < 27 else 25.0) + (i % 3 - 1) * 2.0
+        t = T_ALERT + 600.0 * i
+        sigs: tuple = ()
+        if i >= 27:
+            sigs = (
+                StreamSignal("pack-2/downtime", "beyond-limits", "x", "upper", i, t, value,
+                             (i,), 20.0, 6.0, 38.0, 2.0, 9.0, 22.1, 1),
+            )  # fmt: skip
+        phase = "learning" if i < 20 else "monitoring"
+        outs.append(Outcome(Reading("pack-2/downtime", t, value), True, index=i, phase=phase,
+                            z=(value - 20.0) / 6.0, mr=2.0, signals=sigs))  # fmt: skip
+    policy = AlertPolicy(stream_info=lambda stream: INFO)
+    with store.transaction():
+        store.add_readings(outs, now=T_ALERT + 18000)
+        AlertBook(store, policy).apply(outs, now=T_ALERT + 18000)
+    (row,) = store.notifications()
+    return row.payload
+
+
+def test_smtp_mail_carries_the_xmr_chart_as_an_inline_png(fresh_db: Store, tmp_path: Path):
+    from PIL import Image
+
+    body = _shift_body(fresh_db)
+    assert len(body["recent"]["value"]) == 28  # the readings up to the one that opened it
+    with smtp_receiver() as (port, mails):
+        notifier = build_notifier(_mail_settings(port, None, starttls=False))
+        notifier.deliver(body, event_id=body["event_id"])
+    (mail,) = mails
+    msg = email.message_from_bytes(mail.content, policy=email.policy.default)
+    plain = msg.get_body(preferencelist=("plain",))
+    assert plain is not None and "43 min at" in " ".join(plain.get_content().split())
+    html_part = msg.get_body(preferencelist=("html",))
+    assert html_part is not None
+    (image,) = [p for p in msg.walk() if p.get_content_type() == "image/png"]
+    cid = image["Content-ID"].strip("<>")
+    assert f'src="cid:{cid}"' in html_part.get_content()  # shown inline, by reference
+    png = image.get_content()
+    assert png.startswith(b"\x89PNG\r\n\x1a\n")
+    picture = Image.open(io.BytesIO(png))
+    picture.verify()  # a whole, decodable image
+    assert picture.size == (900, 600)
+    assert " ".join(SAFETY_CAUTION.split()) in " ".join(plain.get_content().split())
+
+
+def test_smtp_mail_is_plain_text_when_there_are_no_readings_to_draw(tmp_path: Path) -> None:
+    with smtp_receiver() as (port, mails):
+        build_notifier(_mail_settings(port, None, starttls=False)).deliver(
+            payload(), event_id="12:opened:0"
+        )
+    (mail,) = mails
+    msg = email.message_from_bytes(mail.content, policy=email.policy.default)
+    assert msg.get_content_type() == "text/plain"
 
 
 @pytest.mark.parametrize(

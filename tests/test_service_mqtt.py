@@ -11,6 +11,7 @@ import signal
 import subprocess
 import threading
 import time
+from pathlib import Path
 
 import numpy as np
 import paho.mqtt.client as mqtt
@@ -484,3 +485,61 @@ def test_poison_messages_are_dead_letters_and_monitoring_goes_on_across_a_restar
         assert again.stop() == 0
     assert count(db, "dead_letters") == len(poison) and count(db, "readings") == 26
     assert "Traceback" not in svc.logs()
+
+
+def _validate_body(body: dict) -> None:
+    """Check a real body against the published schema (docs/notification.schema.json)."""
+    import jsonschema
+
+    schema_path = Path(__file__).parent.parent / "docs" / "notification.schema.json"
+    schema = json.loads(schema_path.read_text(encoding="utf-8"))
+    jsonschema.validate(body, schema, format_checker=jsonschema.FormatChecker())
+
+
+def test_one_shift_is_one_incident_heard_from_opened_to_cleared(broker, tmp_path):
+    # 25 in-control readings (20 learn the baseline), 10 shifted up by four sigma (several
+    # Western Electric rules and the moving-range limit fire), then 25 back in control: the
+    # receiver must hear one "opened" and, ten quiet readings later, one "cleared".
+    rng = np.random.default_rng(11)
+    values = np.concatenate(
+        [rng.normal(50.0, 1.0, 25), rng.normal(54.0, 1.0, 10), rng.normal(50.0, 1.0, 25)]
+    ).round(3)
+    messages = [
+        ("plant/line-1/bearing-temp/reading", json.dumps({"v": float(v), "t": T0 + 60 * i,
+                                                          "seq": i + 1}))
+        for i, v in enumerate(values)
+    ]  # fmt: skip
+    describe = (
+        '[[streams]]\nmatch = "line-1/*"\ndescription = "bearing temperature, line 1 fan"\n'
+        'unit = "degC"\n'
+    )
+    with WebhookReceiver() as hook:
+        config = mqtt_config(tmp_path, broker.port, webhook_url=hook.url, extra=describe)
+        svc = ServiceProcess(config).start()
+        try:
+            wait_until(lambda: service_up(svc), what="service connected")
+            pub = Publisher(broker.port)
+            pub.send_all(messages)
+            pub.close()
+            db = tmp_path / "service.db"
+            wait_until(lambda: count(db, "readings") == len(values), what="readings committed")
+            wait_until(lambda: len(hook.accepted()) >= 2, timeout=30, what="opened and cleared")
+            time.sleep(2.0)  # any third notification would have arrived by now
+            got = hook.accepted()
+            rules = query(db, "SELECT rule FROM incident_rules")
+        finally:
+            assert svc.stop() == 0
+    bodies = [json.loads(r.body) for r in got]
+    assert [b["kind"] for b in bodies] == ["opened", "cleared"], bodies
+    assert len({r[0] for r in rules}) >= 2  # several rules fired, and joined one incident
+    opened, cleared = bodies
+    assert opened["incident_id"] == cleared["incident_id"]
+    assert opened["value"] > opened["ucl"] or opened["rule"] != "beyond-limits"
+    assert (opened["unit"], opened["description"]) == ("degC", "bearing temperature, line 1 fan")
+    assert "degC" in opened["text"] and "bearing temperature, line 1 fan" in opened["text"]
+    assert f"limitwatch ack {opened['incident_id']}" in opened["text"]
+    assert cleared["lasted_s"] > 0 and "it lasted" in cleared["text"]
+    for body in bodies:
+        _validate_body(body)
+        assert "not a safety system" in body["text"]
+    assert [r.headers["X-Limitwatch-Event"] for r in got] == [b["event_id"] for b in bodies]

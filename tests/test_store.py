@@ -23,6 +23,7 @@ from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.store import (
     DEAD_LETTER_KEEP_BYTES,
     MIGRATIONS,
+    Alert,
     AlertAlreadyAcknowledged,
     AlertAlreadyCleared,
     AlertAlreadyOpen,
@@ -514,18 +515,21 @@ def test_open_alert_writes_the_row_and_an_opened_event(fresh_db: Store):
     assert (event.kind, event.actor, event.time) == ("opened", "limitwatch", T0 + 2)
 
 
-def test_only_one_live_alert_per_stream_and_rule(fresh_db: Store):
+def test_only_one_live_incident_per_stream(fresh_db: Store):
     alert = fresh_db.open_alert(signal(), severity="warning", now=T0)
-    with pytest.raises(AlertAlreadyOpen, match=f"already has alert {alert.id}"):
+    with pytest.raises(AlertAlreadyOpen, match=f"already has live incident {alert.id}"):
         fresh_db.open_alert(signal(time=T0 + 1), severity="warning", now=T0 + 1)
+    # Another rule joins the incident rather than opening a second one.
+    with pytest.raises(AlertAlreadyOpen, match=f"already has live incident {alert.id}"):
+        fresh_db.open_alert(signal(rule="trend"), severity="warning", now=T0)
     # The database enforces it too, whoever writes.
     with pytest.raises(sqlite3.IntegrityError):
         fresh_db.db.execute(
             """INSERT INTO alerts (stream, rule, state, severity, opened_at, first_time,
-                last_time, seen_time) VALUES ('line-1/temp', 'beyond-limits', 'acknowledged',
+                last_time, seen_time) VALUES ('line-1/temp', 'trend', 'acknowledged',
                 'warning', 0, 0, 0, 0)"""
         )
-    fresh_db.open_alert(signal(rule="trend"), severity="warning", now=T0)
+    fresh_db.open_alert(signal("line-2/temp"), severity="warning", now=T0)
 
 
 def test_acknowledging_an_unknown_alert_raises_alert_not_found(fresh_db: Store):
@@ -632,7 +636,7 @@ def test_unshelving_a_stream_ends_its_rule_shelves_too(fresh_db: Store):
 
 def test_shelving_and_unshelving_are_logged_on_the_live_alerts_covered(fresh_db: Store):
     hit = fresh_db.open_alert(signal("s", "trend"), severity="warning", now=T0)
-    miss = fresh_db.open_alert(signal("s", "beyond-limits"), severity="warning", now=T0)
+    miss = fresh_db.open_alert(signal("t", "trend"), severity="warning", now=T0)
     fresh_db.shelve("s", "trend", until=T0 + 600, reason="recalibration", by="x", now=T0 + 1)
     fresh_db.unshelve("s", "trend", by="y", now=T0 + 2)
     assert [(e.kind, e.actor) for e in fresh_db.alert_events(hit.id)] == [
@@ -773,3 +777,113 @@ def test_a_checkpoint_with_a_nan_in_it_still_restores(fresh_db: Store):
     fresh_db.save_checkpoints({"line-1/a": {"format": 2, "x": float("nan"), "y": 1.5}}, now=1.0)
     ((stream, state),) = fresh_db.iter_checkpoints()
     assert stream == "line-1/a" and math.isnan(state["x"]) and state["y"] == 1.5
+
+
+# --------------------------------------------------------------------------- incidents
+
+
+def test_an_old_file_with_several_live_alerts_per_stream_gets_one_incident_each(tmp_path):
+    path = tmp_path / "v4.db"
+    old = sqlite_utils.Database(path)
+    assert migrate(old, now=T0, target=4) == [1, 2, 3, 4]
+
+    def alert(stream, rule, state, severity, first, last, count, notified=None):
+        cur = old.execute(
+            """INSERT INTO alerts (stream, rule, state, severity, opened_at, first_time,
+                first_value, last_time, last_value, signal_count, quiet_count, seen_time,
+                signal_json, notified_at)
+            VALUES (?, ?, ?, ?, ?, ?, 1.0, ?, 2.0, ?, 0, ?, '{}', ?)""",
+            (stream, rule, state, severity, first, first, last, count, last, notified),
+        )
+        old.execute(
+            "INSERT INTO alert_events (alert_id, kind, time, actor) VALUES (?, 'opened', ?, 'x')",
+            (cur.lastrowid, first),
+        )
+        return cur.lastrowid
+
+    a = alert(
+        "pack-2/downtime", "beyond-limits", "acknowledged", "warning", T0 + 10, T0 + 40, 3, T0
+    )
+    old.execute(
+        "UPDATE alerts SET acknowledged_at = ?, acknowledged_by = 'kim' WHERE id = ?", (T0, a)
+    )
+    b = alert("pack-2/downtime", "run-one-side", "acknowledged", "critical", T0 + 5, T0 + 50, 2)
+    c = alert("pack-2/downtime", "mr-beyond-limit", "open", "info", T0 + 20, T0 + 20, 1)
+    gone = alert("pack-2/downtime", "trend", "cleared", "warning", T0 - 99, T0 - 90, 4)
+    alone = alert("oven-1/energy", "trend", "acknowledged", "warning", T0, T0 + 1, 1, T0)
+    old.execute("UPDATE alerts SET acknowledged_at = ? WHERE id = ?", (T0 + 1, alone))
+    old.execute(
+        """INSERT INTO outbox (idempotency_key, alert_id, route, payload_json, created_at,
+            next_attempt_at) VALUES ('k', ?, 'r', '{}', 0, 0)""",
+        (c,),
+    )
+    old.close()
+
+    with Store.open(path, now=T0 + 3600) as store:
+        live = {x.stream: x for x in store.live_alerts()}
+        assert set(live) == {"pack-2/downtime", "oven-1/energy"}
+        incident = live["pack-2/downtime"]
+        # The oldest live alert carries the incident; the others fold into it.
+        assert incident.id == a
+        assert set(incident.rules) == {"beyond-limits", "run-one-side", "mr-beyond-limit"}
+        assert incident.rules["run-one-side"].signal_count == 2
+        assert incident.signal_count == 6
+        assert (incident.first_time, incident.last_time) == (T0 + 5, T0 + 50)
+        assert incident.severity == "critical"  # the highest of its parts
+        assert incident.state == "open"  # not every part was acknowledged ...
+        assert incident.acknowledged_by is None  # ... so it waits for someone again
+        assert incident.announced_severity == "warning"  # so a "raised" notice is owed
+        for merged in (b, c):
+            row = store.alert(merged)
+            assert (row.state, row.merged_into, row.cleared_at) == ("cleared", a, T0 + 3600)
+            assert [e.kind for e in store.alert_events(merged)] == ["opened", "merged"]
+            assert store.alert(merged).rules == {}
+        assert [e.kind for e in store.alert_events(a)] == ["opened", "merged", "merged"]
+        # What was cleared already, and a stream with one live alert, stay as they were.
+        assert store.alert(gone).state == "cleared" and store.alert(gone).merged_into is None
+        assert live["oven-1/energy"].id == alone and live["oven-1/energy"].state == "acknowledged"
+        assert set(live["oven-1/energy"].rules) == {"trend"}
+        # Acknowledged before the upgrade: receivers are not told of it again.
+        assert live["oven-1/energy"].ack_announced_at == T0 + 1
+        # The outbox row of a merged alert still points at a row that exists.
+        (row,) = store.notifications()
+        assert row.alert_id == c
+        # And from now on the database refuses a second live incident on a stream.
+        with pytest.raises(sqlite3.IntegrityError):
+            store.db.execute(
+                """INSERT INTO alerts (stream, rule, state, severity, opened_at, first_time,
+                    last_time, seen_time) VALUES ('pack-2/downtime', 'x', 'open', 'info',
+                    0, 0, 0, 0)"""
+            )
+
+
+def test_write_changes_writes_a_decision_in_one_call_and_a_repeat_queues_nothing(fresh_db):
+    from limitwatch.store import ChangeSet, EventRow, OutboxRow, RuleTally
+
+    with fresh_db.transaction():
+        first_id = fresh_db.next_alert_id()
+    incident = Alert(
+        first_id, "s", "trend", "open", "warning", T0, T0, 1, 5.0, T0, 1, 5.0, 1, 0, T0, {}
+    )
+    incident.rules["trend"] = RuleTally("trend", "warning", 1, T0, 1, 5.0, T0, 1, 5.0, {})
+    changes = ChangeSet(
+        opened=[incident],
+        rules=[(first_id, incident.rules["trend"])],
+        events=[EventRow(first_id, "opened", T0)],
+        outbox=[OutboxRow(f"{first_id}:opened:0:r", first_id, "r", {"a": 1}, T0, T0 + 9)],
+    )
+    assert fresh_db.write_changes(changes) == 1
+    stored = fresh_db.alert(first_id)
+    assert stored == incident
+    incident.quiet_count = 2
+    incident.rules["trend"].signal_count = 3
+    again = ChangeSet(
+        changed=[incident],
+        rules=[(first_id, incident.rules["trend"])],
+        outbox=changes.outbox,
+    )
+    assert fresh_db.write_changes(again) == 0  # the outbox row is there already
+    assert fresh_db.alert(first_id).rules["trend"].signal_count == 3
+    assert fresh_db.alert(first_id).quiet_count == 2
+    with fresh_db.transaction():
+        assert fresh_db.next_alert_id() == first_id + 1

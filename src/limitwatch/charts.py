@@ -35,6 +35,7 @@ ASTM E2587, *Standard Practice for Use of Control Charts in Statistical Process 
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -76,6 +77,8 @@ LIMIT = "#a0522d"
 ZONE_C = "#ecf2ee"
 ZONE_B = "#f5f0e1"
 ZONE_A = "#f7e6df"
+INCIDENT = "#6b4c8a"
+SILENCE = "#9aa4ad"
 FLAG = "#c2412d"
 CHANGE = "#6d5f8c"
 
@@ -156,6 +159,46 @@ class Flag:
 
 
 @dataclass(frozen=True, slots=True)
+class IncidentSpan:
+    """An incident drawn under the readings: from its first signalling reading (``start``) to
+    the reading that cleared it (``end``; None while it is live), with the rules that joined."""
+
+    id: int
+    start: float
+    end: float | None
+    rules: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class Silence:
+    """No readings from ``start`` (the last reading before) to ``end`` (the first after; None
+    while the stream is still silent, drawn up to ``checked``, the last check that found it)."""
+
+    start: float
+    end: float | None
+    checked: float | None = None
+
+
+def silences(points: Sequence[Point], *, factor: float = 5.0) -> list[Silence]:
+    """Gaps between consecutive readings longer than ``factor`` times their median interval.
+
+    >>> pts = [Point(i, t, 1.0, None, False) for i, t in enumerate([0, 60, 120, 1800, 1860])]
+    >>> silences(pts)
+    [Silence(start=120, end=1800, checked=None)]
+    """
+    times = [p.time for p in points]
+    gaps = sorted(b - a for a, b in itertools.pairwise(times) if b > a)
+    if len(gaps) < 2:
+        return []
+    typical = gaps[len(gaps) // 2]
+    return [
+        Silence(a, b)
+        for a, b in itertools.pairwise(times)
+        if typical > 0 and b - a > factor * typical
+    ]
+
+
+@dataclass(frozen=True, slots=True)
 class ChartData:
     """Everything one picture needs. ``points`` are in time order, ``limits`` in order of
     ``start``; ``window`` says which readings were chosen (e.g. ``newest 500 readings``)."""
@@ -166,6 +209,8 @@ class ChartData:
     flags: tuple[Flag, ...] = ()
     window: str = ""
     notes: tuple[str, ...] = ()
+    incidents: tuple[IncidentSpan, ...] = ()
+    silences: tuple[Silence, ...] = ()
 
 
 # --------------------------------------------------------------------------- pure helpers
@@ -267,7 +312,9 @@ def caption_lines(data: ChartData, *, most: int = 3) -> list[str]:
         lines.append(
             f"{head}: center {num(s.center, 5)} · sigma {num(s.sigma, 4)} · "
             f"LCL {_limit_text(s.lcl, s.lower_bound)} · UCL {_limit_text(s.ucl, s.upper_bound)} · "
-            f"MR limit {num(s.mr_ucl, 4)} · n {s.n} · sigma from the {method_words(s.method)}"
+            f"MR limit {num(s.mr_ucl, 4)}"
+            + (f" · n {s.n}" if s.n > 0 else "")  # unknown (0) in a notification's chart
+            + f" · sigma from the {method_words(s.method)}"
         )
     if not shown:
         learning = any(p.learning for p in data.points)
@@ -399,6 +446,8 @@ def _draw(fig: Any, data: ChartData) -> None:
 
     x = [at(t) for t in times]
     lo_t, hi_t = times[0], times[-1]
+    # A stream still silent is drawn up to the check that found it so.
+    hi_t = max([hi_t] + [g.checked for g in data.silences if g.end is None and g.checked])
     pad = max((hi_t - lo_t) * 0.01, 30.0)
     ax.set_xlim(at(lo_t - pad), at(hi_t + pad))
     mr_ax.xaxis_date(tz=UTC)
@@ -528,6 +577,8 @@ def _draw(fig: Any, data: ChartData) -> None:
             zorder=4,
         )
 
+    _incidents_and_silences(ax, mr_ax, data, at, lo_t - pad, hi_t + pad)
+
     # Flags: a diamond on every reading that signalled, one label per cluster of them.
     centre_at: dict[int, tuple[float, float]] = {}
     for s, a, b in placed:
@@ -649,6 +700,64 @@ def _draw(fig: Any, data: ChartData) -> None:
         columnspacing=1.4,
     )
     _caption(fig, data)
+
+
+def _incidents_and_silences(
+    ax: Any, mr_ax: Any, data: ChartData, at: Any, left_t: float, right_t: float
+) -> None:
+    """A bar under the readings for each incident (its span, labelled with its rules), and a
+    hatched gap with a marker where the stream went silent."""
+    from limitwatch.durations import format_duration
+
+    for span in data.incidents:
+        start, end = max(span.start, left_t), min(span.end or right_t, right_t)
+        if end < left_t or start > right_t:
+            continue
+        ax.axvspan(at(start), at(max(end, start)), ymin=0.0, ymax=0.025, color=INCIDENT, lw=0,
+                   zorder=6)  # fmt: skip
+        if end == start:
+            ax.axvline(at(start), ymin=0.0, ymax=0.04, color=INCIDENT, lw=2.0, zorder=6)
+        rules = ", ".join(span.rules[:3]) + (
+            f" +{len(span.rules) - 3}" if len(span.rules) > 3 else ""
+        )
+        ax.annotate(
+            f"incident {span.id}: {rules}" + ("" if span.end else " (live)"),
+            xy=(at(start), 0.025),
+            xycoords=ax.get_xaxis_transform(),
+            xytext=(1, 2),
+            textcoords="offset points",
+            fontsize=7.5,
+            color=INCIDENT,
+            va="bottom",
+            ha="left",
+            bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.85},
+            zorder=6,
+        )
+    for gap in data.silences:
+        end = gap.end if gap.end is not None else (gap.checked or right_t)
+        if end <= gap.start:
+            continue
+        for axis in (ax, mr_ax):
+            axis.axvspan(at(gap.start), at(end), facecolor="white", edgecolor=SILENCE,
+                         hatch="///", lw=0, zorder=3.5)  # fmt: skip
+            axis.axvline(at(gap.start), color=SILENCE, lw=1.0, ls=(0, (1, 2)), zorder=3.6)
+        words = f"silent {format_duration(round(end - gap.start))}"
+        if gap.end is None:
+            words += ", still"
+        ax.annotate(
+            words,
+            xy=(at(gap.start), 0.5),
+            xycoords=ax.get_xaxis_transform(),
+            xytext=(3, 0),
+            textcoords="offset points",
+            fontsize=8,
+            color=INK,
+            va="center",
+            ha="left",
+            rotation=90,
+            bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": SILENCE, "alpha": 0.9},
+            zorder=7,
+        )
 
 
 def _runs(flags: Sequence[bool]) -> list[tuple[int, int, bool]]:

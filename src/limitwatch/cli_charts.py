@@ -39,7 +39,7 @@ from __future__ import annotations
 import glob
 import math
 from collections.abc import Sequence
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -212,6 +212,28 @@ def _chart_of(rule: str) -> Chart:
     return "x" if detector is None else detector.chart
 
 
+@dataclass(frozen=True, slots=True)
+class _RuleSpan:
+    """One rule's part of an incident: its first and last signalling reading."""
+
+    rule: str
+    first_index: int | None
+    last_index: int | None
+    signal: dict[str, Any]
+
+
+def _per_rule(alerts: Sequence[Alert]) -> list[_RuleSpan]:
+    """Each incident's rules as spans of their own (an incident from before rules were kept
+    per incident counts as one span of its opening rule)."""
+    out = []
+    for a in alerts:
+        if not a.rules:
+            out.append(_RuleSpan(a.rule, a.first_index, a.last_index, a.signal))
+        for t in a.rules.values():
+            out.append(_RuleSpan(t.rule, t.first_index, t.last_index, t.signal))
+    return out
+
+
 def flags_from_alerts(
     alerts: Sequence[Alert],
     readings: Sequence[StoredReading],
@@ -235,7 +257,7 @@ def flags_from_alerts(
         return found
 
     out: list[charts.Flag] = []
-    for a in alerts:
+    for a in _per_rule(alerts):
         chart: Chart = "mr" if a.signal.get("chart") == "mr" else "x"
         for index in {a.first_index, a.last_index}:
             if index is not None and index in by_index:
@@ -333,13 +355,14 @@ def gather(
         )
     unrecorded = any(r.signals is None for r in readings)
     partial = {
-        a.rule: a.signal_count
+        t.rule: t.signal_count
         for a in alerts
+        for t in (a.rules.values() if a.rules else ())
         if unrecorded
-        and a.rule not in _EVERY_SIGNAL_MARKED
-        and a.signal_count > 2
-        and a.first_index is not None
-        and a.first_index >= (readings[0].index or 0 if readings else 0)
+        and t.rule not in _EVERY_SIGNAL_MARKED
+        and t.signal_count > 2
+        and t.first_index is not None
+        and t.first_index >= (readings[0].index or 0 if readings else 0)
     }
     if partial:
         counts = ", ".join(f"{rule} {n}" for rule, n in sorted(partial.items()))
@@ -347,13 +370,29 @@ def gather(
             "Readings stored by an older limitwatch do not record their signals: there, run "
             f"rules mark each alert's first and last signal only; the alerts counted {counts}."
         )
+    points = to_points(readings)
+    gaps = charts.silences(points)
+    for a in alerts:
+        if a.state != "cleared" and a.silent_since is not None:
+            gaps.append(charts.Silence(a.silent_since, None, a.last_time))
     return charts.ChartData(
         stream=stream,
-        points=to_points(readings),
+        points=points,
         limits=tuple(limits),
         flags=tuple(signal_flags(alerts, readings, limits)),
         window=window,
         notes=tuple(notes),
+        incidents=tuple(
+            charts.IncidentSpan(
+                a.id,
+                a.first_time,
+                a.seen_time if a.state == "cleared" else None,
+                tuple(t.rule for t in sorted(a.rules.values(), key=lambda t: t.first_time))
+                or (a.rule,),
+            )
+            for a in reversed(alerts)
+        ),
+        silences=tuple(gaps),
     )
 
 
@@ -465,7 +504,8 @@ def _alert_row(a: Alert) -> AlertRow:
     at = "" if a.first_index is None else f"reading {a.first_index}, "
     return AlertRow(
         id=a.id,
-        rule=a.rule,
+        rule=", ".join(t.rule for t in sorted(a.rules.values(), key=lambda t: t.first_time))
+        or a.rule,
         state=a.state,
         severity=a.severity,
         opened=iso_s(a.opened_at),

@@ -249,7 +249,9 @@ def _stale_alerts(db: Path) -> int:
 
     conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
     try:
-        return int(conn.execute("SELECT count(*) FROM alerts WHERE rule = 'stale'").fetchone()[0])
+        return int(
+            conn.execute("SELECT count(*) FROM incident_rules WHERE rule = 'stale'").fetchone()[0]
+        )
     finally:
         conn.close()
 
@@ -289,19 +291,22 @@ def _summary(root: Path, db: Path, echo: Callable[[str], None]) -> None:
 
     conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True)
     try:
-        rows = conn.execute(
-            "SELECT stream, group_concat(rule, ', ') FROM "
-            "(SELECT stream, rule FROM alerts ORDER BY id) GROUP BY stream ORDER BY stream"
+        incidents = conn.execute("SELECT id, stream FROM alerts ORDER BY stream, id").fetchall()
+        rules = conn.execute(
+            "SELECT alert_id, rule FROM incident_rules ORDER BY alert_id, first_time, rule"
         ).fetchall()
     finally:
         conn.close()
+    by_incident: dict[int, list[str]] = {}
+    for alert_id, rule in rules:
+        by_incident.setdefault(alert_id, []).append(rule)
     echo("")
-    echo("What the alerts say, stream by stream:")
-    for stream, rules in rows:
-        echo(f"  {stream:24} {rules}")
-    quiet = sorted({s.stream for s in STREAMS} - {r[0] for r in rows})
+    echo(f"{len(incidents)} incident(s), one per cause; the rules that joined each:")
+    for alert_id, stream in incidents:
+        echo(f"  {stream:24} incident {alert_id}: {', '.join(by_incident.get(alert_id, []))}")
+    quiet = sorted({s.stream for s in STREAMS} - {r[1] for r in incidents})
     for stream in quiet:
-        echo(f"  {stream:24} no alert (common-cause noise only)")
+        echo(f"  {stream:24} no incident (common-cause noise only)")
     db_opt = f"--db {shlex.quote(str(db))}"
     exe = command_prefix(sys.argv[0] if sys.argv else "")
     echo("")

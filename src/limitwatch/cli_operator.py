@@ -50,7 +50,8 @@ import click
 import sqlite_utils
 
 from limitwatch import SAFETY_CAUTION
-from limitwatch.alerts.lifecycle import covering_shelf, rule_words
+from limitwatch.alerts.lifecycle import held_until, rule_words
+from limitwatch.alerts.messages import StreamInfo, with_unit
 from limitwatch.cli import FORMATS, InputProblem, baseline, main
 from limitwatch.config import ConfigError, load_config
 from limitwatch.durations import DurationError, format_duration, parse_duration
@@ -374,13 +375,23 @@ def _unknown_stream(stream: str) -> InputProblem:
 
 
 def alert_record(alert: Alert, shelved_until: float | None) -> dict[str, Any]:
-    """The JSON object for one alert (``limitwatch alerts --format json``)."""
+    """The JSON object for one incident (``limitwatch alerts --format json``)."""
     sig = alert.signal
     return {
         "id": alert.id,
         "stream": alert.stream,
         "rule": alert.rule,
         "rule_words": rule_words(alert.rule),
+        "rules": [
+            {
+                "rule": t.rule,
+                "severity": t.severity,
+                "count": t.signal_count,
+                "first_time": iso(t.first_time),
+                "last_time": iso(t.last_time),
+            }
+            for t in _tallies(alert)
+        ],
         "state": alert.state,
         "severity": alert.severity,
         "count": alert.signal_count,
@@ -389,6 +400,8 @@ def alert_record(alert: Alert, shelved_until: float | None) -> dict[str, Any]:
         "first_value": alert.first_value,
         "last_time": iso(alert.last_time),
         "last_value": alert.last_value,
+        "worst_zone": alert.worst_zone,
+        "silent_since": iso(alert.silent_since),
         "center": sig.get("center"),
         "lcl": sig.get("lcl"),
         "ucl": sig.get("ucl"),
@@ -397,22 +410,65 @@ def alert_record(alert: Alert, shelved_until: float | None) -> dict[str, Any]:
         "acknowledged_by": alert.acknowledged_by,
         "ack_note": alert.ack_note,
         "cleared_at": iso(alert.cleared_at),
+        "merged_into": alert.merged_into,
         "shelved_until": iso(shelved_until),
     }
+
+
+def _load(config_file: str | None) -> Any:
+    if config_file is None:
+        return None
+    try:
+        return load_config(config_file)
+    except ConfigError as exc:
+        raise InputProblem(str(exc)) from None
+
+
+def _stream_info(config_file: str | None, stream: str) -> StreamInfo:
+    """The stream's description and unit from ``--config``; nothing without one (the database
+    does not keep them)."""
+    config = _load(config_file)
+    return StreamInfo() if config is None else config.stream_info(stream)
+
+
+def _tallies(alert: Alert) -> list[Any]:
+    return sorted(alert.rules.values(), key=lambda t: (t.first_time, t.rule))
+
+
+def _rules_cell(alert: Alert) -> str:
+    """The rule that opened the incident, and how many others joined it (``--format json``
+    and ``log`` name them)."""
+    others = len(set(alert.rules) - {alert.rule})
+    return alert.rule + (f" +{others}" if others else "")
 
 
 def _held_until(alert: Alert, shelves: Sequence[Shelf], now: float) -> float | None:
     if alert.state == "cleared":
         return None
-    shelf = covering_shelf(shelves, alert.stream, alert.rule, now)
-    return None if shelf is None else shelf.until
+    hold = held_until(shelves, alert, now)
+    return None if hold is None else hold[0]
+
+
+class _State(click.Choice):
+    """The states, and the short words the tables print for them (``acked``)."""
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> Any:
+        text = str(value).strip().lower()
+        return super().convert(_STATE_WORDS.get(text, text), param, ctx)
+
+
+_STATE_WORDS = {short: state for state, short in _STATE_SHORT.items()} | {
+    "ack": "acknowledged",
+    "live": "live",
+}
 
 
 @main.command("alerts")
 @click.option(
     "--state",
-    type=click.Choice([*ALERT_STATES, "all"]),
-    help="Only alerts in this state  [default: open and acknowledged].",
+    type=_State([*ALERT_STATES, "live", "all"]),
+    help="Only incidents in this state: open, acknowledged (or acked, as the table prints it), "
+    "cleared, live (open or acknowledged) or all  [default: live].",
 )
 @click.option(
     "--stream",
@@ -436,22 +492,28 @@ def alerts_cmd(
     db_path: str | None,
     config_file: str | None,
 ) -> None:
-    """List alerts, newest first: by default those still open or acknowledged.
+    """List incidents, newest first: by default those still open or acknowledged.
 
-    In the table, 'acked' means acknowledged, 'count' the signals since the alert opened and
-    'value' the last reading that signalled. With --format json the output is a list of
-    objects with the keys id, stream, rule, rule_words, state, severity, count, opened_at,
-    first_time, first_value, last_time, last_value, center, lcl, ucl, baseline_version,
-    acknowledged_at, acknowledged_by, ack_note, cleared_at and shelved_until. Times are UTC
-    ISO 8601 strings; a key without a value holds null.
+    An incident is everything that went wrong on one stream from its first signal until it
+    was quiet again; every rule that signalled meanwhile joined it (the 'rules' column, the
+    first being the one that opened it). In the table, 'acked' means acknowledged, 'count'
+    the signals since it opened and 'value' the last reading that signalled. With --format
+    json the output is a list of objects with the keys id, stream, rule, rule_words, rules
+    (rule, severity, count, first_time, last_time), state, severity, count, opened_at,
+    first_time, first_value, last_time, last_value, worst_zone, silent_since, center, lcl,
+    ucl, baseline_version, acknowledged_at, acknowledged_by, ack_note, cleared_at,
+    merged_into and shelved_until. Times are UTC ISO 8601 strings; a key without a value
+    holds null.
 
     \b
     Examples:
       limitwatch alerts
+      limitwatch alerts --state acked
       limitwatch alerts --state all --stream 'pack-*' --format json
     """
     now = clock()
-    states = ALERT_STATES if state == "all" else (state,) if state else ("open", "acknowledged")
+    live = ("open", "acknowledged")
+    states = ALERT_STATES if state == "all" else live if state in (None, "live") else (state,)
     with opened(db_path, config_file, now=now) as store:
         found = store.alerts(state=list(states), stream_glob=stream_glob)
         shelves = store.active_shelves(now)
@@ -462,24 +524,25 @@ def alerts_cmd(
     if not found:
         where = f" for streams matching {stream_glob!r}" if stream_glob else ""
         which = "" if state == "all" else f"{' or '.join(states)} "
-        click.echo(f"No {which}alerts{where}.")
+        click.echo(f"No {which}incidents{where}.")
         return
+    config = _load(config_file)
     rows = [
         [
             str(a.id),
             _STATE_SHORT[a.state],
             a.severity,
             a.stream,
-            a.rule,
+            _rules_cell(a),
             str(a.signal_count),
             ago_text(a.opened_at, now),
-            _g(a.last_value),
+            with_unit(_g(a.last_value), config.stream_info(a.stream).unit if config else None),
         ]
         for a in found
     ]
-    headers = ["id", "state", "severity", "stream", "rule", "count", "opened", "value"]
+    headers = ["id", "state", "severity", "stream", "rules", "count", "opened", "value"]
     click.echo(fit_table(headers, rows, cuttable=[3, 4]))
-    click.echo(f"{len(found)} alert(s).")
+    click.echo(f"{len(found)} incident(s).")
     shelved = [str(a.id) for a in found if held[a.id] is not None]
     if shelved:
         click.echo(
@@ -488,37 +551,83 @@ def alerts_cmd(
 
 
 @main.command("ack")
-@click.argument("alert_id", type=int)
-@click.option("--note", help="What you are doing about it, kept in the alert's log.")
+@click.argument("alert_ids", metavar="[ID]...", nargs=-1, type=int)
+@click.option(
+    "--stream",
+    "stream_glob",
+    metavar="GLOB",
+    help="Every open incident of the streams matching GLOB, e.g. 'pack-2/*'.",
+)
+@click.option("--all-open", is_flag=True, help="Every open incident (asks first, unless --yes).")
+@click.option("--yes", is_flag=True, help="Do not ask before acknowledging with --all-open.")
+@click.option("--note", help="What you are doing about it, kept in each incident's log.")
 @click.option("--by", help="Who acknowledges  [default: your login name].")
 @_db_options
 def ack_cmd(
-    alert_id: int,
+    alert_ids: tuple[int, ...],
+    stream_glob: str | None,
+    all_open: bool,
+    yes: bool,
     note: str | None,
     by: str | None,
     db_path: str | None,
     config_file: str | None,
 ) -> None:
-    """Acknowledge alert ALERT_ID: you have seen it and are acting on it.
+    """Acknowledge incidents: you have seen them and are acting on them.
 
-    Reminders and escalation for the alert stop; it still clears by itself once its stream is
-    quiet. An unknown, already acknowledged or cleared alert is an error (exit status 1).
+    Name incidents by id (several at once), or take every open incident of the streams matching
+    --stream GLOB, or every open one with --all-open. Reminders and escalation stop, and the
+    routes that ask for it hear who acknowledged and the note; an incident still clears by
+    itself once its stream is quiet. An id that is unknown or already cleared is an error (exit
+    status 1, after the others are acknowledged), and so is one already acknowledged.
 
     \b
-    Example:
+    Examples:
       limitwatch ack 42 --note "checking the sealing jaw on line 2"
+      limitwatch ack 4 5 7
+      limitwatch ack --stream 'pack-2/*' --note "line 2 stopped for the jaw"
+      limitwatch ack --all-open --yes --note "site power dip at 06:10"
     """
+    if not alert_ids and stream_glob is None and not all_open:
+        raise click.UsageError("name incident ids, or give --stream GLOB or --all-open")
+    if all_open and (alert_ids or stream_glob is not None):
+        raise click.UsageError("--all-open takes every open incident; give no ids or --stream")
     now = clock()
     actor = _actor(by)
     note = note.strip() if note and note.strip() else None
+    problems: list[str] = []
     with opened(db_path, config_file, write=True, now=now) as store:
-        alert = store.acknowledge(alert_id, by=actor, note=note, now=now)
-    click.echo(
-        _wrap(
-            f"Acknowledged alert {alert.id} ({printable(alert.stream)}, {alert.rule}) as "
-            f"{actor} at {iso_s(now)}; reminders and escalation for it stop."
-        )
-    )
+        ids = list(dict.fromkeys(alert_ids))
+        if stream_glob is not None or all_open:
+            chosen = store.alerts(state="open", stream_glob=stream_glob)
+            if not chosen:
+                where = f" on streams matching {stream_glob!r}" if stream_glob else ""
+                click.echo(f"No open incidents{printable(where)}; nothing to acknowledge.")
+                return
+            if all_open and not yes:
+                click.echo(f"{len(chosen)} open incident(s):")
+                for a in chosen:
+                    click.echo(
+                        f"  {a.id:>6}  {a.severity:<8}  {printable(a.stream)}  ({_rules_cell(a)})"
+                    )
+                if not click.confirm("Acknowledge all of them?", default=False):
+                    raise InputProblem("nothing acknowledged")
+            ids += [a.id for a in reversed(chosen) if a.id not in ids]
+        for alert_id in ids:
+            try:
+                alert = store.acknowledge(alert_id, by=actor, note=note, now=now)
+            except StoreError as exc:
+                problems.append(str(exc))
+                continue
+            click.echo(
+                _wrap(
+                    f"Acknowledged incident {alert.id} ({printable(alert.stream)}: "
+                    f"{_rules_cell(alert)}) as {actor} at {iso_s(now)}; reminders and "
+                    "escalation for it stop."
+                )
+            )
+    if problems:
+        raise InputProblem("; ".join(problems))
 
 
 def event_record(event: AlertEvent) -> dict[str, Any]:
@@ -544,11 +653,13 @@ def event_record(event: AlertEvent) -> dict[str, Any]:
 )
 @_db_options
 def log_cmd(alert_id: int, fmt: str, db_path: str | None, config_file: str | None) -> None:
-    """Show the history of alert ALERT_ID, oldest first: when it opened, every notification,
+    """Show incident ALERT_ID: the rules that joined it (how often, first and last signal) and
+    its history, oldest first: when it opened, each rule that joined, every notification,
     reminder, escalation, shelf and acknowledgement (with who and why), and when it cleared.
 
-    With --format json the output is an object with the keys alert (as in 'limitwatch alerts')
-    and events, a list of objects with the keys time, kind, actor, note and data.
+    With --format json the output is an object with the keys alert (as in 'limitwatch alerts',
+    with its rules) and events, a list of objects with the keys time, kind, actor, note and
+    data.
 
     \b
     Example:
@@ -564,15 +675,29 @@ def log_cmd(alert_id: int, fmt: str, db_path: str | None, config_file: str | Non
             {"alert": alert_record(alert, held), "events": [event_record(e) for e in events]}
         )
         return
+    info = _stream_info(config_file, alert.stream)
+    about = f" ({info.description})" if info.description else ""
     click.echo(
         _wrap(
-            f"Alert {alert.id}: {printable(alert.stream)}, {alert.rule}, {alert.severity}, now "
+            f"Incident {alert.id} on {printable(alert.stream)}{about}: {alert.severity}, now "
             f"{alert.state}; {alert.signal_count} signal(s), last reading "
-            f"{_g(alert.last_value)} at {iso_s(alert.last_time)}."
+            f"{with_unit(_g(alert.last_value), info.unit)} at {iso_s(alert.last_time)}."
         )
     )
-    click.echo(_wrap(rule_words(alert.rule), "  "))
+    if alert.merged_into is not None:
+        click.echo(
+            _wrap(f"Merged into incident {alert.merged_into} when the database was upgraded.")
+        )
     click.echo()
+    rule_rows = [
+        [t.rule, t.severity, str(t.signal_count), iso_s(t.first_time), iso_s(t.last_time)]
+        for t in _tallies(alert)
+    ]
+    if rule_rows:
+        click.echo(fit_table(["rule", "severity", "count", "first", "last"], rule_rows, [0]))
+        for t in _tallies(alert):
+            click.echo(_wrap(f"{t.rule}: {rule_words(t.rule)}", "  "))
+        click.echo()
     click.echo(_event_table(events))
 
 
@@ -606,8 +731,33 @@ _rule_option = click.option(
 )
 
 
+MAX_SHELF_S = 7 * 86400.0
+"""The longest shelf without --force, unless the config's ``[alerts] max_shelf`` says
+otherwise: a shelf forgotten for weeks silences a stream nobody is watching any more."""
+
+
+def _max_shelf(config_file: str | None) -> float:
+    if config_file is None:
+        return MAX_SHELF_S
+    try:
+        return float(load_config(config_file).alerts.max_shelf)
+    except ConfigError as exc:
+        raise InputProblem(str(exc)) from None
+
+
+def _matching_streams(store: Store, pattern: str) -> list[str]:
+    """Known streams matching ``pattern`` (a shell-style glob; a plain id matches itself)."""
+    found = [s.id for s in store.streams(glob=pattern)]
+    if not found:
+        raise InputProblem(
+            f"no stream matching {pattern!r} has reported to this database; "
+            "'limitwatch streams' lists the known ones"
+        )
+    return sorted(found)
+
+
 @main.command("shelve")
-@click.argument("stream")
+@click.argument("pattern", metavar="STREAM_GLOB")
 @_rule_option
 @click.option(
     "--for",
@@ -618,79 +768,138 @@ _rule_option = click.option(
 )
 @click.option("--reason", required=True, help="Why, for the audit trail.")
 @click.option("--by", help="Who shelves  [default: your login name].")
+@click.option(
+    "--force", is_flag=True, help="Allow a shelf longer than the maximum (alerts.max_shelf)."
+)
 @_db_options
 def shelve_cmd(
-    stream: str,
+    pattern: str,
     rule: str | None,
     duration: float,
     reason: str,
     by: str | None,
+    force: bool,
     db_path: str | None,
     config_file: str | None,
 ) -> None:
-    """Hold notifications for STREAM (or one rule of it) for a while, e.g. during planned
-    maintenance.
+    """Hold notifications for the streams matching STREAM_GLOB (or one rule of them) for a
+    while, e.g. during planned maintenance.
 
-    Alerts are still opened, counted and cleared, and their logs say that a shelf held their
-    notifications; when the shelf ends, anything still owed is sent once. The shelf ends by
-    itself; 'limitwatch unshelve' ends it early.
+    STREAM_GLOB is a stream id or a shell-style glob ('pack-2/*'); the streams it covers now
+    are listed and each gets its own shelf, recorded with the glob. Incidents are still
+    opened, counted and cleared, and their logs say that a shelf held their notifications;
+    when the shelf ends, anything still owed is sent once. A shelf longer than the maximum
+    (7 days, or alerts.max_shelf of --config) is refused unless --force. Shelving a stream
+    that has a shelf for the same rule replaces that shelf, and says whether it extends or
+    shortens it. 'limitwatch unshelve' ends shelves early.
 
     \b
-    Example:
+    Examples:
       limitwatch shelve pack-2/downtime --for 8h --reason "sealing jaw replacement"
+      limitwatch shelve 'oven-*' --rule stale --for 2d --reason "gateway firmware update"
     """
     now = clock()
     actor = _actor(by)
+    longest = _max_shelf(config_file)
+    if duration > longest and not force:
+        raise InputProblem(
+            f"a shelf of {format_duration(duration)} is longer than the maximum of "
+            f"{format_duration(longest)}; a shelf that long may outlive the reason for it. "
+            "Shelve for less and renew it, or pass --force."
+        )
     with opened(db_path, config_file, write=True, now=now) as store:
-        if _stream_row(store, stream) is None:
-            raise _unknown_stream(stream)
-        shelf = store.shelve(stream, rule, until=now + duration, reason=reason, by=actor, now=now)
-        covered = [a.id for a in store.live_alerts([stream]) if shelf.covers(stream, a.rule)]
+        streams = _matching_streams(store, pattern)
+        done = store.shelve_streams(
+            streams,
+            rule,
+            until=now + duration,
+            reason=reason,
+            by=actor,
+            now=now,
+            pattern=pattern if pattern != streams[0] or len(streams) > 1 else None,
+        )
+        covered = [
+            a.id
+            for a in store.live_alerts(streams)
+            if rule is None or rule in a.rules or a.rule == rule
+        ]
     what = "every rule" if rule is None else f"rule {rule}"
+    until = done[0][0].until
     click.echo(
         _wrap(
-            f"Shelved notifications for {printable(stream)} ({what}) until {iso_s(shelf.until)} "
+            f"Shelved notifications ({what}) until {iso_s(until)} "
             f"({format_duration(duration)} from now), by {actor}: {reason}"
         )
     )
+    click.echo(f"Streams covered ({len(streams)}):")
+    for shelf, old in done:
+        line = f"  {printable(shelf.stream)}"
+        if old:
+            before = max(s.until for s in old)
+            verb = "extends" if until >= before else "shortens"
+            line += (
+                f"  (replaces the shelf by {old[-1].shelved_by} until {iso_s(before)}: {verb} it)"
+            )
+        click.echo(_wrap(line, "    ") if len(line) > WIDTH else line)
     if covered:
-        click.echo(f"Live alerts covered: {', '.join(map(str, covered))}.")
-    click.echo(_wrap(f"Alerts are still recorded while shelved. {SAFETY_CAUTION}"))
+        click.echo(f"Live incidents covered: {', '.join(map(str, covered))}.")
+    click.echo(_wrap(f"Incidents are still recorded while shelved. {SAFETY_CAUTION}"))
 
 
 @main.command("unshelve")
-@click.argument("stream")
+@click.argument("pattern", metavar="STREAM_GLOB")
 @_rule_option
 @click.option("--by", help="Who ends the shelf  [default: your login name].")
 @_db_options
 def unshelve_cmd(
-    stream: str,
+    pattern: str,
     rule: str | None,
     by: str | None,
     db_path: str | None,
     config_file: str | None,
 ) -> None:
-    """End the shelves of STREAM now, so its notifications flow again.
+    """End the shelves of the streams matching STREAM_GLOB now, so notifications flow again.
 
-    Without --rule every shelf of the stream ends (those for single rules too); with --rule only
-    the shelves for that rule. Notifications a shelf held are sent once if still owed.
+    Without --rule every shelf of each stream ends (those for single rules too); with --rule
+    only the shelves for that rule. Notifications a shelf held are sent once if still owed.
 
     \b
-    Example:
+    Examples:
       limitwatch unshelve pack-2/downtime
+      limitwatch unshelve 'oven-*'
     """
     now = clock()
     actor = _actor(by)
     with opened(db_path, config_file, write=True, now=now) as store:
+        shelved = sorted(
+            {s.stream for s in store.active_shelves(now) if fnmatchcase(s.stream, pattern)}
+        )
+        if not shelved:
+            what = f"streams matching {pattern!r}" + ("" if rule is None else f" rule {rule!r}")
+            raise InputProblem(
+                f"nothing is shelved for {what} at {iso_s(now)} ('limitwatch streams' shows "
+                "the shelves in force)"
+            )
+        ended: list[Shelf] = []
         try:
-            ended = store.unshelve(stream, rule, by=actor, now=now)
-        except NotShelved as exc:
-            raise InputProblem(f"{exc} ('limitwatch streams' shows the shelves in force)") from None
+            with store.transaction():
+                for stream in shelved:
+                    try:
+                        ended += store.unshelve(stream, rule, by=actor, now=now)
+                    except NotShelved:
+                        continue  # shelved, but not for this rule
+        except StoreError as exc:
+            raise InputProblem(str(exc)) from None
+    if not ended:
+        raise InputProblem(
+            f"nothing is shelved for streams matching {pattern!r} rule {rule!r} at "
+            f"{iso_s(now)} ('limitwatch streams' shows the shelves in force)"
+        )
     for shelf in ended:
         what = "every rule" if shelf.rule is None else f"rule {shelf.rule}"
         click.echo(
             _wrap(
-                f"Ended the shelf on {printable(stream)} ({what}) set by {shelf.shelved_by} "
+                f"Ended the shelf on {printable(shelf.stream)} ({what}) set by {shelf.shelved_by} "
                 f"({shelf.reason}); it had {span_text(shelf.until - now)} left."
             )
         )

@@ -22,7 +22,7 @@ Sections (``config/example.toml`` documents every key):
     ``type`` picks a notifier plugin; its keys are checked by that plugin's settings model.
 ``[[routes]]``
     which notifiers hear about which streams and severities. Every matching route applies;
-    with no routes at all, every notifier hears every notice except escalations.
+    with no routes at all, every notifier hears the default kinds of notice (not escalations).
 ``[budget]``
     the false-alarm budget the planner works to.
 
@@ -79,7 +79,15 @@ from pydantic import (
 )
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
-from limitwatch.alerts.lifecycle import SEVERITIES, AlertPolicy, NoticeKind, SeverityRule
+from limitwatch.alerts.lifecycle import (
+    DEFAULT_NOTICES,
+    NOTICE_KINDS,
+    SEVERITIES,
+    AlertPolicy,
+    NoticeKind,
+    SeverityRule,
+)
+from limitwatch.alerts.messages import StreamInfo
 from limitwatch.durations import format_duration, parse_duration
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.payload import field_path
@@ -551,6 +559,9 @@ class AlertsSection(_Section):
     repeat_every: OffDuration = _POLICY.repeat_every_s
     escalate_after: OffDuration = _POLICY.escalate_after_s
     give_up_after: OffDuration = _POLICY.notification_ttl_s
+    max_shelf: PositiveDuration = 7 * 86400.0
+    flood_after: Annotated[int, Field(ge=1)] | Literal["off"] = 10
+    flood_window: PositiveDuration = _POLICY.flood_window_s
     severity: list[SeverityEntry] = []
 
 
@@ -792,6 +803,9 @@ class Route(_Section):
     severities: list[Severity] = Field(default_factory=lambda: list(SEVERITIES), min_length=1)
     notifiers: list[str] = []
     escalate_to: list[str] = []
+    notify_on: list[Literal[NOTICE_KINDS]] = Field(  # type: ignore[valid-type]
+        default_factory=lambda: list(DEFAULT_NOTICES)
+    )
 
     @model_validator(mode="after")
     def _somewhere(self) -> Route:
@@ -1027,19 +1041,32 @@ class Config(_Section):
             severities=tuple(severities),
             notification_ttl_s=self.alerts.give_up_after,
             targets=self.targets,
+            stream_info=self.stream_info,
+            flood_after=None if self.alerts.flood_after == "off" else self.alerts.flood_after,
+            flood_window_s=self.alerts.flood_window,
         )
 
+    def stream_info(self, stream: str) -> StreamInfo:
+        """The stream's ``description`` and ``unit`` from its settings, for notification texts."""
+        s = self.stream_settings(stream)
+        return StreamInfo(s.description, s.unit)
+
     def targets(self, stream: str, rule: str, severity: str, kind: NoticeKind) -> tuple[str, ...]:
-        """Notifier names for one notice: the ``notifiers`` (or, for an escalation, the
-        ``escalate_to``) of every route that covers the stream and severity, each name once.
-        With no routes configured, every notifier gets every notice but escalations."""
+        """Notifier names for one notice: the ``notifiers`` of every route that covers the
+        stream and severity and subscribes to the kind (``notify_on``), and for an escalation
+        also its ``escalate_to``; each name once. With no routes configured, every notifier
+        gets the default kinds but escalations."""
         if not self.routes:
-            return () if kind == "escalation" else tuple(n["name"] for n in self.notifiers)
+            if kind == "escalated" or kind not in DEFAULT_NOTICES:
+                return ()
+            return tuple(n["name"] for n in self.notifiers)
         names: dict[str, None] = {}
         for route in self.routes:
             if route.covers(stream, severity):
-                chosen = route.escalate_to if kind == "escalation" else route.notifiers
-                names.update(dict.fromkeys(chosen))
+                if kind in route.notify_on:
+                    names.update(dict.fromkeys(route.notifiers))
+                if kind == "escalated":
+                    names.update(dict.fromkeys(route.escalate_to))
         return tuple(names)
 
     def notifier(self, name: str) -> dict[str, Any]:
@@ -1174,6 +1201,18 @@ class Config(_Section):
                     "no route has escalate_to, so escalations reach nobody",
                 )
             )
+        if (
+            self.alerts.repeat_every is not None
+            and self.notifiers
+            and not any("reminder" in r.notify_on and r.notifiers for r in self.routes)
+        ):
+            out.append(
+                Problem(
+                    "alerts.repeat_every",
+                    'reminders are due but no route hears them; add "reminder" to a route\'s '
+                    'notify_on, or set repeat_every = "off"',
+                )
+            )
         if self.routes:
             used = {n for r in self.routes for n in (*r.notifiers, *r.escalate_to)}
             for i, notifier in enumerate(self.notifiers):
@@ -1183,7 +1222,9 @@ class Config(_Section):
                     )
         elif self.notifiers:
             out.append(
-                Problem("routes", "no routes: every notifier gets every notice but escalations")
+                Problem(
+                    "routes", "no routes: every notifier gets the default notices but escalations"
+                )
             )
         return out
 

@@ -35,6 +35,12 @@ class Metrics:
             "limitwatch_signals", "Signals raised, by rule.", ["rule"], registry=r
         )
         self.alerts_opened = Counter("limitwatch_alerts_opened", "Alerts opened.", registry=r)
+        self.floods = Counter(
+            "limitwatch_floods",
+            "Floods of incidents (many opening or clearing at once), by edge: started, ended.",
+            ["edge"],
+            registry=r,
+        )
         self.dead_letters = Counter(
             "limitwatch_dead_letters", "Inputs set aside, by reason.", ["reason"], registry=r
         )

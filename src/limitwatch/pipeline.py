@@ -86,6 +86,8 @@ class BatchResult:
     signals: list[StreamSignal] = field(default_factory=list)
     opened: int = 0
     queued: int = 0
+    flood_started: int = 0
+    flood_ended: int = 0
 
 
 class Pipeline:
@@ -329,6 +331,7 @@ class Pipeline:
         self._saved(due)
         result.opened = report.opened
         result.queued = report.queued
+        result.flood_started, result.flood_ended = report.flood_started, report.flood_ended
         return result
 
     def _process_batch(
@@ -472,6 +475,8 @@ class Pipeline:
         result.signals.extend(outcome.signals)
         result.opened += report.opened
         result.queued += report.queued
+        result.flood_started += report.flood_started
+        result.flood_ended += report.flood_ended
 
     def _unusable(self, stream: str, reading: Reading, exc: Exception) -> str:
         """A stream whose monitor cannot be made (a stored baseline this version refuses, say):

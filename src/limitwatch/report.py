@@ -117,9 +117,9 @@ def _cell(text: str, cls: str = "") -> str:
 
 def _alerts_table(alerts: Sequence[AlertRow]) -> str:
     if not alerts:
-        return '<p class="none">No open or acknowledged alerts.</p>'
+        return '<p class="none">No open or acknowledged incidents.</p>'
     head = (
-        "<tr><th>alert</th><th>rule</th><th>state</th><th>severity</th><th>opened (UTC)</th>"
+        "<tr><th>incident</th><th>rules</th><th>state</th><th>severity</th><th>opened (UTC)</th>"
         "<th>first signal</th><th>last value</th><th>signals</th><th>what it means</th></tr>"
     )
     rows = [

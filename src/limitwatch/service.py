@@ -528,6 +528,7 @@ class Service:
         for s in result.signals:
             m.signals.labels(s.rule).inc()
         m.alerts_opened.inc(result.opened)
+        self._count_floods(result.flood_started, result.flood_ended)
         m.streams.set(len(self.pipeline.monitors))
         if result.queued and self.outbox is not None:
             self.outbox.wake()
@@ -560,10 +561,12 @@ class Service:
             if signals:
                 report = self.book.apply_signals(signals, now)
                 self.metrics.alerts_opened.inc(report.opened)
+                self._count_floods(report.flood_started, report.flood_ended)
                 if report.queued and self.outbox is not None:
                     self.outbox.wake()
         elif job.kind == "alert-tick":
             report = self.book.tick(now)
+            self._count_floods(report.flood_started, report.flood_ended)
             if report.queued and self.outbox is not None:
                 self.outbox.wake()
         elif job.kind == "refits":
@@ -591,6 +594,19 @@ class Service:
         if readings or letters:
             log.info("retention: dropped %d readings and %d dead letters", readings, letters)
         return readings, letters
+
+    def _count_floods(self, started: int, ended: int) -> None:
+        """Log and count a flood's start and end (its record is in the store's floods table)."""
+        if started:
+            self.metrics.floods.labels("started").inc(started)
+            log.warning(
+                "flood: more than %s incidents within %s s; their notifications fold into one",
+                self.config.alerts.flood_after,
+                self.config.alerts.flood_window,
+            )
+        if ended:
+            self.metrics.floods.labels("ended").inc(ended)
+            log.warning("flood over: notifications go out one by one again")
 
     def poll_files(self, name: str) -> int:
         """Read every new complete line of a file source, committing in batches; return the

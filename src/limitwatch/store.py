@@ -31,6 +31,7 @@ takes the write lock at the start, so reads made inside a batch see no concurren
 from __future__ import annotations
 
 import contextlib
+import copy
 import hashlib
 import itertools
 import json
@@ -39,7 +40,7 @@ import os
 import sqlite3
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from fnmatch import fnmatchcase
 from pathlib import Path
@@ -49,6 +50,9 @@ import orjson
 import sqlite_utils
 
 from limitwatch.model import Outcome, Reading, StreamSignal
+
+SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
+"""Severities, lowest first: an incident's severity is the highest of its rules'."""
 
 AlertState = Literal["open", "acknowledged", "cleared"]
 ALERT_STATES: tuple[str, ...] = ("open", "acknowledged", "cleared")
@@ -62,8 +66,15 @@ EVENT_KINDS: tuple[str, ...] = (
     "unshelved",
     "suppressed",
     "cleared",
+    "joined",
+    "raised",
+    "resumed",
+    "merged",
 )
-"""Kinds of alert event. ``suppressed`` records a notification held back by a shelf."""
+"""Kinds of incident event. ``suppressed`` records a notification held back by a shelf,
+``joined`` a further rule signalling on a live incident, ``raised`` its severity going up,
+``resumed`` readings arriving again after a stale check, ``merged`` the upgrade that folded a
+stream's live per-rule alerts into one incident."""
 
 SYSTEM_ACTOR = "limitwatch"
 """The actor recorded for transitions the service makes on its own (opening, clearing)."""
@@ -100,7 +111,7 @@ class AlertAlreadyAcknowledged(StoreError):
 
 
 class AlertAlreadyOpen(StoreError):
-    """The stream already has an open or acknowledged alert for that rule."""
+    """The stream already has a live (open or acknowledged) incident."""
 
 
 class ShelfRejected(StoreError, ValueError):
@@ -152,6 +163,9 @@ class Migration:
     version: int
     name: str
     statements: tuple[str, ...]
+    then: Callable[[sqlite_utils.Database, float | None], None] | None = None
+    """Python run after the statements, in the same transaction, for data changes SQL alone
+    would make hard to read (e.g. merging rows)."""
 
 
 MIGRATIONS: tuple[Migration, ...] = (
@@ -331,6 +345,68 @@ MIGRATIONS: tuple[Migration, ...] = (
             WHERE length(CAST(payload AS BLOB)) > {DEAD_LETTER_KEEP_BYTES}""",
         ),
     ),
+    Migration(
+        6,
+        "incidents: one live alert per stream, with the rules that joined it",
+        (
+            # Each alert row is now an incident: every rule that signals while it is live joins
+            # it. incident_rules keeps the rule-level detail (how often, first and last reading).
+            """CREATE TABLE incident_rules (
+                alert_id INTEGER NOT NULL REFERENCES alerts (id),
+                rule TEXT NOT NULL,
+                severity TEXT NOT NULL,
+                signal_count INTEGER NOT NULL,
+                first_time REAL NOT NULL,
+                first_index INTEGER,
+                first_value REAL,
+                last_time REAL NOT NULL,
+                last_index INTEGER,
+                last_value REAL,
+                signal_json TEXT NOT NULL DEFAULT '{}',
+                PRIMARY KEY (alert_id, rule)
+            )""",
+            """INSERT INTO incident_rules (alert_id, rule, severity, signal_count, first_time,
+                first_index, first_value, last_time, last_index, last_value, signal_json)
+            SELECT id, rule, severity, signal_count, first_time, first_index, first_value,
+                last_time, last_index, last_value, signal_json FROM alerts""",
+            # The largest |z| of a reading while the incident was live (the worst zone reached).
+            "ALTER TABLE alerts ADD COLUMN worst_z REAL",
+            # Time of the stream's last reading while a stale check finds it silent, else NULL.
+            "ALTER TABLE alerts ADD COLUMN silent_since REAL",
+            "ALTER TABLE alerts ADD COLUMN ack_announced_at REAL",
+            # The severity the last opened/raised notification told; a higher one owes another.
+            "ALTER TABLE alerts ADD COLUMN announced_severity TEXT",
+            "UPDATE alerts SET announced_severity = severity WHERE notified_at IS NOT NULL",
+            # Acknowledged before the upgrade: nothing left to announce about it.
+            """UPDATE alerts SET ack_announced_at = acknowledged_at
+            WHERE acknowledged_at IS NOT NULL""",
+            "ALTER TABLE alerts ADD COLUMN cleared_announced_at REAL",
+            "ALTER TABLE alerts ADD COLUMN merged_into INTEGER REFERENCES alerts (id)",
+            "ALTER TABLE shelves ADD COLUMN pattern TEXT",
+            "DROP INDEX alerts_one_live",
+        ),
+        then=lambda db, now: _merge_live_alerts(db, now),
+    ),
+    Migration(
+        7,
+        "at most one live incident per stream",
+        ("CREATE UNIQUE INDEX incidents_one_live ON alerts (stream) WHERE state != 'cleared'",),
+    ),
+    Migration(
+        8,
+        "floods: many incidents at once, told in one notice",
+        (
+            """CREATE TABLE floods (
+                id INTEGER PRIMARY KEY,
+                started_at REAL NOT NULL,
+                ended_at REAL,
+                changes INTEGER NOT NULL,
+                streams_json TEXT NOT NULL DEFAULT '[]'
+            )""",
+            "CREATE INDEX alerts_by_opened_at ON alerts (opened_at)",
+            "CREATE INDEX alerts_by_cleared_at ON alerts (cleared_at) WHERE cleared_at IS NOT NULL",
+        ),
+    ),
 )
 
 
@@ -343,6 +419,70 @@ def _create_private(path: str) -> None:
     """
     with contextlib.suppress(FileExistsError):
         os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, 0o600))
+
+
+def _merge_live_alerts(db: sqlite_utils.Database, now: float | None) -> None:
+    """Fold the live per-rule alerts of each stream into its oldest one, which becomes the
+    stream's incident: counts add up, the first and last readings span them all, the severity
+    is the highest, and it stays open unless every part was acknowledged. The others are marked
+    cleared, ``merged_into`` the incident, with an event on both sides, so nothing is lost from
+    the audit trail and their outbox rows keep pointing at a row that exists."""
+    when = now if now is not None else 0.0
+    rows = db.execute(
+        """SELECT id, stream, state, severity, first_time, last_time, signal_count, quiet_count,
+            seen_time FROM alerts WHERE state != 'cleared' ORDER BY stream, id"""
+    ).fetchall()
+    by_stream: dict[str, list[tuple]] = {}
+    for row in rows:
+        by_stream.setdefault(row[1], []).append(row)
+    for parts in by_stream.values():
+        if len(parts) < 2:
+            continue
+        keep, others = parts[0], parts[1:]
+        severity = max((p[3] for p in parts), key=_severity_rank)
+        state = "acknowledged" if all(p[2] == "acknowledged" for p in parts) else "open"
+        db.execute(
+            """UPDATE alerts SET state = ?, severity = ?, first_time = ?, last_time = ?,
+                signal_count = ?, quiet_count = ?, seen_time = ? WHERE id = ?""",
+            (
+                state,
+                severity,
+                min(p[4] for p in parts),
+                max(p[5] for p in parts),
+                sum(p[6] for p in parts),
+                min(p[7] for p in parts),
+                max(p[8] for p in parts),
+                keep[0],
+            ),
+        )
+        if state == "open":  # a part nobody acknowledged: the incident waits for someone
+            db.execute(
+                """UPDATE alerts SET acknowledged_at = NULL, acknowledged_by = NULL,
+                    ack_note = NULL, ack_announced_at = NULL WHERE id = ?""",
+                (keep[0],),
+            )
+        for other in others:
+            db.execute(
+                "UPDATE incident_rules SET alert_id = ? WHERE alert_id = ?", (keep[0], other[0])
+            )
+            db.execute(
+                """UPDATE alerts SET state = 'cleared', cleared_at = ?, merged_into = ?
+                WHERE id = ?""",
+                (when, keep[0], other[0]),
+            )
+            for alert_id, note in (
+                (other[0], f"merged into incident {keep[0]}, the stream's one live incident"),
+                (keep[0], f"alert {other[0]} merged into this incident"),
+            ):
+                db.execute(
+                    """INSERT INTO alert_events (alert_id, kind, time, actor, note, data_json)
+                    VALUES (?, 'merged', ?, ?, ?, ?)""",
+                    (alert_id, when, SYSTEM_ACTOR, note, json.dumps({"into": keep[0]})),
+                )
+
+
+def _severity_rank(severity: str) -> int:
+    return SEVERITIES.index(severity) if severity in SEVERITIES else -1
 
 
 def _recorded_version(db: sqlite_utils.Database) -> int:
@@ -392,6 +532,8 @@ def migrate(
                 continue
             for statement in step.statements:
                 db.execute(statement)
+            if step.then is not None:
+                step.then(db, now)
             db.execute(
                 "INSERT INTO schema_migrations (version, name, applied_at) VALUES (?, ?, ?)",
                 (step.version, step.name, now),
@@ -520,17 +662,42 @@ class Baseline:
         )
 
 
-@dataclass(frozen=True, slots=True)
-class Alert:
-    """One alert row. ``signal`` is the last signal's context (limits, center, chart, side ...), so
-    a reminder can be written without looking anything up.
+@dataclass(slots=True)
+class RuleTally:
+    """What one rule contributed to an incident: how often it signalled, its first and last
+    signalling reading, its severity and its last signal's context."""
 
-    Bookkeeping fields: ``quiet_count`` counts consecutive monitoring readings without this rule
-    (hysteresis), ``seen_time`` is the time of the last reading that touched the alert (a replayed
-    reading at or before it is ignored), ``notified_at``/``last_notice_at`` are when a notification
-    was first/last queued, ``reminders`` how many reminders were queued, ``escalated_at`` when the
-    escalation was queued, and ``suppressed_until`` the end of the shelf already recorded as
-    holding its notifications.
+    rule: str
+    severity: str
+    signal_count: int
+    first_time: float
+    first_index: int | None
+    first_value: float | None
+    last_time: float
+    last_index: int | None
+    last_value: float | None
+    signal: dict[str, Any]
+
+
+@dataclass(slots=True)
+class Alert:
+    """One incident: everything that went wrong on one stream from its first signal until it
+    had been quiet for ``clear_after`` readings. ``rule`` is the rule that opened it; ``rules``
+    holds every rule that joined, with its own counts. ``signal`` is the last signal's context
+    (limits, center, chart, side ...), so a reminder can be written without looking anything up.
+
+    Mutable on purpose: the lifecycle works on copies of the live incidents and changes their
+    counters in place for each reading (a new frozen value per reading per incident was most of
+    its cost), and the store writes only the incidents whose state changed.
+
+    Bookkeeping fields: ``quiet_count`` counts consecutive monitoring readings without any
+    signal (hysteresis), ``seen_time`` is the time of the last reading that touched the
+    incident (a replayed reading at or before it is ignored), ``notified_at``/``last_notice_at``
+    are when a notification was first/last queued, ``reminders`` how many reminders were queued,
+    ``escalated_at`` when the escalation was queued, ``suppressed_until`` the end of the shelf
+    already recorded as holding its notifications, ``worst_z`` the largest distance from the
+    center line in sigmas of a reading while it was live, ``silent_since`` the time of the
+    stream's last reading while a stale check finds it silent.
     """
 
     id: int
@@ -558,14 +725,52 @@ class Alert:
     reminders: int = 0
     escalated_at: float | None = None
     suppressed_until: float | None = None
+    worst_z: float | None = None
+    silent_since: float | None = None
+    ack_announced_at: float | None = None
+    cleared_announced_at: float | None = None
+    merged_into: int | None = None
+    announced_severity: str | None = None
+    rules: dict[str, RuleTally] = field(default_factory=dict)
 
     @classmethod
     def _from_row(cls, row: Mapping[str, Any]) -> Alert:
         fields = {k: v for k, v in row.items() if k != "signal_json"}
         return cls(signal=json.loads(row["signal_json"]), **fields)
 
+    def copy(self) -> Alert:
+        """A working copy whose counters (its own and its rules') can change independently."""
+        twin = copy.copy(self)
+        twin.rules = {rule: copy.copy(tally) for rule, tally in self.rules.items()}
+        return twin
+
+    @property
+    def worst_zone(self) -> str | None:
+        """The worst zone a reading reached while live: ``beyond`` the limits, ``A``, ``B`` or
+        ``C``; None when no reading with a known distance came."""
+        return zone_of(self.worst_z)
+
+
+Incident = Alert
+"""The plain name for what an alert row now holds."""
+
+
+def zone_of(z: float | None) -> str | None:
+    """The zone of a distance from the center line in sigmas.
+
+    >>> [zone_of(z) for z in (0.5, -1.5, 2.5, 3.2, None)]
+    ['C', 'B', 'A', 'beyond', None]
+    """
+    if z is None or not math.isfinite(z):
+        return None
+    a = abs(z)
+    return "beyond" if a > 3 else "A" if a > 2 else "B" if a > 1 else "C"
+
 
 ALERT_BOOKKEEPING = (
+    "state",
+    "severity",
+    "first_time",
     "last_time",
     "last_index",
     "last_value",
@@ -573,17 +778,23 @@ ALERT_BOOKKEEPING = (
     "quiet_count",
     "seen_time",
     "signal",
+    "cleared_at",
     "notified_at",
     "last_notice_at",
     "reminders",
     "escalated_at",
     "suppressed_until",
+    "worst_z",
+    "silent_since",
+    "ack_announced_at",
+    "cleared_announced_at",
+    "announced_severity",
 )
-"""Alert fields that change while an alert lives (its state changes go through named methods)."""
+"""Incident fields the lifecycle changes (acknowledging goes through :meth:`Store.acknowledge`)."""
 
-_ALERT_MUTABLE = frozenset({"severity", *ALERT_BOOKKEEPING})
-"""Columns ``update_alert`` may change. State changes go through the named methods, which also
-write the event log."""
+_ALERT_MUTABLE = frozenset(ALERT_BOOKKEEPING) - {"state", "cleared_at"}
+"""Columns ``update_alert`` may change; state changes go through the named methods (or a
+lifecycle change set), which also write the event log."""
 
 
 def signal_context(signal: StreamSignal) -> dict[str, Any]:
@@ -638,6 +849,8 @@ class Shelf:
     shelved_by: str
     ended_at: float | None = None
     ended_by: str | None = None
+    pattern: str | None = None
+    """The glob the operator gave when one command shelved several streams (one row each)."""
 
     def covers(self, stream: str, rule: str) -> bool:
         """True when this shelf applies to alerts of ``stream`` for ``rule``."""
@@ -683,6 +896,139 @@ class DeadLetter:
         if self.payload is None or self.payload_size is None:
             return False
         return len(_payload_bytes(self.payload)) < self.payload_size
+
+
+@dataclass(slots=True)
+class Flood:
+    """Many incidents opening or clearing at once: from ``started_at`` until ``ended_at`` the
+    per-incident notifications are folded into one flood notice. ``changes`` counts the
+    incidents opened or cleared since it started, ``streams`` names them."""
+
+    id: int
+    started_at: float
+    ended_at: float | None = None
+    changes: int = 0
+    streams: list[str] = field(default_factory=list)
+
+    def copy(self) -> Flood:
+        return Flood(self.id, self.started_at, self.ended_at, self.changes, list(self.streams))
+
+
+@dataclass(frozen=True, slots=True)
+class EventRow:
+    """One line for an incident's audit trail, as decided (see :meth:`Store.write_changes`)."""
+
+    alert_id: int
+    kind: str
+    time: float
+    actor: str = SYSTEM_ACTOR
+    note: str | None = None
+    data: Mapping[str, Any] | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class OutboxRow:
+    """One notification owed to one notifier (or route), keyed so a repeat changes nothing."""
+
+    key: str
+    alert_id: int | None
+    route: str
+    payload: Mapping[str, Any]
+    created_at: float
+    expires_at: float | None = None
+
+
+@dataclass(slots=True)
+class ChangeSet:
+    """Everything one lifecycle decision changes, written by :meth:`Store.write_changes` in one
+    call: incidents opened (ids already chosen, see :meth:`Store.next_alert_id`) and incidents
+    changed (only those whose fields moved), the rule tallies that moved, events and outbox
+    rows."""
+
+    opened: list[Alert] = field(default_factory=list)
+    changed: list[Alert] = field(default_factory=list)
+    rules: list[tuple[int, RuleTally]] = field(default_factory=list)
+    events: list[EventRow] = field(default_factory=list)
+    outbox: list[OutboxRow] = field(default_factory=list)
+    floods: list[Flood] = field(default_factory=list)
+
+    def __bool__(self) -> bool:
+        return bool(
+            self.opened or self.changed or self.rules or self.events or self.outbox or self.floods
+        )
+
+
+_INCIDENT_COLUMNS = (
+    "id",
+    "stream",
+    "rule",
+    "state",
+    "severity",
+    "opened_at",
+    "first_time",
+    "first_index",
+    "first_value",
+    "last_time",
+    "last_index",
+    "last_value",
+    "signal_count",
+    "quiet_count",
+    "seen_time",
+    "signal_json",
+    "acknowledged_at",
+    "acknowledged_by",
+    "ack_note",
+    "cleared_at",
+    "notified_at",
+    "last_notice_at",
+    "reminders",
+    "escalated_at",
+    "suppressed_until",
+    "worst_z",
+    "silent_since",
+    "ack_announced_at",
+    "cleared_announced_at",
+    "announced_severity",
+)
+_UPDATED_COLUMNS = tuple("signal_json" if name == "signal" else name for name in ALERT_BOOKKEEPING)
+
+
+def _column_value(alert: Alert, column: str) -> Any:
+    if column == "signal_json":
+        return json.dumps(alert.signal)
+    value = getattr(alert, column)
+    return _finite(value) if isinstance(value, float) else value
+
+
+def _tally_row(alert_id: int, t: RuleTally) -> tuple:
+    return (
+        alert_id,
+        t.rule,
+        t.severity,
+        t.signal_count,
+        t.first_time,
+        t.first_index,
+        _finite(t.first_value),
+        t.last_time,
+        t.last_index,
+        _finite(t.last_value),
+        json.dumps(t.signal),
+    )
+
+
+def _tally(row: Mapping[str, Any]) -> RuleTally:
+    return RuleTally(
+        rule=row["rule"],
+        severity=row["severity"],
+        signal_count=row["signal_count"],
+        first_time=row["first_time"],
+        first_index=row["first_index"],
+        first_value=row["first_value"],
+        last_time=row["last_time"],
+        last_index=row["last_index"],
+        last_value=row["last_value"],
+        signal=json.loads(row["signal_json"]),
+    )
 
 
 # --------------------------------------------------------------------------- the store
@@ -1166,14 +1512,12 @@ class Store:
         """Open a new alert from its first signal and log the ``opened`` event."""
         with self.transaction():
             live = self._one(
-                "SELECT id FROM alerts WHERE stream = ? AND rule = ? AND state != 'cleared'",
-                (signal.stream, signal.rule),
+                "SELECT id FROM alerts WHERE stream = ? AND state != 'cleared'", (signal.stream,)
             )
             if live is not None:
                 raise AlertAlreadyOpen(
-                    f"stream {signal.stream!r} already has alert {live['id']} for rule "
-                    f"{signal.rule!r}; a further signal should update that alert, not open "
-                    "another."
+                    f"stream {signal.stream!r} already has live incident {live['id']}; a "
+                    f"further signal ({signal.rule}) should join that incident, not open another."
                 )
             value = _finite(signal.value)
             cur = self.db.execute(
@@ -1197,6 +1541,23 @@ class Store:
                 ),
             )
             alert_id = int(cur.lastrowid)
+            self.db.execute(
+                """INSERT INTO incident_rules (alert_id, rule, severity, signal_count, first_time,
+                    first_index, first_value, last_time, last_index, last_value, signal_json)
+                VALUES (?, ?, ?, 1, ?, ?, ?, ?, ?, ?, ?)""",
+                (
+                    alert_id,
+                    signal.rule,
+                    severity,
+                    signal.time,
+                    signal.index,
+                    value,
+                    signal.time,
+                    signal.index,
+                    value,
+                    json.dumps(signal_context(signal)),
+                ),
+            )
             self.add_alert_event(
                 alert_id,
                 "opened",
@@ -1267,13 +1628,132 @@ class Store:
                 (now, by, note, alert_id),
             )
             self.add_alert_event(alert_id, "acknowledged", now=now, actor=by, note=note)
+        self._changed_here()
         return self.alert(alert_id)
+
+    def _changed_here(self) -> None:
+        """This connection changed incidents outside the lifecycle (an acknowledgement): whoever
+        keeps a copy must drop it, as after a rollback. Other connections' commits are seen
+        through :meth:`data_version`."""
+        for forget in self._rollback_listeners:
+            forget()
 
     def alert(self, alert_id: int) -> Alert:
         row = self._one("SELECT * FROM alerts WHERE id = ?", (alert_id,))
         if row is None:
             raise AlertNotFound(_no_alert(alert_id))
-        return Alert._from_row(row)
+        return self._with_rules([Alert._from_row(row)])[0]
+
+    def _with_rules(self, alerts: list[Alert]) -> list[Alert]:
+        """Fill each incident's ``rules`` from ``incident_rules`` (one query per chunk)."""
+        by_id = {a.id: a for a in alerts}
+        ids = list(by_id)
+        for i in range(0, len(ids), _CHUNK):
+            chunk = ids[i : i + _CHUNK]
+            rows = self._all(
+                f"""SELECT * FROM incident_rules WHERE alert_id IN ({", ".join("?" * len(chunk))})
+                ORDER BY alert_id, first_time, rule""",
+                chunk,
+            )
+            for row in rows:
+                by_id[row["alert_id"]].rules[row["rule"]] = _tally(row)
+        return alerts
+
+    def next_alert_id(self) -> int:
+        """The id the next incident gets. Call inside the batch's transaction, which holds the
+        write lock, so the lifecycle can name new incidents (and their event ids) before the
+        store writes them."""
+        row = self.db.execute(
+            """SELECT max(coalesce((SELECT seq FROM sqlite_sequence WHERE name = 'alerts'), 0),
+                coalesce((SELECT max(id) FROM alerts), 0))"""
+        ).fetchone()
+        return int(row[0]) + 1
+
+    def write_changes(self, changes: ChangeSet) -> int:
+        """Write one lifecycle decision: changed incidents, new incidents, rule tallies, events
+        and outbox rows, each with one ``executemany``; return how many outbox rows are new
+        (a row whose key exists already is a replay and changes nothing)."""
+        conn = self.db.conn
+        with self.transaction():
+            if changes.changed:
+                sets = ", ".join(f"{c} = ?" for c in _UPDATED_COLUMNS)
+                conn.executemany(
+                    f"UPDATE alerts SET {sets} WHERE id = ?",
+                    [
+                        (*(_column_value(a, c) for c in _UPDATED_COLUMNS), a.id)
+                        for a in changes.changed
+                    ],
+                )
+            if changes.opened:
+                conn.executemany(
+                    f"""INSERT INTO alerts ({", ".join(_INCIDENT_COLUMNS)})
+                    VALUES ({", ".join("?" * len(_INCIDENT_COLUMNS))})""",
+                    [tuple(_column_value(a, c) for c in _INCIDENT_COLUMNS) for a in changes.opened],
+                )
+            if changes.rules:
+                conn.executemany(
+                    """INSERT INTO incident_rules (alert_id, rule, severity, signal_count,
+                        first_time, first_index, first_value, last_time, last_index, last_value,
+                        signal_json) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)
+                    ON CONFLICT (alert_id, rule) DO UPDATE SET severity = excluded.severity,
+                        signal_count = excluded.signal_count, last_time = excluded.last_time,
+                        last_index = excluded.last_index, last_value = excluded.last_value,
+                        signal_json = excluded.signal_json""",
+                    [_tally_row(alert_id, t) for alert_id, t in changes.rules],
+                )
+            if changes.events:
+                bad = {e.kind for e in changes.events} - set(EVENT_KINDS)
+                if bad:
+                    raise ValueError(f"unknown event kind(s) {sorted(bad)}; kinds: {EVENT_KINDS}")
+                conn.executemany(
+                    """INSERT INTO alert_events (alert_id, kind, time, actor, note, data_json)
+                    VALUES (?, ?, ?, ?, ?, ?)""",
+                    [
+                        (
+                            e.alert_id,
+                            e.kind,
+                            e.time,
+                            e.actor,
+                            e.note,
+                            None if e.data is None else json.dumps(dict(e.data)),
+                        )
+                        for e in changes.events
+                    ],
+                )
+            if changes.floods:
+                conn.executemany(
+                    """INSERT INTO floods (id, started_at, ended_at, changes, streams_json)
+                    VALUES (?, ?, ?, ?, ?) ON CONFLICT (id) DO UPDATE SET
+                        ended_at = excluded.ended_at, changes = excluded.changes,
+                        streams_json = excluded.streams_json""",
+                    [
+                        (f.id, f.started_at, f.ended_at, f.changes, json.dumps(f.streams))
+                        for f in changes.floods
+                    ],
+                )
+            queued = 0
+            if changes.outbox:
+                before = conn.total_changes
+                conn.executemany(
+                    """INSERT INTO outbox (idempotency_key, alert_id, route, payload_json,
+                        created_at, next_attempt_at, expires_at)
+                    VALUES (?, ?, ?, ?, ?, ?, ?)
+                    ON CONFLICT (idempotency_key) DO NOTHING""",
+                    [
+                        (
+                            r.key,
+                            r.alert_id,
+                            r.route,
+                            json.dumps(dict(r.payload)),
+                            r.created_at,
+                            r.created_at,
+                            r.expires_at,
+                        )
+                        for r in changes.outbox
+                    ],
+                )
+                queued = conn.total_changes - before
+        return queued
 
     def alerts(
         self,
@@ -1303,15 +1783,17 @@ class Store:
         if limit is not None:
             sql += " LIMIT ?"
             params.append(limit)
-        return [Alert._from_row(r) for r in self._all(sql, params)]
+        return self._with_rules([Alert._from_row(r) for r in self._all(sql, params)])
 
     def live_alerts(self, streams: Iterable[str] | None = None) -> list[Alert]:
         """Open and acknowledged alerts, for the given streams only when given."""
         if streams is None:
-            return [
-                Alert._from_row(r)
-                for r in self._all("SELECT * FROM alerts WHERE state != 'cleared' ORDER BY id")
-            ]
+            return self._with_rules(
+                [
+                    Alert._from_row(r)
+                    for r in self._all("SELECT * FROM alerts WHERE state != 'cleared' ORDER BY id")
+                ]
+            )
         wanted = sorted(set(streams))
         found: list[Alert] = []
         for i in range(0, len(wanted), _CHUNK):
@@ -1322,6 +1804,45 @@ class Store:
                 chunk,
             )
             found.extend(Alert._from_row(r) for r in rows)
+        return self._with_rules(found)
+
+    def changes_since(self, since: float) -> list[str]:
+        """The stream of every incident opened, and of every one cleared, after ``since`` (a
+        flood's measure), oldest first."""
+        rows = self.db.execute(
+            """SELECT stream, opened_at AS t, id FROM alerts WHERE opened_at > ?
+            UNION ALL
+            SELECT stream, cleared_at AS t, id FROM alerts WHERE cleared_at > ?
+            ORDER BY t, id""",
+            (since, since),
+        ).fetchall()
+        return [r[0] for r in rows]
+
+    def live_flood(self) -> Flood | None:
+        """The flood still going on, if any."""
+        row = self._one("SELECT * FROM floods WHERE ended_at IS NULL ORDER BY id DESC LIMIT 1")
+        return None if row is None else _flood(row)
+
+    def floods(self) -> list[Flood]:
+        """Every flood, oldest first."""
+        return [_flood(r) for r in self._all("SELECT * FROM floods ORDER BY id")]
+
+    def next_flood_id(self) -> int:
+        row = self.db.execute("SELECT coalesce(max(id), 0) + 1 FROM floods").fetchone()
+        return int(row[0])
+
+    def last_seen_times(self, streams: Iterable[str]) -> dict[str, float]:
+        """For each stream, the time of the last reading any of its incidents saw."""
+        wanted = sorted(set(streams))
+        found: dict[str, float] = {}
+        for i in range(0, len(wanted), _CHUNK):
+            chunk = wanted[i : i + _CHUNK]
+            rows = self.db.execute(
+                f"""SELECT stream, max(seen_time) FROM alerts
+                WHERE stream IN ({", ".join("?" * len(chunk))}) GROUP BY stream""",
+                chunk,
+            ).fetchall()
+            found.update((stream, seen) for stream, seen in rows if seen is not None)
         return found
 
     def latest_alert(self, stream: str, rule: str) -> Alert | None:
@@ -1413,6 +1934,40 @@ class Store:
                 )
         return shelf
 
+    def shelve_streams(
+        self,
+        streams: Sequence[str],
+        rule: str | None = None,
+        *,
+        until: float,
+        reason: str,
+        by: str,
+        now: float,
+        pattern: str | None = None,
+    ) -> list[tuple[Shelf, list[Shelf]]]:
+        """Shelve several streams in one transaction (one row each, all naming ``pattern``).
+        A live shelf for the same stream and rule is ended and replaced by the new one; each
+        new shelf comes back with the shelves it replaced, so the caller can say whether it
+        extends or shortens them."""
+        done: list[tuple[Shelf, list[Shelf]]] = []
+        with self.transaction():
+            live = self.active_shelves(now)
+            for stream in streams:
+                old = [s for s in live if s.stream == stream and s.rule == rule]
+                if old:
+                    self.db.conn.executemany(
+                        "UPDATE shelves SET ended_at = ?, ended_by = ? WHERE id = ?",
+                        [(now, by, s.id) for s in old],
+                    )
+                shelf = self.shelve(stream, rule, until=until, reason=reason, by=by, now=now)
+                if pattern is not None:
+                    self.db.execute(
+                        "UPDATE shelves SET pattern = ? WHERE id = ?", (pattern, shelf.id)
+                    )
+                    shelf = self._shelf(shelf.id)
+                done.append((shelf, old))
+        return done
+
     def unshelve(self, stream: str, rule: str | None = None, *, by: str, now: float) -> list[Shelf]:
         """End the stream's live shelves now: all of them when ``rule`` is None, else only that
         rule's. Raises :class:`NotShelved` when there is nothing to end."""
@@ -1455,7 +2010,7 @@ class Store:
         return Shelf(**row)
 
     def _live_covered(self, stream: str, rule: str | None) -> list[Alert]:
-        return [a for a in self.live_alerts([stream]) if rule is None or a.rule == rule]
+        return [a for a in self.live_alerts([stream]) if rule is None or rule in a.rules]
 
     # ---- notification outbox
 
@@ -1520,6 +2075,16 @@ class Store:
             if row is None:
                 raise NotificationNotFound(_no_notification(notification_id))
             # Already delivered (e.g. a late failure report after a retry succeeded): keep it so.
+
+
+def _flood(row: Mapping[str, Any]) -> Flood:
+    return Flood(
+        row["id"],
+        row["started_at"],
+        row["ended_at"],
+        row["changes"],
+        json.loads(row["streams_json"]),
+    )
 
 
 def _notification(row: Mapping[str, Any]) -> Notification:

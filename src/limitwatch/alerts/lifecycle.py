@@ -1,26 +1,37 @@
-"""When a signal becomes an alert, when it goes quiet, and which notifications it owes.
+"""When signals become an incident, when it is over, and which notifications it owes.
 
-Why this exists: a detector may fire on reading after reading while a process sits off target,
-and a chart that flaps across a limit would open and close alerts all day. People need one
-notification per real event, reminders while nobody has acted, silence during planned
-maintenance, and a record of all of it. The rules here:
+Why incidents: one sustained shift makes several rules fire within a few readings (beyond the
+limits, the moving range, two of three in zone A, four of five in zone B, the run on one side).
+Each used to open its own alert with its own notification, reminders and escalation: five
+messages for one cause. Alarm-management practice (ANSI/ISA-18.2, EEMUA 191) calls that a flood
+and asks for one annunciation per cause. So:
 
-* An alert is keyed by (stream, rule). A signal with no live alert opens one and owes an
-  ``opened`` notification; further signals for a live (open or acknowledged) alert only count
-  (debounce).
-* Hysteresis: a live alert clears after ``clear_after`` consecutive accepted monitoring readings
-  of its stream without a signal for its rule. A signal after that opens a new alert.
+* A stream has at most one live (open or acknowledged) incident. A signal with none opens one
+  and owes an ``opened`` notification; every rule that signals while it is live joins it
+  (counted per rule, kept for ``log`` and JSON) and notifies again only when it raises the
+  incident's severity (``raised``). The severity is the highest of its rules' severities.
+  One incident per stream, not one per side of the center line: a cause that pushes a stream up
+  and then down (over-adjustment) is still one thing for the people on duty, and two incidents
+  would bring the flood back in another form.
+* Hysteresis: a live incident clears after ``clear_after`` consecutive accepted monitoring
+  readings with no signal from any rule (an off-delay counted in readings). A stale-only
+  incident clears as soon as a recent reading arrives. A signal after clearing opens a new one.
 * While open and unacknowledged: a ``reminder`` every ``repeat_every_s`` since the last
-  notification, and one ``escalation`` to a second route ``escalate_after_s`` after opening.
-  Acknowledged alerts owe nothing more.
-* A shelf holds notifications (not the alerts themselves) for a stream, or one rule of it, until
-  a time. The hold is written to the alert's event log once per shelf; when the shelf ends, what
-  is still owed goes out once (a late ``opened``, one reminder, the escalation), the way a shelved
-  alarm returns to annunciation when its shelf time runs out.
+  notification, and one ``escalated`` notice ``escalate_after_s`` after opening. Once
+  someone acknowledges it, an ``acknowledged`` notice says who and why, and reminders stop.
+  When it clears, a ``cleared`` notice says how long it lasted. Routes choose which of these
+  kinds they hear.
+* A shelf holds notifications (not the incidents) for a stream, or one rule of it, until a time.
+  An incident is held while every rule in it is shelved; the hold is logged once per shelf, and
+  when the shelf ends what is still owed goes out once (a late ``opened``, one reminder, the
+  escalation). ``acknowledged`` and ``cleared`` close a conversation a receiver already heard
+  and are never held; an incident never announced is never announced as over.
 
-The decisions are small pure functions over :class:`~limitwatch.store.Alert` values with explicit
-times (``judge_signal``, ``judge_quiet``, ``notices_due``, ``covering_shelf`` ...), so every path
-can be tested without a clock. :class:`AlertBook` is the thin part that reads and writes the store.
+Pure decisions, one write: :func:`decide` takes the live incidents, a batch of outcomes or
+signals, the shelves in force, the policy and ``now``, and returns one :class:`Decision` (the
+incidents opened and changed, rule tallies, events and outbox rows) without touching its inputs
+or any store. :class:`AlertBook` reads the live incidents, calls it, and hands the change set to
+:meth:`~limitwatch.store.Store.write_changes` in one call per batch.
 
 >>> policy = AlertPolicy(severities=(SeverityRule("kiln-*", "beyond-limits", "critical"),))
 >>> policy.severity_for("kiln-2/temp", "beyond-limits"), policy.severity_for("kiln-2/temp", "trend")
@@ -28,71 +39,111 @@ can be tested without a clock. :class:`AlertBook` is the thin part that reads an
 
 References
 ----------
-ANSI/ISA-18.2-2016, *Management of Alarm Systems for the Process Industries*: shelving (a
-temporary, operator-initiated suppression that ends by itself), and deadband/off-delay as the
-cure for chattering alarms -- the clearing hysteresis here is an off-delay counted in readings.
-Western Electric Co. (1956), *Statistical Quality Control Handbook*, and L. S. Nelson (1984),
-"The Shewhart control chart -- tests for special causes", J. Quality Technology 16(4): the rules
-named in :data:`RULE_WORDS`. (Both cited from memory.)
+ANSI/ISA-18.2-2016, *Management of Alarm Systems for the Process Industries*, and IEC 62682:2014
+(its international counterpart): shelving (a temporary, operator-initiated suppression that ends
+by itself), deadband/off-delay against chattering, and alarm floods. EEMUA 191, *Alarm Systems:
+A Guide to Design, Management and Procurement*. Western Electric Co. (1956), *Statistical
+Quality Control Handbook*, and L. S. Nelson (1984), "The Shewhart control chart -- tests for
+special causes", J. Quality Technology 16(4): the rules named in :data:`RULE_WORDS`. (All cited
+from memory.)
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass, replace
-from datetime import UTC, datetime
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
 from fnmatch import fnmatchcase
-from typing import Any, Literal
+from typing import Literal
 
-from limitwatch import SAFETY_CAUTION
+from limitwatch.alerts.messages import (
+    RECENT_FOR,
+    RECENT_READINGS,
+    RULE_WORDS,
+    StreamInfo,
+    describe,
+    flood_payload,
+    iso_time,
+    notification_payload,
+    recent_block,
+    rule_words,
+    silence_words,
+)
 from limitwatch.durations import format_duration
 from limitwatch.model import Outcome, StreamSignal
-from limitwatch.store import ALERT_BOOKKEEPING, Alert, Shelf, Store, signal_context
+from limitwatch.store import (
+    SEVERITIES,
+    Alert,
+    ChangeSet,
+    EventRow,
+    Flood,
+    OutboxRow,
+    RuleTally,
+    Shelf,
+    Store,
+    signal_context,
+)
 
-NoticeKind = Literal["opened", "reminder", "escalation"]
-SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
+__all__ = [
+    "NOTICE_KINDS",
+    "RULE_WORDS",
+    "SEVERITIES",
+    "AlertBook",
+    "AlertPolicy",
+    "BookReport",
+    "Decision",
+    "Notice",
+    "SeverityRule",
+    "covering_shelf",
+    "decide",
+    "decide_tick",
+    "describe",
+    "held_until",
+    "notices_due",
+    "notification_payload",
+    "rule_words",
+    "silence_words",
+]
 
-RULE_WORDS: dict[str, str] = {
-    "beyond-limits": "A reading fell outside the natural process limits "
-    "(more than three sigma from the center line).",
-    "two-of-three-zone-a": "Two of three consecutive readings fell more than two sigma from the "
-    "center line on the same side (zone A or beyond).",
-    "four-of-five-zone-b": "Four of five consecutive readings fell more than one sigma from the "
-    "center line on the same side (zone B or beyond).",
-    "run-one-side": "A long run of consecutive readings fell on the same side of the center "
-    "line: the process average has probably shifted.",
-    "trend": "Consecutive readings kept rising, or kept falling: the process is drifting.",
-    "alternating": "Consecutive readings went up and down in turn, like a sawtooth: "
-    "two sources may be alternating, or something is over-adjusting the process.",
-    "hugging-center": "Many consecutive readings stayed within one sigma of the center line: "
-    "the spread is smaller than the limits assume (stale limits or averaged data).",
-    "avoiding-center": "Several consecutive readings fell more than one sigma from the center "
-    "line, on either side, with none near it: readings may come from mixed sources.",
-    "mr-beyond-limit": "The jump between two consecutive readings (the moving range) exceeded "
-    "its upper limit: a sudden change.",
-    "ewma": "The exponentially weighted moving average (EWMA) of recent readings crossed its "
-    "limit: a small but sustained shift in the process average.",
-    "cusum": "The cumulative sum (CUSUM) of deviations from the center line crossed its "
-    "decision interval: a small but sustained shift in the process average.",
-    "stale": "No reading has arrived for longer than expected: the sensor, gateway or export "
-    "may have stopped.",
-}
-"""Each rule id in plain English, for notification texts."""
+NoticeKind = Literal[
+    "opened",
+    "raised",
+    "reminder",
+    "escalated",
+    "acknowledged",
+    "shelved",
+    "unshelved",
+    "cleared",
+    "flood",
+]
+NOTICE_KINDS: tuple[str, ...] = (
+    "opened",
+    "raised",
+    "reminder",
+    "escalated",
+    "acknowledged",
+    "shelved",
+    "unshelved",
+    "cleared",
+    "flood",
+)
+"""Every kind of notification, in the order an incident can owe them."""
 
-_SENT_EVENT = {"opened": "notified", "reminder": "reminded", "escalation": "escalated"}
+DEFAULT_NOTICES: tuple[str, ...] = ("opened", "raised", "escalated", "cleared", "flood")
+"""What a route hears unless it says otherwise: the start, a worse severity, the escalation,
+the end, and a flood notice; reminders and acknowledgements only when asked for."""
+
+HELD_BY_SHELVES = frozenset({"opened", "raised", "reminder", "escalated"})
+"""Kinds a shelf holds back; ``acknowledged`` and ``cleared`` end what a receiver heard."""
+
+_SENT_EVENT = {"reminder": "reminded", "escalated": "escalated"}
 
 Targets = Callable[[str, str, str, NoticeKind], Sequence[str]]
-"""``(stream, rule, severity, kind) -> route names``: where a notification goes."""
+"""``(stream, rule, severity, kind) -> notifier names``: where a notification goes."""
 
 
-def rule_words(rule: str) -> str:
-    """The plain-English sentence for ``rule``; unknown rules still get a readable line.
-
-    >>> rule_words("no-such-rule")
-    "Rule 'no-such-rule' signalled a special cause."
-    """
-    return RULE_WORDS.get(rule, f"Rule {rule!r} signalled a special cause.")
+def _rank(severity: str) -> int:
+    return SEVERITIES.index(severity) if severity in SEVERITIES else -1
 
 
 # --------------------------------------------------------------------------- policy
@@ -130,10 +181,24 @@ class AlertPolicy:
     targets: Targets | None = None
     """Optional router; without one, escalations go to ``escalation_route`` and the rest to
     ``route``."""
+    stream_info: Callable[[str], StreamInfo] | None = None
+    """The stream's description and unit, for notification texts."""
+    flood_after: int | None = 10
+    """More incidents than this opening or clearing within ``flood_window_s`` are a flood:
+    their notifications fold into one flood notice. Ten in ten minutes is the common
+    alarm-management target for one operator (EEMUA 191, ANSI/ISA-18.2; common practice,
+    cited from memory). None turns flood handling off."""
+    flood_window_s: float = 600.0
 
     def __post_init__(self) -> None:
         if self.clear_after < 1:
             raise ValueError(f"clear_after must be at least 1 reading, not {self.clear_after}")
+        if self.flood_after is not None and self.flood_after < 1:
+            raise ValueError(
+                f"flood_after must be at least 1 or None (off), not {self.flood_after}"
+            )
+        if not self.flood_window_s > 0:
+            raise ValueError("flood_window_s must be a positive number of seconds")
         for name in ("repeat_every_s", "escalate_after_s", "notification_ttl_s"):
             value = getattr(self, name)
             if value is not None and not value > 0:
@@ -154,17 +219,21 @@ class AlertPolicy:
     def routes_for(self, alert: Alert, kind: NoticeKind) -> tuple[str, ...]:
         if self.targets is not None:
             return tuple(self.targets(alert.stream, alert.rule, alert.severity, kind))
-        return (self.escalation_route,) if kind == "escalation" else (self.route,)
+        return (self.escalation_route,) if kind == "escalated" else (self.route,)
+
+    def info(self, stream: str) -> StreamInfo:
+        return self.stream_info(stream) if self.stream_info is not None else StreamInfo()
 
 
-# --------------------------------------------------------------------------- pure decisions
+# --------------------------------------------------------------------------- small pure parts
 
 
 @dataclass(frozen=True, slots=True)
 class Notice:
-    """A notification an alert owes: ``number`` is 0 for ``opened``, the reminder's ordinal for
-    ``reminder`` and 1 for ``escalation``, so ``event_id`` is the same however often it is
-    decided."""
+    """A notification an incident owes. ``number`` makes the event id stable however often it
+    is decided: 0 for ``opened``, ``acknowledged`` and ``cleared``, the reminder's ordinal,
+    1 for ``escalated``, the new severity's rank for ``raised``, the shelf's id for
+    ``shelved`` and the end of the hold (epoch seconds) for ``unshelved``."""
 
     kind: NoticeKind
     number: int
@@ -173,80 +242,41 @@ class Notice:
         return f"{alert_id}:{self.kind}:{self.number}"
 
 
-def judge_signal(
-    latest: Alert | None, signal: StreamSignal
-) -> Literal["open", "repeat", "replayed"]:
-    """What a signal does, given the newest alert of any state for its stream and rule.
-
-    A signal no newer than the last reading that alert has seen is a replay and changes nothing.
-    """
-    if latest is None:
-        return "open"
-    if signal.time <= latest.seen_time:
-        return "replayed"
-    return "open" if latest.state == "cleared" else "repeat"
-
-
-def count_signal(alert: Alert, signal: StreamSignal) -> Alert:
-    """A further signal for a live alert: count it, move its last reading, restart the quiet
-    count."""
-    return replace(
-        alert,
-        signal_count=alert.signal_count + 1,
-        last_time=signal.time,
-        last_index=signal.index,
-        last_value=signal.value if math.isfinite(signal.value) else None,
-        quiet_count=0,
-        seen_time=signal.time,
-        signal=signal_context(signal),
-    )
-
-
-def judge_quiet(
-    alert: Alert, reading_time: float, clear_after: int
-) -> Literal["quiet", "clear", "replayed"]:
-    """What an accepted monitoring reading without this alert's rule does to the alert.
-
-    >>> from limitwatch.store import Alert
-    >>> a = Alert(1, "s", "trend", "open", "warning", 0.0, 0.0, 0, 5.0, 0.0, 0, 5.0, 1, 8,
-    ...           60.0, {})
-    >>> judge_quiet(a, 61.0, clear_after=10), judge_quiet(a, 61.0, clear_after=9)
-    ('quiet', 'clear')
-    """
-    if reading_time <= alert.seen_time:
-        return "replayed"
-    return "clear" if alert.quiet_count + 1 >= clear_after else "quiet"
-
-
-def count_quiet(alert: Alert, reading_time: float) -> Alert:
-    return replace(alert, quiet_count=alert.quiet_count + 1, seen_time=reading_time)
-
-
 def notices_due(alert: Alert, policy: AlertPolicy, now: float) -> tuple[Notice, ...]:
-    """The notifications an alert owes at ``now``, ignoring shelves.
+    """The notifications a live incident owes at ``now``, ignoring shelves.
 
-    Only open (unacknowledged) alerts owe anything. One that has never been notified owes its
-    ``opened`` notice (late, if a shelf held it); otherwise a reminder falls due
-    ``repeat_every_s`` after the last notification. The escalation falls due once,
-    ``escalate_after_s`` after opening.
+    One never announced owes its ``opened`` notice (late, if a shelf held it), unless someone
+    acknowledged it first; one announced at a lower severity owes ``raised``; while open, a
+    reminder falls due ``repeat_every_s`` after the last notification and the escalation once,
+    ``escalate_after_s`` after opening; an acknowledgement of an announced incident is
+    announced once.
     """
-    if alert.state != "open":
+    if alert.state == "cleared":
         return ()
     due: list[Notice] = []
+    is_open = alert.state == "open"
     if alert.notified_at is None:
-        due.append(Notice("opened", 0))
-    elif (
-        policy.repeat_every_s is not None
-        and alert.last_notice_at is not None
-        and now >= alert.last_notice_at + policy.repeat_every_s
-    ):
-        due.append(Notice("reminder", alert.reminders + 1))
+        if is_open:
+            due.append(Notice("opened", 0))
+    else:
+        if _rank(alert.announced_severity or "") < _rank(alert.severity):
+            due.append(Notice("raised", _rank(alert.severity)))
+        if (
+            is_open
+            and policy.repeat_every_s is not None
+            and alert.last_notice_at is not None
+            and now >= alert.last_notice_at + policy.repeat_every_s
+        ):
+            due.append(Notice("reminder", alert.reminders + 1))
+        if not is_open and alert.ack_announced_at is None:
+            due.append(Notice("acknowledged", 0))
     if (
-        policy.escalate_after_s is not None
+        is_open
+        and policy.escalate_after_s is not None
         and alert.escalated_at is None
         and now >= alert.opened_at + policy.escalate_after_s
     ):
-        due.append(Notice("escalation", 1))
+        due.append(Notice("escalated", 1))
     return tuple(due)
 
 
@@ -256,192 +286,592 @@ def covering_shelf(shelves: Iterable[Shelf], stream: str, rule: str, now: float)
     return max(live, key=lambda s: s.until, default=None)
 
 
-def hold_is_new(alert: Alert, shelf: Shelf) -> bool:
-    """True when this shelf's hold on the alert has not been written to its event log yet."""
-    return alert.suppressed_until is None or shelf.until > alert.suppressed_until
+def held_until(shelves: Sequence[Shelf], alert: Alert, now: float) -> tuple[float, Shelf] | None:
+    """When the shelves stop holding the incident's notifications, and the shelf that ends
+    first among those needed; None when some rule in it is not shelved. An incident is held
+    only while everything it says is shelved."""
+    needed: list[Shelf] = []
+    for rule in alert.rules or (alert.rule,):
+        shelf = covering_shelf(shelves, alert.stream, rule, now)
+        if shelf is None:
+            return None
+        needed.append(shelf)
+    first = min(needed, key=lambda s: s.until)
+    return first.until, first
 
 
-def after_sending(alert: Alert, notice: Notice, now: float) -> Alert:
-    """The alert's bookkeeping once ``notice`` has been queued."""
-    if notice.kind == "opened":
-        return replace(alert, notified_at=now, last_notice_at=now)
-    if notice.kind == "reminder":
-        return replace(alert, reminders=notice.number, last_notice_at=now)
-    return replace(alert, escalated_at=now)
-
-
-# --------------------------------------------------------------------------- payload
-
-
-def _num(x: Any) -> float | None:
-    return float(x) if isinstance(x, int | float) and math.isfinite(x) else None
-
-
-def _iso(t: float | None) -> str | None:
-    if t is None:
-        return None
-    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
-
-
-def _duration(seconds: float) -> str:
-    minutes = round(seconds / 60)
-    if minutes < 120:
-        return f"{minutes} min"
-    return f"{minutes / 60:.1f} h"
-
-
-def silence_words(silent_s: float, expected_s: float) -> str:
-    """How long a stale stream has been silent against how soon a reading was due, in the
-    units people write durations in (``limitwatch.durations``), the silence to the second.
-
-    >>> silence_words(7512.4, 2400.0)
-    'no reading for 2h5m12s (expected within 40m)'
-    """
-    return (
-        f"no reading for {format_duration(round(silent_s))} "
-        f"(expected within {format_duration(expected_s)})"
-    )
-
-
-def notification_payload(alert: Alert, notice: Notice, now: float) -> dict[str, Any]:
-    """The JSON-safe body every notifier receives; ``event_id`` is stable across retries."""
-    sig = alert.signal
-    payload: dict[str, Any] = {
-        "event_id": notice.event_id(alert.id),
-        "kind": notice.kind,
-        "number": notice.number,
-        "alert_id": alert.id,
-        "stream": alert.stream,
-        "rule": alert.rule,
-        "rule_words": rule_words(alert.rule),
-        "severity": alert.severity,
-        "value": _num(alert.last_value),
-        "time": alert.last_time,
-        "time_iso": _iso(alert.last_time),
-        "chart": sig.get("chart"),
-        "side": sig.get("side"),
-        "center": _num(sig.get("center")),
-        "sigma": _num(sig.get("sigma")),
-        "ucl": _num(sig.get("ucl")),
-        "lcl": _num(sig.get("lcl")),
-        "mr": _num(sig.get("mr")),
-        "mr_ucl": _num(sig.get("mr_ucl")),
-        "statistic": _num(sig.get("statistic")),
-        "limit": _num(sig.get("limit")),
-        "baseline_version": sig.get("baseline_version"),
-        "signal_count": alert.signal_count,
-        "opened_at": alert.opened_at,
-        "created_at": now,
-        "caution": SAFETY_CAUTION,
-    }
-    payload["text"] = describe(payload)
-    return payload
-
-
-def describe(payload: dict[str, Any]) -> str:
-    """One paragraph for people: what happened, the reading, the limits, and the caution."""
-
-    def g(x: float | None) -> str:
-        return "n/a" if x is None else f"{x:.6g}"
-
-    kind = payload["kind"]
+def after_sending(alert: Alert, notice: Notice, now: float) -> None:
+    """The incident's bookkeeping once ``notice`` has been queued (changes ``alert``)."""
+    kind = notice.kind
     if kind == "opened":
-        head = "New alert"
+        alert.notified_at = alert.last_notice_at = now
+        alert.announced_severity = alert.severity
+    elif kind == "raised":
+        alert.announced_severity = alert.severity
+        alert.last_notice_at = now
     elif kind == "reminder":
-        head = f"Reminder {payload['number']}, not yet acknowledged"
-    else:
-        waited = _duration(payload["created_at"] - payload["opened_at"])
-        head = f"Escalation, not acknowledged after {waited}"
-    parts = [
-        f"{head}: {payload['severity']} alert {payload['alert_id']} on {payload['stream']} "
-        f"({payload['rule']}).",
-        payload["rule_words"],
-    ]
-    silent, due = payload["statistic"], payload["limit"]
-    stale = payload["rule"] == "stale" and silent is not None and due is not None
-    if stale:
-        # The alert's time is when the check ran; the reading it shows came ``silent`` earlier.
-        words = silence_words(silent, due)
-        last = _iso(payload["time"] - silent) if payload["time"] is not None else None
-        if payload["value"] is None:
-            parts.append(f"{words[0].upper()}{words[1:]}, checked at {payload['time_iso']}.")
-        else:
-            parts.append(
-                f"Last reading {g(payload['value'])} at {last}: {words}, checked at "
-                f"{payload['time_iso']}."
-            )
-    else:
-        parts.append(f"Reading {g(payload['value'])} at {payload['time_iso']}.")
-    if payload["chart"] == "mr":
-        # The moving range is the MR chart's statistic; say it once.
-        parts.append(
-            f"Moving range {g(payload['mr'])} against an upper limit of {g(payload['mr_ucl'])}."
-        )
-    else:
-        parts.append(
-            f"Center line {g(payload['center'])}, natural process limits "
-            f"{g(payload['lcl'])} to {g(payload['ucl'])}."
-        )
-        if not stale and payload["statistic"] is not None and payload["limit"] is not None:
-            parts.append(
-                f"Statistic {g(payload['statistic'])} against limit {g(payload['limit'])}."
-            )
-    if payload["signal_count"] > 1:
-        parts.append(f"{payload['signal_count']} signals since it opened.")
-    parts.append(payload["caution"])
-    return " ".join(parts)
+        alert.reminders, alert.last_notice_at = notice.number, now
+    elif kind == "escalated":
+        alert.escalated_at = now
+    elif kind == "acknowledged":
+        alert.ack_announced_at = now
+    elif kind == "cleared":
+        alert.cleared_announced_at = now
 
 
-# --------------------------------------------------------------------------- applier
+def _finite(x: float | None) -> float | None:
+    return None if x is None or not math.isfinite(x) else float(x)
+
+
+# --------------------------------------------------------------------------- the decision
 
 
 @dataclass(slots=True)
 class BookReport:
-    """What one ``apply`` or ``tick`` did, for logs and health counters."""
+    """What one decision did, for logs and health counters."""
 
     opened: int = 0
+    joined: int = 0
     repeated: int = 0
     cleared: int = 0
     replayed: int = 0
     queued: int = 0
     suppressed: int = 0
+    flood_started: int = 0
+    flood_ended: int = 0
 
 
-_BOOKKEEPING = ALERT_BOOKKEEPING
+@dataclass(slots=True)
+class Decision:
+    """The outcome of :func:`decide`: the change set to write, every live incident of the
+    touched streams as it now stands (None: the stream has none), and the counts."""
+
+    changes: ChangeSet
+    live: dict[str, Alert | None]
+    report: BookReport = field(default_factory=BookReport)
+    flood: Flood | None = None
+    """The flood going on after this decision, if any."""
+
+
+class _Work:
+    """The working state of one decision: copies of the live incidents it touches, changed in
+    place reading by reading, compared with the originals at the end."""
+
+    def __init__(
+        self,
+        live: Mapping[str, Alert],
+        shelves: Sequence[Shelf],
+        policy: AlertPolicy,
+        now: float,
+        next_id: int,
+        last_seen: Mapping[str, float] | None = None,
+        surge: FloodInput | None = None,
+    ) -> None:
+        self.original = live
+        self.last_seen = last_seen or {}
+        surge = surge or FloodInput()
+        self.recent: list[str] = list(surge.recent)
+        self.flood = surge.flood.copy() if surge.flood is not None else None
+        self.flood_before = surge.flood
+        self.next_flood_id = surge.next_id
+        self.flood_routes: dict[str, None] = {}
+        self.flood_notice: dict | None = None
+        self.shelves, self.policy, self.now, self.next_id = shelves, policy, now, next_id
+        self.current: dict[str, Alert | None] = {}
+        self.touched: dict[int, Alert] = {}
+        self.new: dict[int, Alert] = {}
+        self.events: list[EventRow] = []
+        self.outbox: list[OutboxRow] = []
+        self.report = BookReport()
+        self.ended_flood: Flood | None = None
+        if (
+            self.flood is not None
+            and self.policy.flood_after is not None
+            and len(self.recent) <= self.policy.flood_after
+        ):
+            self.flood.ended_at = now  # the surge has passed: notifications one by one again
+            self.ended_flood = self.flood
+            self.report.flood_ended += 1
+
+    # ---- floods
+
+    def changed_state(self, alert: Alert) -> None:
+        """An incident opened or cleared: count it towards a flood, start one if it is."""
+        self.recent.append(alert.stream)
+        limit = self.policy.flood_after
+        live = self.flood if self.flood is not None and self.flood.ended_at is None else None
+        if live is None and limit is not None and len(self.recent) > limit:
+            live = self.flood = Flood(self.next_flood_id, self.now)
+            self.next_flood_id += 1
+            live.streams = sorted(set(self.recent))
+            live.changes = len(self.recent)
+            self.report.flood_started += 1
+            # Told as it stood when it started, whichever batch the rest arrive in.
+            self.flood_notice = flood_payload(live, self.policy, self.now)
+        elif live is not None:
+            live.changes += 1
+            if alert.stream not in live.streams:
+                live.streams.append(alert.stream)
+
+    def flooding(self) -> Flood | None:
+        return self.flood if self.flood is not None and self.flood.ended_at is None else None
+
+    # ---- reading and writing the working set
+
+    def incident(self, stream: str) -> Alert | None:
+        if stream in self.current:
+            return self.current[stream]
+        original = self.original.get(stream)
+        if original is None or original.state == "cleared":
+            self.current[stream] = None
+            return None
+        work = original.copy()
+        self.current[stream] = work
+        self.touched[work.id] = work
+        self.settle(work)  # an acknowledgement from the operator, a reminder now due ...
+        return work
+
+    def event(self, alert: Alert, kind: str, note: str | None = None, **data: object) -> None:
+        self.events.append(EventRow(alert.id, kind, self.now, note=note, data=data or None))
+
+    # ---- transitions
+
+    def open(self, signal: StreamSignal) -> Alert:
+        policy, now = self.policy, self.now
+        severity = policy.severity_for(signal.stream, signal.rule)
+        value = _finite(signal.value)
+        ctx = signal_context(signal)
+        stale = signal.rule == "stale"
+        last_reading = signal.time - signal.statistic if stale and signal.statistic else None
+        alert = Alert(
+            id=self.next_id,
+            stream=signal.stream,
+            rule=signal.rule,
+            state="open",
+            severity=severity,
+            opened_at=now,
+            # A silence begins at the stream's last reading, not at the check that found it.
+            first_time=last_reading if last_reading is not None else signal.time,
+            first_index=signal.index,
+            first_value=value,
+            last_time=signal.time,
+            last_index=signal.index,
+            last_value=value,
+            signal_count=1,
+            quiet_count=0,
+            seen_time=last_reading if last_reading is not None else signal.time,
+            signal=ctx,
+            silent_since=last_reading if stale else None,
+        )
+        alert.rules[signal.rule] = RuleTally(
+            signal.rule,
+            severity,
+            1,
+            signal.time,
+            signal.index,
+            value,
+            signal.time,
+            signal.index,
+            value,
+            ctx,
+        )
+        self.next_id += 1
+        self.current[signal.stream] = alert
+        self.touched[alert.id] = self.new[alert.id] = alert
+        self.report.opened += 1
+        self.event(
+            alert,
+            "opened",
+            f"{signal.rule} on {signal.chart} chart, severity {severity}",
+            value=value,
+            time=signal.time,
+            index=signal.index,
+        )
+        self.changed_state(alert)
+        self.settle(alert)
+        return alert
+
+    def join(self, alert: Alert, signal: StreamSignal) -> None:
+        """A signal for a live incident: count it under its rule, move the last reading."""
+        value = _finite(signal.value)
+        ctx = signal_context(signal)
+        tally = alert.rules.get(signal.rule)
+        if tally is None:
+            severity = self.policy.severity_for(alert.stream, signal.rule)
+            alert.rules[signal.rule] = RuleTally(
+                signal.rule,
+                severity,
+                1,
+                signal.time,
+                signal.index,
+                value,
+                signal.time,
+                signal.index,
+                value,
+                ctx,
+            )
+            self.report.joined += 1
+            self.event(
+                alert,
+                "joined",
+                f"{signal.rule} on {signal.chart} chart, severity {severity}",
+                rule=signal.rule,
+                value=value,
+                time=signal.time,
+            )
+            if _rank(severity) > _rank(alert.severity):
+                self.event(alert, "raised", f"severity {alert.severity} -> {severity}")
+                alert.severity = severity
+        else:
+            tally.signal_count += 1
+            tally.last_time, tally.last_index, tally.last_value = (
+                signal.time,
+                signal.index,
+                value,
+            )
+            tally.signal = ctx
+            self.report.repeated += 1
+        alert.signal_count += 1
+        alert.last_time, alert.last_index, alert.last_value = signal.time, signal.index, value
+        alert.signal = ctx
+        if signal.rule == "stale" and alert.silent_since is None and signal.statistic is not None:
+            alert.silent_since = signal.time - signal.statistic
+        self.settle(alert)
+
+    def clear(self, alert: Alert, note: str) -> None:
+        alert.state = "cleared"
+        alert.cleared_at = self.now
+        self.current[alert.stream] = None
+        self.report.cleared += 1
+        self.event(alert, "cleared", note)
+        self.changed_state(alert)
+        if alert.notified_at is not None:
+            self.send(alert, Notice("cleared", 0))
+
+    # ---- notifications
+
+    def settle(self, alert: Alert) -> None:
+        """Queue what the incident owes now, or record once that a shelf holds it; tell the
+        receivers who heard of it when a shelf starts or stops holding it."""
+        hold = held_until(self.shelves, alert, self.now) if self.shelves else None
+        self.shelf_news(alert, hold)
+        notices = notices_due(alert, self.policy, self.now)
+        if not notices:
+            return
+        held = [n for n in notices if n.kind in HELD_BY_SHELVES]
+        if not held:
+            hold = None
+        for notice in notices:
+            if hold is None or notice.kind not in HELD_BY_SHELVES:
+                self.send(alert, notice)
+        if hold is not None:
+            until, shelf = hold
+            if alert.suppressed_until is None or until > alert.suppressed_until:
+                kinds = ", ".join(n.kind for n in held)
+                self.event(
+                    alert,
+                    "suppressed",
+                    f"{kinds} notification held until {_iso(until)} "
+                    f"(shelved by {shelf.shelved_by}: {shelf.reason})",
+                    shelf_id=shelf.id,
+                    held=[n.event_id(alert.id) for n in held],
+                )
+                self.report.suppressed += 1
+                alert.suppressed_until = until
+
+    def shelf_news(self, alert: Alert, hold: tuple[float, Shelf] | None) -> None:
+        """``shelved`` when a shelf starts holding an announced incident, ``unshelved`` when
+        the hold ends (early or at its time); an incident never announced gets neither."""
+        if alert.state == "cleared":
+            return
+        if hold is None:
+            if alert.suppressed_until is not None:
+                ended = alert.suppressed_until
+                alert.suppressed_until = None  # a later shelf is a new hold
+                if alert.notified_at is not None:
+                    self.send(alert, Notice("unshelved", round(ended)))
+            return
+        until, shelf = hold
+        new = alert.suppressed_until is None or until > alert.suppressed_until
+        if new and alert.notified_at is not None:
+            self.send(alert, Notice("shelved", shelf.id), shelf=shelf)
+            alert.suppressed_until = until
+
+    def send(self, alert: Alert, notice: Notice, *, shelf: Shelf | None = None) -> None:
+        policy, now = self.policy, self.now
+        flood = self.flooding()
+        if flood is not None:
+            # Told in the flood notice instead (to the routes that hear floods).
+            self.flood_routes.update(dict.fromkeys(policy.routes_for(alert, "flood")))
+            self.event(
+                alert,
+                "suppressed",
+                f"{notice.kind} notification folded into flood {flood.id} "
+                f"(more than {policy.flood_after} incidents within "
+                f"{format_duration(policy.flood_window_s)})",
+                flood_id=flood.id,
+                held=[notice.event_id(alert.id)],
+            )
+            self.report.suppressed += 1
+            after_sending(alert, notice, now)
+            return
+        payload = notification_payload(alert, notice, now, policy.info(alert.stream))
+        if shelf is not None:
+            payload["shelf"] = {
+                "id": shelf.id,
+                "until": shelf.until,
+                "until_iso": iso_time(shelf.until),
+                "by": shelf.shelved_by,
+                "reason": shelf.reason,
+            }
+            payload["text"] = describe(payload)
+        routes = policy.routes_for(alert, notice.kind)
+        ttl = policy.notification_ttl_s
+        expires = None if ttl is None else now + ttl
+        for route in routes:
+            self.outbox.append(
+                OutboxRow(f"{payload['event_id']}:{route}", alert.id, route, payload, now, expires)
+            )
+        self.report.queued += len(routes)
+        self.event(
+            alert,
+            _SENT_EVENT.get(notice.kind, "notified"),
+            f"{notice.kind} notification queued for {', '.join(routes)}"
+            if routes
+            else "no route matches",
+            event_id=payload["event_id"],
+            routes=list(routes),
+        )
+        after_sending(alert, notice, now)
+
+    # ---- what readings and signals do
+
+    def take(
+        self,
+        stream: str,
+        signals: Sequence[StreamSignal],
+        *,
+        time: float | None = None,
+        z: float | None = None,
+        monitoring: bool = False,
+    ) -> None:
+        """One accepted reading (``time`` given) with the signals it raised, or signals that
+        came without a reading (a stale check)."""
+        alert = self.incident(stream)
+        if time is not None and time <= (
+            alert.seen_time if alert is not None else self.last_seen.get(stream, -math.inf)
+        ):
+            self.report.replayed += 1
+            return
+        fired = {s.rule for s in signals}
+        if signals:
+            rest = signals
+            if alert is None:
+                alert, rest = self.open(signals[0]), signals[1:]
+            for signal in rest:
+                self.join(alert, signal)
+            if time is not None:
+                alert.quiet_count = 0
+        if alert is None:
+            return
+        for signal in signals:
+            _worse(alert, _signal_z(signal))
+        if time is None:
+            return
+        alert.seen_time = time
+        if monitoring:
+            _worse(alert, z)
+        if alert.silent_since is not None and "stale" not in fired:
+            tally = alert.rules.get("stale")
+            allowed = None if tally is None else tally.signal.get("limit")
+            if allowed is None or self.now - time <= allowed:
+                # Readings arrive again, recent enough by the measure that found the silence.
+                # Readings sent late, from before it, leave the incident as it is.
+                alert.silent_since = None
+                if set(alert.rules) <= {"stale"}:
+                    self.clear(alert, f"readings arrive again (one at {_iso(time)})")
+                    return
+                self.event(alert, "resumed", f"readings arrive again (one at {_iso(time)})")
+        if not signals and monitoring and alert.silent_since is None:
+            alert.quiet_count += 1
+            if alert.quiet_count >= self.policy.clear_after:
+                self.clear(
+                    alert,
+                    f"{self.policy.clear_after} consecutive readings without a signal from any "
+                    "rule",
+                )
+
+    def finish(self) -> Decision:
+        flood = self.flood
+        if flood is not None and self.flood_routes:
+            # Queued again by each decision during the flood; the key makes repeats no-ops, so a
+            # route hears of the flood once, listing the incidents that made it.
+            payload = self.flood_notice or flood_payload(flood, self.policy, self.now)
+            ttl = self.policy.notification_ttl_s
+            for route in self.flood_routes:
+                self.outbox.append(
+                    OutboxRow(
+                        f"{payload['event_id']}:{route}",
+                        None,
+                        route,
+                        payload,
+                        self.now,
+                        None if ttl is None else self.now + ttl,
+                    )
+                )
+        changes = ChangeSet(outbox=self.outbox, events=self.events)
+        if self.ended_flood is not None and self.ended_flood is not flood:
+            changes.floods.append(self.ended_flood)
+        if flood is not None and flood != self.flood_before:
+            changes.floods.append(flood)
+        for alert_id, alert in self.touched.items():
+            if alert_id in self.new:
+                changes.opened.append(alert)
+                changes.rules.extend((alert_id, t) for t in alert.rules.values())
+                continue
+            before = self.original[alert.stream]
+            if alert != before:
+                changes.changed.append(alert)
+                for rule, tally in alert.rules.items():
+                    if before.rules.get(rule) != tally:
+                        changes.rules.append((alert_id, tally))
+        live_flood = flood if flood is not None and flood.ended_at is None else None
+        return Decision(changes, dict(self.current), self.report, live_flood)
+
+
+@dataclass(frozen=True, slots=True)
+class FloodInput:
+    """What a decision needs to know about floods: the streams of the incidents opened or
+    cleared within the policy's window before it (one entry each), the flood going on, and
+    the number a new flood would get."""
+
+    recent: tuple[str, ...] = ()
+    flood: Flood | None = None
+    next_id: int = 1
+
+
+def _iso(t: float | None) -> str:
+    return iso_time(t) or "an unknown time"
+
+
+def decide(
+    live: Mapping[str, Alert],
+    outcomes: Iterable[Outcome] = (),
+    *,
+    signals: Iterable[StreamSignal] = (),
+    shelves: Sequence[Shelf] = (),
+    policy: AlertPolicy,
+    now: float,
+    next_id: int,
+    last_seen: Mapping[str, float] | None = None,
+    surge: FloodInput | None = None,
+) -> Decision:
+    """Fold a batch into the incidents: accepted ``outcomes`` in order, then ``signals`` that
+    came without a reading. ``live`` maps streams to their live incident (at least every stream
+    in the batch that has one); it is not changed. New incidents are numbered from
+    ``next_id``. A reading counts once per rule however many detectors agree.
+
+    ``last_seen`` gives, for streams without a live incident, the time of the last reading a
+    cleared one saw: a reading at or before it is a replay and changes nothing (a redelivered
+    batch must not reopen what it once cleared)."""
+    work = _Work(live, shelves, policy, now, next_id, last_seen, surge)
+    for outcome in outcomes:
+        if not outcome.accepted:
+            continue
+        reading = outcome.reading
+        work.take(
+            reading.stream,
+            _one_per_rule(outcome.signals),
+            time=reading.time,
+            z=outcome.z,
+            monitoring=outcome.phase == "monitoring",
+        )
+    by_stream: dict[str, list[StreamSignal]] = {}
+    for signal in signals:
+        by_stream.setdefault(signal.stream, []).append(signal)
+    for stream, found in by_stream.items():
+        work.take(stream, _one_per_rule(found))
+    return work.finish()
+
+
+def decide_tick(
+    live: Mapping[str, Alert],
+    *,
+    shelves: Sequence[Shelf] = (),
+    policy: AlertPolicy,
+    now: float,
+    surge: FloodInput | None = None,
+) -> Decision:
+    """What the live incidents owe at ``now`` with no reading: reminders, escalations,
+    acknowledgements to announce, and notices a shelf held that may now go out; and whether
+    a flood is over."""
+    work = _Work(live, shelves, policy, now, next_id=0, surge=surge)
+    for stream in live:
+        work.incident(stream)
+    return work.finish()
+
+
+def _signal_z(signal: StreamSignal) -> float | None:
+    """Where the signalling reading lay, in sigmas from the center line."""
+    if signal.rule == "stale" or not signal.sigma > 0 or not math.isfinite(signal.value):
+        return None
+    return (signal.value - signal.center) / signal.sigma
+
+
+def _worse(alert: Alert, z: float | None) -> None:
+    if (
+        z is not None
+        and math.isfinite(z)
+        and (alert.worst_z is None or abs(z) > abs(alert.worst_z))
+    ):
+        alert.worst_z = z
+
+
+def _one_per_rule(signals: Sequence[StreamSignal]) -> list[StreamSignal]:
+    if len(signals) < 2:
+        return list(signals)
+    seen: dict[str, StreamSignal] = {}
+    for s in signals:
+        seen.setdefault(s.rule, s)
+    return list(seen.values())
+
+
+# --------------------------------------------------------------------------- applier
 
 
 class AlertBook:
-    """Applies the lifecycle to the store.
+    """Applies the lifecycle's decisions to the store: read the live incidents, :func:`decide`,
+    one :meth:`~limitwatch.store.Store.write_changes`.
 
-    ``apply(outcomes, now)`` runs inside the service's batch transaction (it opens a savepoint, or
-    its own transaction when called alone), so alert changes and the outbox rows they owe commit
-    with the readings. ``tick(now)`` is the scheduler's job for reminders and escalation.
+    ``apply(outcomes, now)`` runs inside the service's batch transaction (a savepoint, or its own
+    transaction when called alone), so incident changes and the outbox rows they owe commit with
+    the readings. ``tick(now)`` is the scheduler's job for reminders, escalations and
+    acknowledgements.
 
-    The live alerts of the streams it has seen are kept between batches: a batch used to read
-    them all again, and with many alerts live that was an eighth of a batch's time. What is kept
-    is exactly what this book last wrote, and it is dropped whenever another connection has
-    committed (``Store.data_version``: an operator acknowledged, say), when a ``tick`` changed
-    alerts, and when a transaction holding its writes was rolled back (``Store.on_rollback``).
+    The live incidents of the streams it has seen are kept between batches: a batch used to read
+    them all again, and with many live that was an eighth of a batch's time. What is kept is
+    exactly what this book last wrote, and it is dropped whenever another connection has
+    committed (``Store.data_version``: an operator acknowledged, say), and when a transaction
+    holding its writes was rolled back (``Store.on_rollback``).
     """
 
     def __init__(self, store: Store, policy: AlertPolicy | None = None) -> None:
         self.store = store
         self.policy = policy or AlertPolicy()
-        self._live: dict[str, dict[str, Alert]] = {}
-        """Live alerts by stream and rule, for the streams in ``_known`` that have any."""
+        self._live: dict[str, Alert] = {}
         self._known: set[str] = set()
         self._version: int | None = None
         store.on_rollback(self.forget)
 
     def forget(self) -> None:
-        """Drop what is kept of the live alerts; the next batch reads them from the store."""
+        """Drop what is kept of the live incidents; the next batch reads them from the store."""
         self._live.clear()
         self._known.clear()
         self._version = None
 
-    def _live_alerts(self, streams: set[str]) -> dict[str, dict[str, Alert]]:
-        """The live alerts of ``streams`` (a copy to work on); call inside the transaction, so
-        no other writer can slip in between the version check and the batch's own writes."""
+    def _live_incidents(self, streams: set[str]) -> dict[str, Alert]:
+        """The live incidents of ``streams``; call inside the transaction, so no other writer
+        can slip in between the version check and the batch's own writes."""
         version = self.store.data_version()
         if version != self._version:
             self.forget()
@@ -449,214 +879,106 @@ class AlertBook:
         missing = streams - self._known
         if missing:
             for alert in self.store.live_alerts(missing):
-                self._live.setdefault(alert.stream, {})[alert.rule] = alert
+                self._live[alert.stream] = alert
             self._known |= missing
         live = self._live
-        return {s: dict(live[s]) for s in streams if s in live}
+        return {s: live[s] for s in streams if s in live}
 
-    def _remember(self, live: dict[str, dict[str, Alert]]) -> None:
-        """Keep what a batch wrote: its streams' live alerts as they now stand in the store."""
-        for stream, rules in live.items():
-            if rules:
-                self._live[stream] = dict(rules)
-            else:
+    def _surge(self, now: float) -> FloodInput | None:
+        """What the store knows of floods: three small indexed reads per batch."""
+        if self.policy.flood_after is None:
+            return None
+        store = self.store
+        return FloodInput(
+            tuple(store.changes_since(now - self.policy.flood_window_s)),
+            store.live_flood(),
+            store.next_flood_id(),
+        )
+
+    def _add_recent(self, rows: Sequence[OutboxRow]) -> None:
+        """Give each body the stream's last readings up to the notice, for the chart an e-mail
+        carries. Read here, not in :func:`decide`: the decision needs no readings, and only
+        the few notices that go out pay for the query."""
+        done: set[int] = set()
+        for row in rows:
+            payload = row.payload
+            if id(payload) in done or not isinstance(payload, dict):
+                continue
+            done.add(id(payload))
+            if payload.get("kind") not in RECENT_FOR:
+                continue
+            upto = payload.get("time") if payload.get("kind") != "cleared" else None
+            upto = payload.get("cleared_through") or upto
+            readings = [
+                r
+                for r in self.store.recent_readings(payload["stream"], last=RECENT_READINGS)
+                if upto is None or r.time <= upto
+            ]
+            if readings:
+                payload["recent"] = recent_block(readings)
+
+    def _remember(self, decision: Decision) -> None:
+        for stream, alert in decision.live.items():
+            if alert is None:
                 self._live.pop(stream, None)
+            else:
+                self._live[stream] = alert
             self._known.add(stream)
 
     # ---- entry points
 
     def apply(self, outcomes: Iterable[Outcome], now: float) -> BookReport:
-        """Fold a batch of engine outcomes, in order, into the alerts."""
+        """Fold a batch of engine outcomes, in order, into the incidents."""
         outcomes = [o for o in outcomes if o.accepted]
-        report = BookReport()
         with self.store.transaction():
-            batch = _Batch(self, {o.reading.stream for o in outcomes}, now, report)
-            for outcome in outcomes:
-                fired = batch.take_signals(outcome.signals)
-                batch.heard_from(outcome.reading.stream, outcome.reading.time, fired)
-                if outcome.phase == "monitoring":
-                    batch.count_quiet(outcome.reading.stream, outcome.reading.time, fired)
-            batch.flush()
-        return report
+            live = self._live_incidents({o.reading.stream for o in outcomes})
+            opening = {o.reading.stream for o in outcomes if o.signals} - set(live)
+            decision = decide(
+                live,
+                outcomes,
+                shelves=self.store.active_shelves(now),
+                policy=self.policy,
+                now=now,
+                next_id=self.store.next_alert_id(),
+                last_seen=self.store.last_seen_times(opening) if opening else None,
+                surge=self._surge(now),
+            )
+            return self._write(decision)
 
     def apply_signals(self, signals: Iterable[StreamSignal], now: float) -> BookReport:
         """Fold signals that came without a reading (e.g. a stale-stream check)."""
         signals = list(signals)
-        report = BookReport()
         with self.store.transaction():
-            batch = _Batch(self, {s.stream for s in signals}, now, report)
-            batch.take_signals(signals)
-            batch.flush()
-        return report
+            live = self._live_incidents({s.stream for s in signals})
+            decision = decide(
+                live,
+                signals=signals,
+                shelves=self.store.active_shelves(now),
+                policy=self.policy,
+                now=now,
+                next_id=self.store.next_alert_id(),
+                surge=self._surge(now),
+            )
+            return self._write(decision)
 
     def tick(self, now: float) -> BookReport:
-        """Queue the reminders and escalations due at ``now`` (and opened notices a shelf held)."""
-        report = BookReport()
-        changed = False
+        """Queue the reminders, escalations and announcements due at ``now``."""
         with self.store.transaction():
-            shelves = self.store.active_shelves(now)
-            for alert in self.store.alerts(state="open"):
-                notices = notices_due(alert, self.policy, now)
-                if not notices:
-                    continue
-                updated = self._owe(alert, notices, shelves, now, report)
-                self._write(alert, updated)
-                changed = True
-        if changed:  # what is kept of these alerts is older than what was just written
-            self.forget()
+            live = {a.stream: a for a in self.store.live_alerts()}
+            decision = decide_tick(
+                live,
+                shelves=self.store.active_shelves(now),
+                policy=self.policy,
+                now=now,
+                surge=self._surge(now),
+            )
+            report = self._write(decision)
+        self.forget()  # the tick read everything fresh; the next batch reads its streams again
         return report
 
-    # ---- shared steps
-
-    def _owe(
-        self,
-        alert: Alert,
-        notices: Sequence[Notice],
-        shelves: Sequence[Shelf],
-        now: float,
-        report: BookReport,
-    ) -> Alert:
-        """Queue ``notices`` for the alert, or record once that a shelf holds them."""
-        shelf = covering_shelf(shelves, alert.stream, alert.rule, now)
-        if shelf is not None:
-            if hold_is_new(alert, shelf):
-                kinds = ", ".join(n.kind for n in notices)
-                self.store.add_alert_event(
-                    alert.id,
-                    "suppressed",
-                    now=now,
-                    note=f"{kinds} notification held until {_iso(shelf.until)} "
-                    f"(shelved by {shelf.shelved_by}: {shelf.reason})",
-                    data={"shelf_id": shelf.id, "held": [n.event_id(alert.id) for n in notices]},
-                )
-                report.suppressed += 1
-                alert = replace(alert, suppressed_until=shelf.until)
-            return alert
-        for notice in notices:
-            alert = self._send(alert, notice, now, report)
-        return alert
-
-    def _send(self, alert: Alert, notice: Notice, now: float, report: BookReport) -> Alert:
-        payload = notification_payload(alert, notice, now)
-        routes = self.policy.routes_for(alert, notice.kind)
-        ttl = self.policy.notification_ttl_s
-        queued = [
-            route
-            for route in routes
-            if self.store.enqueue_notification(
-                f"{payload['event_id']}:{route}",
-                alert_id=alert.id,
-                route=route,
-                payload=payload,
-                now=now,
-                expires_at=None if ttl is None else now + ttl,
-            )
-            is not None
-        ]
-        report.queued += len(queued)
-        if queued or not routes:
-            self.store.add_alert_event(
-                alert.id,
-                _SENT_EVENT[notice.kind],
-                now=now,
-                note=f"queued for {', '.join(queued)}" if queued else "no route matches",
-                data={"event_id": payload["event_id"], "routes": queued},
-            )
-        return after_sending(alert, notice, now)
-
-    def _write(self, before: Alert, after: Alert) -> None:
-        changes = {
-            name: getattr(after, name)
-            for name in _BOOKKEEPING
-            if getattr(after, name) != getattr(before, name)
-        }
-        self.store.update_alert(after.id, **changes)
-
-
-class _Batch:
-    """The working set of one ``apply``: live alerts of the batch's streams, kept in memory and
-    written once at the end."""
-
-    def __init__(self, book: AlertBook, streams: set[str], now: float, report: BookReport):
-        self.book, self.store, self.policy = book, book.store, book.policy
-        self.now, self.report = now, report
-        self.shelves = self.store.active_shelves(now)
-        self.live: dict[str, dict[str, Alert]] = book._live_alerts(streams)
-        self.loaded: dict[int, Alert] = {
-            alert.id: alert for rules in self.live.values() for alert in rules.values()
-        }
-
-    def take_signals(self, signals: Iterable[StreamSignal]) -> set[str]:
-        """Apply signals; return the rules that fired (replays included: not quiet either)."""
-        fired: set[str] = set()
-        seen: set[tuple[str, str]] = set()
-        for signal in signals:
-            key = (signal.stream, signal.rule)
-            if key in seen:
-                continue  # one reading counts once per rule, however many detectors agree
-            seen.add(key)
-            fired.add(signal.rule)
-            live = self.live.setdefault(signal.stream, {})
-            alert = live.get(signal.rule)
-            latest = (
-                alert if alert is not None else self.store.latest_alert(signal.stream, signal.rule)
-            )
-            verdict = judge_signal(latest, signal)
-            if verdict == "replayed":
-                self.report.replayed += 1
-            elif verdict == "repeat":
-                assert alert is not None
-                live[signal.rule] = count_signal(alert, signal)
-                self.report.repeated += 1
-            else:
-                severity = self.policy.severity_for(signal.stream, signal.rule)
-                opened = self.store.open_alert(signal, severity=severity, now=self.now)
-                self.report.opened += 1
-                self.loaded[opened.id] = opened
-                notices = notices_due(opened, self.policy, self.now)
-                live[signal.rule] = self.book._owe(
-                    opened, notices, self.shelves, self.now, self.report
-                )
-        return fired
-
-    def heard_from(self, stream: str, time: float, fired: set[str]) -> None:
-        """A ``stale`` alert clears as soon as the stream is no longer silent by the measure that
-        opened it: an accepted reading no older at the batch's ``now`` than the silence allowed
-        (learning or monitoring alike). Readings sent late, from before that, leave it open: the
-        next check would only find the stream silent again."""
-        alert = self.live.get(stream, {}).get("stale")
-        if alert is None or "stale" in fired:
-            return
-        allowed = alert.signal.get("limit")
-        if allowed is None or self.now - time > allowed:
-            return
-        live = self.live[stream]
-        self.book._write(self.loaded.pop(alert.id), live.pop("stale"))
-        self.store.clear_alert(
-            alert.id, now=self.now, note=f"readings arrive again (one at {_iso(time)})"
-        )
-        self.report.cleared += 1
-
-    def count_quiet(self, stream: str, time: float, fired: set[str]) -> None:
-        live = self.live.get(stream, {})
-        for rule, alert in list(live.items()):
-            if rule in fired or rule == "stale":  # silence is ended by readings, not counted
-                continue
-            verdict = judge_quiet(alert, time, self.policy.clear_after)
-            if verdict == "replayed":
-                continue
-            live[rule] = count_quiet(alert, time)
-            if verdict == "clear":
-                self.book._write(self.loaded.pop(alert.id), live.pop(rule))
-                self.store.clear_alert(
-                    alert.id,
-                    now=self.now,
-                    note=f"{self.policy.clear_after} consecutive readings without this rule",
-                )
-                self.report.cleared += 1
-
-    def flush(self) -> None:
-        for rules in self.live.values():
-            for alert in rules.values():
-                self.book._write(self.loaded[alert.id], alert)
-        self.book._remember(self.live)
+    def _write(self, decision: Decision) -> BookReport:
+        if decision.changes:
+            self._add_recent(decision.changes.outbox)
+            self.store.write_changes(decision.changes)
+        self._remember(decision)
+        return decision.report

@@ -6,7 +6,10 @@ Why these choices:
   readings, and the login that sends it must not cross the network in clear. There is no switch
   to turn verification off; a site with its own CA names it in ``ca_file``. With
   ``starttls = false`` (a relay on the local host) a login is refused at configuration time.
-* Plain text only: it reads the same in every mail client and on a pager's mail gateway.
+* Plain text first: it reads the same in every mail client and on a pager's mail gateway. When
+  the body carries the stream's recent readings and matplotlib is installed (the ``charts``
+  extra), an HTML alternative shows the same text with the X-over-MR chart as an inline PNG
+  (``multipart/related``, referenced by Content-ID), so a reader sees the shift at a glance.
 * ``Message-ID`` derives from the event id, so when the outbox retries after a lost answer the
   repeat carries the same id and mail systems (and people) can recognise it.
 * SMTP reply codes decide retrying: 4xx is temporary by definition, 5xx is permanent. Network
@@ -14,8 +17,8 @@ Why these choices:
   fixed); a server that does not offer STARTTLS is not (it is the wrong server or port).
 
 >>> subject_line({"severity": "warning", "stream": "pack-2/downtime", "rule": "beyond-limits",
-...               "kind": "opened"})
-'[limitwatch] warning: pack-2/downtime beyond-limits'
+...               "kind": "opened", "incident_id": 4})
+'[limitwatch] New warning incident 4 on pack-2/downtime'
 >>> mid = message_id("12:reminder:3", "plant.example")
 >>> mid.startswith("<limitwatch.12-reminder-3."), mid.endswith("@plant.example>")
 (True, True)
@@ -31,38 +34,31 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
+import html
 import logging
 import re
 import smtplib
 import ssl
 from email.message import EmailMessage
-from email.utils import formatdate, parseaddr
+from email.utils import formatdate, make_msgid, parseaddr
 from pathlib import Path
 from typing import Annotated, Any, Literal, Self
 
 from pydantic import AfterValidator, Field, model_validator
 
 import limitwatch
+from limitwatch.alerts.messages import headline
+from limitwatch.alerts.notice_chart import chart_png
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier, NotifierSettings
 from limitwatch.alerts.notifiers.console import notification_lines
 from limitwatch.secrets import resolve_secret
-from limitwatch.textout import printable
 
 log = logging.getLogger(__name__)
 
 
 def subject_line(notification: dict[str, Any]) -> str:
-    """``[limitwatch] SEVERITY: STREAM RULE``, with the reminder number or escalation after it.
-
-    Control characters are escaped: a newline in a stream id would make the header unsendable
-    (and every retry fail the same way until the notification expired)."""
-    n = notification
-    subject = f"[limitwatch] {n.get('severity', 'alert')}: {n.get('stream', '?')} {n.get('rule')}"
-    if n.get("kind") == "reminder":
-        subject += f" (reminder {n.get('number')})"
-    elif n.get("kind") == "escalation":
-        subject += " (escalation)"
-    return printable(subject)
+    """``[limitwatch]`` and the headline: what happened to which incident, how severe."""
+    return f"[limitwatch] {headline(notification)}"
 
 
 def message_id(event_id: str, domain: str) -> str:
@@ -167,8 +163,20 @@ class SmtpNotifier(Notifier):
         msg["Message-ID"] = message_id(event_id, self._domain)
         msg["X-Limitwatch-Event"] = event_id
         msg["User-Agent"] = f"limitwatch/{limitwatch.__version__}"
-        body = notification_lines({**notification, "event_id": event_id}, width=72)
-        msg.set_content("\n".join(body) + "\n")
+        body = "\n".join(notification_lines({**notification, "event_id": event_id}, width=72))
+        msg.set_content(body + "\n")
+        png = chart_png(notification)
+        if png is not None:
+            cid = make_msgid(idstring="chart", domain=self._domain)
+            msg.add_alternative(
+                f"<html><body><pre>{html.escape(body)}</pre>"
+                f'<p><img src="cid:{cid[1:-1]}" alt="XmR chart of the last readings"></p>'
+                "</body></html>\n",
+                subtype="html",
+            )
+            html_part = msg.get_body(("html",))
+            assert isinstance(html_part, EmailMessage)
+            html_part.add_related(png, "image", "png", cid=cid, filename="chart.png")
         return msg
 
     def deliver(self, notification: dict[str, Any], *, event_id: str) -> None:
