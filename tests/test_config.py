@@ -625,9 +625,27 @@ def test_bad_topic_entries_are_reported_at_their_index():
 
 def test_source_types_are_a_tagged_choice():
     found = problems({"sources": [{"type": "mqqt", "name": "x"}, {"name": "y"}, "z"]})
-    assert "'mqtt', 'file'" in found["sources[0]"]
-    assert "needs type" in found["sources[1]"]
+    # An unknown type lists the installed source plugins (the loader shared with notifiers).
+    assert "unknown source type 'mqqt'" in found["sources[0].type"]
+    assert "file, mqtt" in found["sources[0].type"]
+    assert "needs type" in found["sources[1].type"]
     assert "table" in found["sources[2]"]
+
+
+def test_errors_in_a_mixed_source_list_are_reported_at_their_keys():
+    """Two plugin types in one file are validated as a union tagged by type: each entry's
+    problems are named by its own key path, without the tag."""
+    found = problems(
+        {
+            "sources": [
+                mqtt(port=0),
+                {"type": "file", "name": "x", "glob": "*.csv", "format": "xml", "value": "v",
+                 "time": "t", "stream": "s", "poll_evry": "5s"},
+            ]
+        }
+    )
+    assert set(found) == {"sources[0].port", "sources[1].format", "sources[1].poll_evry"}
+    assert "did you mean 'poll_every'" in found["sources[1].poll_evry"]
 
 
 def test_mqtt_connection_rules():

@@ -18,7 +18,7 @@ from limitwatch.pipeline import Parsed, Pipeline
 from limitwatch.store import Store
 from tests.service_harness import Publisher, ServiceProcess, count, mqtt_config, query, wait_until
 
-T0 = 1_798_761_600.0  # 2027-01-01T00:00:00Z
+T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z: in the past, as the service wants readings
 S = "line-1/temp"
 
 

@@ -1,9 +1,9 @@
 """MQTT intake with at-least-once delivery and acknowledgement after commit.
 
 The paho-mqtt network thread only ever puts an :data:`Arrival` on a queue; the connection process
-(:mod:`limitwatch.ingest.mqtt_process`) passes it up to the service as a :class:`Delivery`. All
+(:mod:`limitwatch.ingest.mqtt.process`) passes it up to the service as a :class:`Delivery`. All
 parsing, evaluation and database work happens in the service's single worker, and
-:meth:`MqttSource.ack` is called for each delivery, in arrival order, once the transaction
+:meth:`MqttConnection.ack` is called for each delivery, in arrival order, once the transaction
 holding its effect has committed. With a fixed client id, QoS 1 and a persistent session the
 broker keeps everything not yet acknowledged -- across our crashes and its restarts -- and
 sends it again.
@@ -53,7 +53,7 @@ class Delivery(NamedTuple):
     qos: int
     retained: bool
     epoch: int = 0
-    """Which connection process received it (see :mod:`limitwatch.ingest.mqtt_process`): an
+    """Which connection process received it (see :mod:`limitwatch.ingest.mqtt.process`): an
     acknowledgement only goes back through the process that got the message."""
 
 
@@ -89,7 +89,7 @@ class MqttSettings:
     reconnect_max_s: float = 60.0
 
 
-class MqttSource:
+class MqttConnection:
     """One broker connection feeding ``intake``."""
 
     def __init__(
