@@ -168,3 +168,25 @@ def test_truncated_payloads_never_crash(cut, kind):
     handle(host, "NBIRTH", birth())
     with contextlib.suppress(DecodeError):
         handle(host, kind, body[:cut])
+
+
+def test_check_validates_a_sparkplug_site_and_names_bad_keys(tmp_path):
+    from tests.helpers import cli
+
+    site = tmp_path / "site.toml"
+    body = (
+        '[[sources]]\ntype = "sparkplug"\nname = "presses"\nhost = "127.0.0.1"\n'
+        'client_id = "lw-host"\nhost_id = "limitwatch"\nedge_nodes = ["plant-a/+"]\n'
+    )
+    site.write_text(body)
+    done = cli("check", "--config", str(site), "--file-only")
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "presses (sparkplug 5): 127.0.0.1:1883 as host 'limitwatch'" in done.stdout
+    site.write_text(
+        body.replace('["plant-a/+"]', '["plant-a"]') + 'stream = "{group}/{device}"\n'
+    )
+    done = cli("check", "--config", str(site), "--file-only")
+    said = done.stdout + done.stderr
+    assert done.returncode != 0
+    assert "sources[0].edge_nodes" in said and "sources[0].stream" in said
+    assert "must name {metric}" in said

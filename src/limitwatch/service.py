@@ -127,8 +127,9 @@ class Service:
         """Sources with ``reorder_within``: their readings wait here, in order."""
         self._unacked: dict[str, deque[list[Any]]] = {}
         """Per source with a reorder window, its deliveries in arrival order as [delivery,
-        committed]: acknowledgements go in arrival order, so a held reading holds back the
-        acknowledgement of every later one until it is committed too."""
+        readings of it held and not yet committed]: acknowledgements go in arrival order, so
+        a held reading holds back the acknowledgement of every later one until it is
+        committed too."""
         self.last_commit: float | None = None
         self._heartbeat: float | None = None
         """``time.monotonic()`` when the worker last came round its loop or committed a batch
@@ -221,6 +222,9 @@ class Service:
         context = SourceContext(
             future_tolerance=self.config.service.future_tolerance,
             positions=self.store.file_offsets(settings.name),
+            state_file=self.config.store.path.with_name(
+                f"{self.config.store.path.name}.source-{settings.name}.json"
+            ),
         )
         source = build_source(settings, context)
         self.sources[source.name] = source
@@ -392,22 +396,27 @@ class Service:
         self.metrics.queue_depth.set(self.intake.qsize())
         return batch, jobs
 
-    def _parse(self, source: Source, item: Any, received_at: float) -> Parsed | None:
-        """``item`` parsed by its source, with the worker's own refusals: a new stream past
-        the source's ``max_streams``, and a parser's bug (a dead letter, never a stop)."""
+    def _parse(self, source: Source, item: Any, received_at: float) -> list[Parsed]:
+        """``item`` parsed by its source (none, one, or several readings and refusals), with
+        the worker's own refusals: a new stream past the source's ``max_streams``, and a
+        parser's bug (a dead letter, never a stop)."""
         try:
             parsed = source.parse(item, received_at)
         except Exception as exc:  # a parser bug must not stop the service: a dead letter
             log.exception("source %s: an item could not be parsed", source.name)
-            return source.refused(item, "parse-error", _failure(exc))
-        if parsed is None or parsed.reading is None:
-            return parsed
-        refused = self._refuse_new_stream(source.name, parsed.reading.stream)
-        if refused is not None:
-            return source.refused(item, TOO_MANY_STREAMS, refused)
-        return parsed
+            return [source.refused(item, "parse-error", _failure(exc))]
+        if parsed is None:
+            return []
+        found = [parsed] if isinstance(parsed, Parsed) else list(parsed)
+        for i, part in enumerate(found):
+            if part.reading is None:
+                continue
+            refused = self._refuse_new_stream(source.name, part.reading.stream)
+            if refused is not None:
+                found[i] = source.refused(item, TOO_MANY_STREAMS, refused)
+        return found
 
-    def _parse_pushed(self, item: Any) -> Parsed | None:
+    def _parse_pushed(self, item: Any) -> list[Parsed]:
         # The source stamped the wall clock where the item arrived; a step back since must
         # not make a reading timed at receipt older than the one before it.
         received = self.timekeeper.receipt(item.received_at)
@@ -428,7 +437,7 @@ class Service:
 
     def _process_deliveries(self, batch: list[Any], *, flush: bool = False) -> None:
         if not self._reorder:
-            items = [p for d in batch if (p := self._parse_pushed(d)) is not None]
+            items = [p for d in batch for p in self._parse_pushed(d)]
             self._commit(items)
             by_source: dict[str, list[Any]] = {}
             for d in batch:  # arrival order, only after the commit
@@ -446,22 +455,20 @@ class Service:
         direct: dict[str, list[Any]] = {}
         committed: list[list[Any]] = []
         for d in batch:
-            parsed = self._parse_pushed(d)
+            parts = self._parse_pushed(d)
             buffer = self._reorder.get(d.source)
             if buffer is None:
-                if parsed is not None:
-                    items.append(parsed)
+                items.extend(parts)
                 direct.setdefault(d.source, []).append(d)
                 continue
-            entry = [d, False]
+            entry = [d, 0]  # the delivery, and how many of its readings are held
             self._unacked[d.source].append(entry)
-            if parsed is None:
-                committed.append(entry)
-            elif parsed.reading is None:  # a dead letter has no place in the order
-                items.append(parsed)
-                committed.append(entry)
-            else:
-                buffer.hold(parsed.reading, (parsed, entry), d.received_at)
+            for parsed in parts:
+                if parsed.reading is None:  # a dead letter has no place in the order
+                    items.append(parsed)
+                else:
+                    entry[1] += 1
+                    buffer.hold(parsed.reading, (parsed, entry), d.received_at)
         for buffer in self._reorder.values():
             if len(buffer):
                 for _, (parsed, entry) in buffer.release(now, everything=flush):
@@ -470,12 +477,12 @@ class Service:
         if items:
             self._commit(items)
         for entry in committed:  # only after the commit
-            entry[1] = True
+            entry[1] -= 1
         for source, deliveries in direct.items():
             self.sources[source].acknowledge(deliveries)
         for source, waiting in self._unacked.items():
             ready = []
-            while waiting and waiting[0][1]:
+            while waiting and waiting[0][1] == 0:
                 ready.append(waiting.popleft()[0])
             if ready:
                 self.sources[source].acknowledge(ready)
@@ -574,9 +581,7 @@ class Service:
             if self._stopping.is_set():
                 break
             items.append(item)
-            parsed = self._parse(source, item, self.clock())
-            if parsed is not None:
-                batch.append(parsed)
+            batch.extend(self._parse(source, item, self.clock()))
             if len(batch) >= self.config.service.batch_max:
                 used += len(batch)
                 self._commit(batch, {name: source.positions(items)})
@@ -615,6 +620,7 @@ class Service:
             "worker_last_round_s_ago": quiet,
             "sources": sources,
             "errors": {n: h.last_error for n, h in states.items() if h.last_error},
+            "source_state": {n: dict(h.detail) for n, h in states.items() if h.detail},
             "queue_depth": self.intake.qsize(),
             "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
             "last_commit": None if self.last_commit is None else format_time(self.last_commit),

@@ -54,6 +54,7 @@ import queue
 from abc import ABC, abstractmethod
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, ClassVar, NamedTuple, Self
 
 from limitwatch.config import SourceSettings
@@ -102,6 +103,9 @@ class SourceContext:
     """``[service] future_tolerance``: refuse readings stamped later than receipt plus this."""
     positions: Mapping[str, int] = field(default_factory=dict)
     """The positions this source last committed (see :meth:`Source.positions`)."""
+    state_file: Path | None = None
+    """A file of its own beside the database, for what a source must remember across
+    restarts besides positions (the Sparkplug source's births); None: nowhere."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -160,9 +164,12 @@ class Source(ABC):
         return ()
 
     @abstractmethod
-    def parse(self, item: Any, received_at: float) -> Parsed | None:
+    def parse(self, item: Any, received_at: float) -> Parsed | Sequence[Parsed] | None:
         """The reading in ``item``, a refusal, or None for an item that only moves the
-        position on. ``received_at`` is the service's time of receipt (never behind the last
+        position on; a sequence of them for an item that holds several readings (a Sparkplug
+        message carries many metrics). All of them are committed in one batch, and the item
+        is acknowledged once every reading of it held by a reorder window is committed.
+        ``received_at`` is the service's time of receipt (never behind the last
         one given out, whatever the wall clock did)."""
 
     def refused(self, item: Any, reason: str, detail: str) -> Parsed:

@@ -85,6 +85,10 @@ class MqttSettings:
     cert_file: str | None = None
     key_file: str | None = None
     status_topic: str | None = None
+    online_payload: str | bytes = "online"
+    """Published retained on ``status_topic`` at every connect."""
+    offline_payload: str | bytes = "offline"
+    """The last will on ``status_topic``, and what a clean close publishes there."""
     reconnect_min_s: float = 1.0
     reconnect_max_s: float = 60.0
 
@@ -132,7 +136,7 @@ class MqttConnection:
                 cert_reqs=ssl.CERT_REQUIRED,
             )
         if s.status_topic:
-            client.will_set(s.status_topic, "offline", qos=1, retain=True)
+            client.will_set(s.status_topic, s.offline_payload, qos=1, retain=True)
         # paho's hint says int, but it sleeps for these seconds and takes a float as well
         client.reconnect_delay_set(
             min_delay=s.reconnect_min_s,  # type: ignore[arg-type]
@@ -164,13 +168,23 @@ class MqttConnection:
         s = self.settings
         try:
             if s.status_topic and self.connected.is_set():
-                info = self._client.publish(s.status_topic, "offline", qos=1, retain=True)
+                info = self._client.publish(
+                    s.status_topic, s.offline_payload, qos=1, retain=True
+                )
                 info.wait_for_publish(timeout=5)
             self._client.disconnect()
         except Exception:  # closing must not fail the shutdown
             log.exception("mqtt %s: error while disconnecting", self.name)
         finally:
             self._client.loop_stop()
+
+    def publish(self, topic: str, payload: bytes, qos: int, retain: bool) -> None:
+        """Publish without waiting (paho queues it; while disconnected, QoS 1 waits for the
+        reconnect): a source's own messages to its senders, such as a rebirth request."""
+        try:
+            self._client.publish(topic, payload, qos=qos, retain=retain)
+        except Exception:  # a refused publish must not end the connection process
+            log.exception("mqtt %s: could not publish on %s", self.name, topic)
 
     def ack(self, mid: int, qos: int) -> None:
         """Acknowledge one delivery; called by the worker after its batch committed."""
@@ -190,7 +204,9 @@ class MqttConnection:
             self.last_error = None
             client.subscribe(list(self.settings.topics))
             if self.settings.status_topic:
-                client.publish(self.settings.status_topic, "online", qos=1, retain=True)
+                client.publish(
+                    self.settings.status_topic, self.settings.online_payload, qos=1, retain=True
+                )
             self.connected.set()
             self._on_change()
             log.info(

@@ -126,6 +126,8 @@ def _serve(settings: MqttSettings, up: Connection, down: Connection, log_level: 
                 ack = source.ack
                 for mid, qos in message[1]:
                     ack(mid, qos)
+            elif message[0] == "publish":
+                source.publish(*message[1:])
             elif message[0] == "close":
                 source.close()
                 local.put(_status(source, closed=True))
@@ -301,6 +303,17 @@ class MqttProcess:
                 self.name,
                 len(acks),
             )
+
+    def publish(self, topic: str, payload: bytes, qos: int = 1, retain: bool = False) -> bool:
+        """Have the connection process publish a message; False when it is gone (the caller
+        may ask again later)."""
+        if self._down is None:
+            return False
+        try:
+            self._down.send(("publish", topic, payload, qos, retain))
+        except (BrokenPipeError, OSError):
+            return False
+        return True
 
     def close(self, timeout: float = 15.0) -> None:
         """Ask the connection process to say ``offline`` and disconnect; wait for it to end."""

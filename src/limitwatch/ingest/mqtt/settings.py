@@ -43,7 +43,7 @@ from limitwatch.ingest.topics import (
     validate_topic_name,
 )
 
-__all__ = ["MqttSourceConfig", "MqttTopic"]
+__all__ = ["BrokerSettings", "MqttSourceConfig", "MqttTopic"]
 
 
 def _protocol(value: Any) -> Any:
@@ -101,10 +101,10 @@ class MqttTopic(_Section):
         return self
 
 
-class MqttSourceConfig(SourceSettings):
-    """``type = "mqtt"``: one broker connection (persistent session, QoS 1, manual acks)."""
+class BrokerSettings(SourceSettings):
+    """The broker connection of a source that reads MQTT (persistent session, QoS 1, manual
+    acks): the keys ``type = "mqtt"`` and ``type = "sparkplug"`` share."""
 
-    type: Literal["mqtt"]
     host: str = Field(min_length=1)
     port: int = Field(1883, ge=1, le=65535)
     protocol: Annotated[Literal["5", "3.1.1"], BeforeValidator(_protocol)] = "5"
@@ -116,26 +116,9 @@ class MqttSourceConfig(SourceSettings):
     password_env: EnvName | None = None
     password_file: ConfigPath | None = None
     tls: TlsSettings | None = None
-    status_topic: str | None = None
-    """Where ``online``/``offline`` is published, retained; filled in as
-    ``limitwatch/<client_id>/status`` when left out (so it is None only on a failed load)."""
     max_payload_bytes: int = Field(65536, ge=1, le=268_435_455)
     reconnect_min_s: int = Field(1, ge=1, le=3600)
     reconnect_max_s: int = Field(60, ge=1, le=86400)
-    reorder_within: PositiveDuration | None = None
-    """Hold each reading this long and apply a stream's held readings in sequence (else time)
-    order: a reading overtaken by up to this much is applied in its place instead of being
-    refused as ``late``. Off by default: it delays every reading of the source by this much."""
-    topics: list[MqttTopic] = Field(min_length=1)
-
-    @model_validator(mode="before")
-    @classmethod
-    def _default_status_topic(cls, data: Any) -> Any:
-        if isinstance(data, Mapping) and "status_topic" not in data:
-            client_id = data.get("client_id")
-            if isinstance(client_id, str) and client_id:
-                data = {**data, "status_topic": f"limitwatch/{client_id}/status"}
-        return data
 
     @field_validator("client_id")
     @classmethod
@@ -152,23 +135,8 @@ class MqttSourceConfig(SourceSettings):
             raise ValueError("must be at most 4294967295 seconds (about 136 years)")
         return float(math.ceil(value))
 
-    @field_validator("status_topic")
-    @classmethod
-    def _status(cls, value: str | None) -> str | None:
-        if value is None:
-            return None
-        try:
-            validate_topic_name(value)
-        except ValueError as exc:
-            raise ValueError(
-                f"{value!r} cannot be the status topic ({exc}); the default is "
-                "limitwatch/<client_id>/status, so set status_topic when the client id holds "
-                "'+' or '#'"
-            ) from None
-        return value
-
     @model_validator(mode="after")
-    def _connection(self) -> MqttSourceConfig:
+    def _connection(self) -> BrokerSettings:
         problems: list[tuple[tuple[str | int, ...], str]] = []
         if self.password_env is not None and self.password_file is not None:
             problems.append((("password_file",), "give password_env or password_file, not both"))
@@ -191,11 +159,6 @@ class MqttSourceConfig(SourceSettings):
         if problems:
             raise _fail(*problems)
         return self
-
-    @property
-    def subscriptions(self) -> tuple[tuple[str, int], ...]:
-        """``(filter, qos)`` pairs to subscribe to."""
-        return tuple((t.filter, t.qos) for t in self.topics)
 
     # ---- what check and the service's advice need to know
 
@@ -249,6 +212,53 @@ class MqttSourceConfig(SourceSettings):
                     "for us while the service is down",
                 )
             )
+        return out
+
+
+class MqttSourceConfig(BrokerSettings):
+    """``type = "mqtt"``: readings on topics of our own choosing, one per message."""
+
+    type: Literal["mqtt"]
+    status_topic: str | None = None
+    """Where ``online``/``offline`` is published, retained; filled in as
+    ``limitwatch/<client_id>/status`` when left out (so it is None only on a failed load)."""
+    reorder_within: PositiveDuration | None = None
+    """Hold each reading this long and apply a stream's held readings in sequence (else time)
+    order: a reading overtaken by up to this much is applied in its place instead of being
+    refused as ``late``. Off by default: it delays every reading of the source by this much."""
+    topics: list[MqttTopic] = Field(min_length=1)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _default_status_topic(cls, data: Any) -> Any:
+        if isinstance(data, Mapping) and "status_topic" not in data:
+            client_id = data.get("client_id")
+            if isinstance(client_id, str) and client_id:
+                data = {**data, "status_topic": f"limitwatch/{client_id}/status"}
+        return data
+
+    @field_validator("status_topic")
+    @classmethod
+    def _status(cls, value: str | None) -> str | None:
+        if value is None:
+            return None
+        try:
+            validate_topic_name(value)
+        except ValueError as exc:
+            raise ValueError(
+                f"{value!r} cannot be the status topic ({exc}); the default is "
+                "limitwatch/<client_id>/status, so set status_topic when the client id holds "
+                "'+' or '#'"
+            ) from None
+        return value
+
+    @property
+    def subscriptions(self) -> tuple[tuple[str, int], ...]:
+        """``(filter, qos)`` pairs to subscribe to."""
+        return tuple((t.filter, t.qos) for t in self.topics)
+
+    def advice(self, where: str) -> list[Problem]:
+        out = super().advice(where)
         for j, topic in enumerate(self.topics):
             entry = f"{where}.topics[{j}]"
             if topic.qos == 0:

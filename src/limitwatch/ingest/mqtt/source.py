@@ -25,10 +25,14 @@ __all__ = ["MqttSource", "connection_settings", "envelope"]
 
 
 def connection_settings(
-    source: Any, topics: tuple[tuple[str, int], ...], password: str | None
+    source: Any,
+    topics: tuple[tuple[str, int], ...],
+    password: str | None,
+    **status: Any,
 ) -> MqttSettings:
     """The connection part of a broker source's settings (shared with the sources built on
-    MQTT: ``source`` has the broker keys of :class:`MqttSourceConfig`)."""
+    MQTT: ``source`` has the keys of :class:`~limitwatch.ingest.mqtt.settings.BrokerSettings`;
+    ``status`` gives ``status_topic`` and its payloads)."""
     tls = source.tls
 
     def path(value: object) -> str | None:
@@ -50,9 +54,9 @@ def connection_settings(
         ca_file=None if tls is None else path(tls.ca_file),
         cert_file=None if tls is None else path(tls.cert_file),
         key_file=None if tls is None else path(tls.key_file),
-        status_topic=source.status_topic,
         reconnect_min_s=source.reconnect_min_s,
         reconnect_max_s=source.reconnect_max_s,
+        **status,
     )
 
 
@@ -80,7 +84,9 @@ class MqttSource(Source):
         password = resolve_secret(
             env=settings.password_env, file=settings.password_file, what=f"sources.{settings.name}"
         )
-        connect = connection_settings(settings, settings.subscriptions, password)
+        connect = connection_settings(
+            settings, settings.subscriptions, password, status_topic=settings.status_topic
+        )
         parser = SourceParser(settings, future_tolerance=context.future_tolerance)
         return cls(settings, connect, parser)
 
