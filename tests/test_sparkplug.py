@@ -116,7 +116,8 @@ def test_devices_are_born_fed_and_die():
     # a node alias is not the device's
     out = handle(host, "DDATA", payload(3, [{"alias": 1, "float_value": 3.0}]), device="pump-2")
     assert [r.reason for r in out.refusals] == ["unknown-alias"]
-    handle(host, "DDEATH", payload(4, []), device="pump-2")
+    out = handle(host, "DDEATH", payload(4, []), device="pump-2")
+    assert [r.reason for r in out.refusals] == ["device-offline"]
     out = handle(host, "DDATA", payload(5, [{"alias": 20, "float_value": 3.0}]), device="pump-2")
     assert [r.reason for r in out.refusals] == ["not-born"]
 
@@ -190,3 +191,40 @@ def test_check_validates_a_sparkplug_site_and_names_bad_keys(tmp_path):
     assert done.returncode != 0
     assert "sources[0].edge_nodes" in said and "sources[0].stream" in said
     assert "must name {metric}" in said
+
+
+def _source():
+    from limitwatch.ingest.base import SourceContext
+    from limitwatch.ingest.sparkplug.settings import SparkplugSourceConfig
+    from limitwatch.ingest.sparkplug.source import SparkplugSource
+
+    settings = SparkplugSourceConfig.model_validate(
+        {"type": "sparkplug", "name": "presses", "host": "127.0.0.1", "client_id": "lw",
+         "host_id": "lw", "edge_nodes": ["plant-a/+"], "max_payload_bytes": 4096}
+    )  # fmt: skip
+    return SparkplugSource.from_settings(settings, SourceContext(future_tolerance=300.0))
+
+
+@settings(max_examples=examples(300), deadline=None)
+@given(
+    st.sampled_from(["NBIRTH", "NDATA", "NDEATH", "DBIRTH", "DDATA", "DDEATH", "STATE"]),
+    st.binary(max_size=300),
+    st.integers(min_value=0, max_value=400),
+)
+def test_random_and_truncated_payloads_through_the_source_are_dead_letters(kind, junk, cut):
+    """Through the source as the worker calls it: a list of readings and dead letters, each
+    dead letter with a reason and the raw message; never an exception."""
+    from limitwatch.ingest.mqtt.client import Delivery
+
+    source = _source()
+    device = "/pump-2" if kind.startswith("D") else ""
+    topic = f"spBv1.0/plant-a/{kind}/press-1{device}"
+
+    def deliver(topic: str, body: bytes) -> list:
+        return source.parse(Delivery("presses", topic, body, T / 1000, 1, 1, False), T / 1000)
+
+    good = deliver(NODE.format("NBIRTH"), birth())
+    assert [p.reading.value for p in good if p.reading] == [41.5, 7.0]
+    for body in (junk, (birth() + junk)[:cut]):
+        for part in deliver(topic, body):
+            assert part.reading is not None or (part.error and part.raw.startswith(topic.encode()))

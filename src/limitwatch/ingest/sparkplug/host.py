@@ -14,7 +14,8 @@ Per edge node (group, node), from its last NBIRTH until its NDEATH:
   requested so that the host's picture of the node is whole again;
 * **bdSeq**: the NBIRTH's ``bdSeq`` metric ties the session to the NDEATH the broker publishes
   for it (the node's last will). An NDEATH whose ``bdSeq`` is not the current birth's is from an
-  older session and is ignored (``stale-death``);
+  older session and is ignored (``stale-death``); a death of the current session is a
+  ``node-offline`` (``device-offline`` for DDEATH) dead letter, so it is seen and counted;
 * data from a node (or device) that has not been born, or that died, is refused
   (``not-born``) and a rebirth is requested.
 
@@ -208,7 +209,15 @@ class SparkplugHost:
                 out.event = f"device {_name(message)} born"
             elif kind == "DDEATH":
                 assert message.device is not None
-                node.devices.discard(message.device)
+                if message.device in node.devices:
+                    node.devices.discard(message.device)
+                    out.refusals.append(
+                        Refusal(
+                            "device-offline",
+                            f"device {_name(message)} reported offline (DDEATH); its streams "
+                            "get no readings until its next DBIRTH",
+                        )
+                    )
                 out.event = f"device {_name(message)} reported offline (DDEATH)"
                 return out
             elif kind == "DDATA" and message.device not in node.devices:
