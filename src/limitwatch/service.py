@@ -50,7 +50,7 @@ from limitwatch.alerts.delivery_watch import DeliveryCollector
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
 from limitwatch.clocks import CARRY_ON_AT_MOST_S, ServiceClock, describe_step
-from limitwatch.config import Config
+from limitwatch.config import Config, SourceSettings
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.base import Source, SourceContext
 from limitwatch.ingest.registry import build_source
@@ -143,6 +143,17 @@ class Service:
         self.status: StatusServer | None = None
         self._lock: InstanceLock | None = None
 
+    @property
+    def mqtt(self) -> dict[str, Any]:
+        """The connection processes of the sources that have one, by source name (what
+        ``limitwatch bench`` and tests watch for a subscription); the worker itself goes
+        through :attr:`sources` only."""
+        return {
+            name: process
+            for name, source in self.sources.items()
+            if (process := getattr(source, "process", None)) is not None
+        }
+
     # -- settings lookups ---
 
     def settings_for(self, stream: str) -> MonitorSettings:
@@ -215,7 +226,7 @@ class Service:
                 describe_step(-behind).removeprefix("back by "),
             )
 
-    def _start_source(self, settings: Any) -> None:
+    def _start_source(self, settings: SourceSettings) -> None:
         """Build a configured source from its plugin and start it; pushed sources begin
         putting items on ``intake``, polled ones get a job in :meth:`_make_scheduler`."""
         assert self.store is not None
@@ -593,6 +604,10 @@ class Service:
             self._commit(batch, {name: positions})
             source.acknowledge(items)
         return used
+
+    def poll_files(self, name: str) -> int:
+        """:meth:`poll_source` under its earlier name (``limitwatch bench`` times it)."""
+        return self.poll_source(name)
 
     # -- health ---
 
