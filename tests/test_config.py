@@ -27,6 +27,7 @@ from limitwatch.config import (
     ConfigError,
     FileSourceConfig,
     MqttSourceConfig,
+    SourceSettings,
     check_files,
     check_secrets,
     config_from_dict,
@@ -811,7 +812,8 @@ def test_the_demo_config_matches_the_demo_scenario():
 def test_the_example_config_loads():
     config = load_config(EXAMPLE)
     assert config.warnings() == []
-    assert {type(s) for s in config.sources} == {MqttSourceConfig, FileSourceConfig}
+    assert {s.type for s in config.sources} == {"mqtt", "file", "sparkplug"}
+    assert {type(s) for s in config.sources} >= {MqttSourceConfig, FileSourceConfig}
     assert config.alert_policy().escalate_after_s == 1800.0
 
 
@@ -824,6 +826,11 @@ def _unwrap(tp: Any) -> list[Any]:
         return [x for a in typing.get_args(tp) for x in _unwrap(a)]
     if origin in (list, tuple):
         return _unwrap(typing.get_args(tp)[0])
+    if tp is SourceSettings:  # a union of the source plugins' models, chosen by type
+        from limitwatch.ingest.registry import SOURCES
+
+        models = [SOURCES.settings_model(kind) for kind in SOURCES.known_types()]
+        return [m for m in models if m.__module__.startswith("limitwatch.")]
     return [tp] if isinstance(tp, type) and issubclass(tp, BaseModel) else []
 
 
