@@ -109,7 +109,7 @@ def _starts_a_process_or_server(value: object) -> bool:
     if isinstance(value, types.ModuleType):
         module = value.__name__
     elif inspect.isfunction(value) or inspect.isclass(value):
-        module = value.__module__
+        module = value.__module__ or ""  # None for classes made at run time (protobuf's)
         if value.__name__ in INTEGRATION_NAMES and module == "tests.helpers":
             return True
     else:

@@ -83,7 +83,7 @@ class ServiceProcess:
                     cmdline = Path(f"/proc/{pid}/cmdline").read_bytes()
                 except FileNotFoundError:
                     continue
-                if b"limitwatch.ingest.mqtt_process" in cmdline:
+                if b"limitwatch.ingest.mqtt.process" in cmdline:
                     found.append(int(pid))
         return found
 

@@ -27,6 +27,7 @@ from limitwatch.config import (
     ConfigError,
     FileSourceConfig,
     MqttSourceConfig,
+    SourceSettings,
     check_files,
     check_secrets,
     config_from_dict,
@@ -636,9 +637,27 @@ def test_bad_topic_entries_are_reported_at_their_index():
 
 def test_source_types_are_a_tagged_choice():
     found = problems({"sources": [{"type": "mqqt", "name": "x"}, {"name": "y"}, "z"]})
-    assert "'mqtt', 'file'" in found["sources[0]"]
-    assert "needs type" in found["sources[1]"]
+    # An unknown type lists the installed source plugins (the loader shared with notifiers).
+    assert "unknown source type 'mqqt'" in found["sources[0].type"]
+    assert "file, mqtt" in found["sources[0].type"]
+    assert "needs type" in found["sources[1].type"]
     assert "table" in found["sources[2]"]
+
+
+def test_errors_in_a_mixed_source_list_are_reported_at_their_keys():
+    """Two plugin types in one file are validated as a union tagged by type: each entry's
+    problems are named by its own key path, without the tag."""
+    found = problems(
+        {
+            "sources": [
+                mqtt(port=0),
+                {"type": "file", "name": "x", "glob": "*.csv", "format": "xml", "value": "v",
+                 "time": "t", "stream": "s", "poll_evry": "5s"},
+            ]
+        }
+    )
+    assert set(found) == {"sources[0].port", "sources[1].format", "sources[1].poll_evry"}
+    assert "did you mean 'poll_every'" in found["sources[1].poll_evry"]
 
 
 def test_mqtt_connection_rules():
@@ -805,7 +824,8 @@ def test_the_demo_config_matches_the_demo_scenario():
 def test_the_example_config_loads():
     config = load_config(EXAMPLE)
     assert config.warnings() == []
-    assert {type(s) for s in config.sources} == {MqttSourceConfig, FileSourceConfig}
+    assert {s.type for s in config.sources} == {"mqtt", "file", "sparkplug"}
+    assert {type(s) for s in config.sources} >= {MqttSourceConfig, FileSourceConfig}
     assert config.alert_policy().escalate_after_s == 1800.0
 
 
@@ -818,6 +838,11 @@ def _unwrap(tp: Any) -> list[Any]:
         return [x for a in typing.get_args(tp) for x in _unwrap(a)]
     if origin in (list, tuple):
         return _unwrap(typing.get_args(tp)[0])
+    if tp is SourceSettings:  # a union of the source plugins' models, chosen by type
+        from limitwatch.ingest.registry import SOURCES
+
+        models = [SOURCES.settings_model(kind) for kind in SOURCES.known_types()]
+        return [m for m in models if m.__module__.startswith("limitwatch.")]
     return [tp] if isinstance(tp, type) and issubclass(tp, BaseModel) else []
 
 

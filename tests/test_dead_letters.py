@@ -12,7 +12,7 @@ import time
 from hypothesis import given
 from hypothesis import strategies as st
 
-from limitwatch.ingest.files import FileSource
+from limitwatch.ingest.files import FileTail
 from limitwatch.payloadview import view_payload
 from limitwatch.refusals import RefusalLog
 from limitwatch.store import Store
@@ -74,7 +74,7 @@ def test_any_payload_shows_as_printable_text_of_bounded_length(raw):
 def test_file_lines_carry_their_line_numbers_across_polls_and_restarts(tmp_path):
     path = tmp_path / "a.csv"
     path.write_text("time,value\n1,5\n\n2,6\n")
-    source = FileSource("export", str(tmp_path / "*.csv"), "csv")
+    source = FileTail("export", str(tmp_path / "*.csv"), "csv")
     offsets: dict[str, int] = {}
     first = list(source.poll(offsets))
     assert [(line.line, line.raw) for line in first] == [
@@ -87,13 +87,13 @@ def test_file_lines_carry_their_line_numbers_across_polls_and_restarts(tmp_path)
     with path.open("a") as f:
         f.write("3,7\n")
     assert [line.line for line in source.poll(offsets)] == [5]
-    restarted = FileSource("export", str(tmp_path / "*.csv"), "csv")  # counts the file once
+    restarted = FileTail("export", str(tmp_path / "*.csv"), "csv")  # counts the file once
     assert [line.line for line in restarted.poll(offsets)] == [5]
 
 
 def test_a_header_without_the_configured_column_is_warned_about_once(tmp_path, caplog):
     (tmp_path / "a.csv").write_text("time,reading\n1,5\n2,6\n")
-    source = FileSource(
+    source = FileTail(
         "export", str(tmp_path / "*.csv"), "csv", columns={"value": "value", "time": "time"}
     )
     with caplog.at_level(logging.WARNING, logger="limitwatch.files"):

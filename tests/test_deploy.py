@@ -116,7 +116,8 @@ def test_unit_starts_limitwatch_serve_on_the_shipped_site_config():
 def test_unit_waits_long_enough_for_a_clean_stop():
     """TimeoutStopSec must cover what a SIGTERM sets off: the batch in hand (at most batch_wait
     of the site config, then its commit), the outbox worker's own stop timeout (a notification
-    in flight), and the retained "offline" publish, which ingest/mqtt.py waits up to 5 s for."""
+    in flight), and the retained "offline" publish, which ingest/mqtt/client.py waits up to 5 s
+    for."""
     service = unit_sections()["Service"]
     outbox_timeout = inspect.signature(OutboxWorker.stop).parameters["timeout"].default
     batch_wait = load_config(SITE).service.batch_wait

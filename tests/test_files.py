@@ -1,14 +1,14 @@
-"""FileSource: complete lines only, identity by inode, rotation and truncation."""
+"""FileTail: complete lines only, identity by inode, rotation and truncation."""
 
 from __future__ import annotations
 
 import json
 import os
 
-from limitwatch.ingest.files import FileSource, file_identity, glob_folder
+from limitwatch.ingest.files import FileTail, file_identity, glob_folder
 
 
-def lines(source: FileSource, offsets: dict[str, int]) -> list:
+def lines(source: FileTail, offsets: dict[str, int]) -> list:
     got = list(source.poll(offsets))
     for line in got:  # the caller commits offsets after using the lines
         offsets[line.file_id] = line.end_offset
@@ -18,7 +18,7 @@ def lines(source: FileSource, offsets: dict[str, int]) -> list:
 def test_a_partial_last_line_waits_for_its_newline(tmp_path):
     path = tmp_path / "a.csv"
     path.write_text("time,value\n2027-01-01T00:00:00Z,1.5\n2027-01-01T00:01:00Z,2")
-    source = FileSource("f", str(tmp_path / "*.csv"), "csv")
+    source = FileTail("f", str(tmp_path / "*.csv"), "csv")
     offsets: dict[str, int] = {}
     first = [x.record for x in lines(source, offsets) if x.record]
     assert first == [{"time": "2027-01-01T00:00:00Z", "value": "1.5"}]
@@ -32,7 +32,7 @@ def test_a_partial_last_line_waits_for_its_newline(tmp_path):
 def test_rotation_finishes_the_old_file_and_reads_the_new_one_from_its_start(tmp_path):
     path = tmp_path / "plant.jsonl"
     path.write_text(json.dumps({"v": 1}) + "\n")
-    source = FileSource("f", str(tmp_path / "plant.jsonl*"), "jsonl")
+    source = FileTail("f", str(tmp_path / "plant.jsonl*"), "jsonl")
     offsets: dict[str, int] = {}
     assert [x.record for x in lines(source, offsets)] == [{"v": 1}]
     with path.open("a") as f:
@@ -47,7 +47,7 @@ def test_rotation_finishes_the_old_file_and_reads_the_new_one_from_its_start(tmp
 def test_truncation_in_place_reads_again_from_the_start(tmp_path):
     path = tmp_path / "a.jsonl"
     path.write_text("".join(json.dumps({"v": i}) + "\n" for i in range(5)))
-    source = FileSource("f", str(path), "jsonl")
+    source = FileTail("f", str(path), "jsonl")
     offsets: dict[str, int] = {}
     assert len(lines(source, offsets)) == 5
     ident = file_identity(os.stat(path))
@@ -60,7 +60,7 @@ def test_truncation_in_place_reads_again_from_the_start(tmp_path):
 def test_unreadable_lines_carry_their_reason(tmp_path):
     path = tmp_path / "a.csv"
     path.write_text("time,value\n1,2,3\n\n2027-01-01T00:00:00Z,4\n")
-    source = FileSource("f", str(path), "csv")
+    source = FileTail("f", str(path), "csv")
     got = lines(source, {})
     assert [x.error for x in got if x.error] == ["expected 2 columns, found 3"]
     assert [x.record for x in got if x.record] == [{"time": "2027-01-01T00:00:00Z", "value": "4"}]
@@ -69,7 +69,7 @@ def test_unreadable_lines_carry_their_reason(tmp_path):
 def test_start_at_end_skips_what_is_already_there(tmp_path):
     path = tmp_path / "a.jsonl"
     path.write_text(json.dumps({"v": 1}) + "\n")
-    source = FileSource("f", str(path), "jsonl", start_at="end")
+    source = FileTail("f", str(path), "jsonl", start_at="end")
     offsets: dict[str, int] = {}
     assert lines(source, offsets) == []
     with path.open("a") as f:
@@ -88,7 +88,7 @@ def test_a_symlink_out_of_the_glob_folder_is_refused_once_and_never_read(tmp_pat
     (export / "leak.csv").symlink_to(secret)
     (export / "sub").symlink_to(secret.parent, target_is_directory=True)
     (export / "alias.csv").symlink_to(export / "line-1.csv")  # inside: still allowed
-    source = FileSource("f", str(export / "*.csv"), "csv")
+    source = FileTail("f", str(export / "*.csv"), "csv")
     offsets: dict[str, int] = {}
     with caplog.at_level("WARNING", logger="limitwatch.files"):
         got = lines(source, offsets)
@@ -97,7 +97,7 @@ def test_a_symlink_out_of_the_glob_folder_is_refused_once_and_never_read(tmp_pat
     assert all(b"12345" not in x.raw for x in got)
     warnings = [r.getMessage() for r in caplog.records if "outside the folder" in r.getMessage()]
     assert len(warnings) == 1 and str(export / "leak.csv") in warnings[0]
-    deep = FileSource("g", str(export / "*" / "*.csv"), "csv")
+    deep = FileTail("g", str(export / "*" / "*.csv"), "csv")
     assert [x for x in lines(deep, {}) if x.record] == []  # export/sub -> private: refused
 
 

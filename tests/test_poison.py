@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
 from limitwatch.config import FileSourceConfig, MqttSourceConfig
 from limitwatch.engine import MonitorSettings, StreamMonitor
-from limitwatch.ingest.files import KEPT_PREFIX, MAX_READ, FileSource
+from limitwatch.ingest.files import KEPT_PREFIX, MAX_READ, FileTail
 from limitwatch.ingest.payload import REASONS, PayloadError, RowParser, SourceParser
 from limitwatch.model import Reading
 from limitwatch.pipeline import Parsed, Pipeline, PipelineBroken
@@ -99,7 +99,7 @@ def parse_lines(folder: Path, received: float) -> list[Parsed]:
     source = jsonl_source(folder)
     rows = RowParser(source, future_tolerance=300.0)
     items = []
-    for line in FileSource("export", source.glob, "jsonl").poll({}):
+    for line in FileTail("export", source.glob, "jsonl").poll({}):
         if line.record is None and line.error is None:
             continue  # a blank line: only the offset moves
         if line.record is None:
@@ -459,7 +459,7 @@ def test_a_line_over_the_limit_is_a_dead_letter_and_reading_goes_on(tmp_path):
     path = tmp_path / "a.jsonl"
     long_line = b'{"s": "' + b"x" * (MAX_READ + 10) + b'"}\n'
     path.write_bytes(b'{"v": 1}\n' + long_line + b'{"v": 2}\n')
-    source = FileSource("f", str(tmp_path / "*.jsonl"), "jsonl")
+    source = FileTail("f", str(tmp_path / "*.jsonl"), "jsonl")
     offsets: dict[str, int] = {}
     got = []
     for _ in range(3):
@@ -476,7 +476,7 @@ def test_a_line_over_the_limit_is_a_dead_letter_and_reading_goes_on(tmp_path):
 def test_an_overlong_line_still_being_written_waits_for_its_end(tmp_path):
     path = tmp_path / "a.jsonl"
     path.write_bytes(b"x" * (MAX_READ + 5))
-    source = FileSource("f", str(tmp_path / "*.jsonl"), "jsonl")
+    source = FileTail("f", str(tmp_path / "*.jsonl"), "jsonl")
     assert list(source.poll({})) == []
     with path.open("ab") as f:
         f.write(b"\n")
@@ -489,7 +489,7 @@ def test_json_lines_that_broke_the_reader_are_unreadable_lines(tmp_path):
     deep = b'{"v": ' + b"[" * 1000 + b"]" * 1000 + b"}"
     big = b'{"v": ' + b"9" * 5000 + b"}"
     path.write_bytes(deep + b"\n" + big + b"\n" + b'{"v": 3}\n')
-    got = list(FileSource("f", str(tmp_path / "*.jsonl"), "jsonl").poll({}))
+    got = list(FileTail("f", str(tmp_path / "*.jsonl"), "jsonl").poll({}))
     assert [(x.record, x.reason) for x in got][2] == ({"v": 3}, "unreadable-line")
     assert "nest too deeply" in (got[0].error or "") and "digits" in (got[1].error or "")
 

@@ -17,5 +17,5 @@ def test_the_connection_process_names_its_module_and_source_in_ps(broker, tmp_pa
     finally:
         assert svc.stop() == 0
     assert b"-c" not in argv
-    assert argv[1:3] == [b"-m", b"limitwatch.ingest.mqtt_process"]
+    assert argv[1:3] == [b"-m", b"limitwatch.ingest.mqtt.process"]
     assert argv[-2:] == [b"--source", b"gateway"]

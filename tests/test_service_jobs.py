@@ -191,7 +191,7 @@ def test_a_wall_clock_step_back_keeps_receipt_times_and_stale_checks_and_health_
     publisher = Publisher(broker.port)
     try:
         with running(Service(config, clock=wall, monotonic=mono)) as service:
-            wait_until(lambda: service.mqtt["gateway"].subscribed.is_set(), what="subscribed")
+            wait_until(lambda: service.sources["gateway"].subscribed.is_set(), what="subscribed")
             wait_until(lambda: get_health(health_port)[0] == 200, what="healthy")
             # Readings before the step, through the real broker, timed at receipt.
             publisher.send_all([("plant/line-1/level", f"20.{i}") for i in range(5)])

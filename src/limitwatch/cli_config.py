@@ -40,8 +40,6 @@ from limitwatch.cli import InputProblem, main
 from limitwatch.config import (
     Config,
     ConfigError,
-    FileSourceConfig,
-    MqttSourceConfig,
     check_files,
     check_secrets,
     load_config,
@@ -319,7 +317,7 @@ def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:
         merged = config.entry_settings(i)
         streams.append(f"{entry.match}: {_stream_line(merged)}")
     section("streams", streams)
-    section("sources", [_source_line(s) for s in config.sources])
+    section("sources", [s.describe() for s in config.sources])
     section("notifiers", [f"{n.get('name')} ({n.get('type')})" for n in config.notifiers])
     routes = [
         f"{r.name}: streams {r.streams!r}, {'/'.join(r.severities)}"
@@ -372,21 +370,6 @@ def _stream_line(s: Any) -> str:
     if s.unit:
         parts.append(s.unit)
     return ", ".join(parts)
-
-
-def _source_line(source: MqttSourceConfig | FileSourceConfig) -> str:
-    if isinstance(source, MqttSourceConfig):
-        tls = ", TLS" if source.tls is not None else ""
-        filters = ", ".join(t.filter for t in source.topics)
-        return (
-            f"{source.name} (mqtt {source.protocol}{tls}): {source.host}:{source.port} as "
-            f"{source.client_id!r}, topics {filters}"
-        )
-    names = f"stream column {source.stream!r}" if source.stream else repr(source.stream_fixed)
-    return (
-        f"{source.name} (file, {source.format}): {source.glob} every "
-        f"{format_duration(source.poll_every)}, {names}"
-    )
 
 
 __all__ = ["ExpectedFalseAlarms", "check", "expected_false_alarms", "summary"]

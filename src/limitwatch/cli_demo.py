@@ -168,7 +168,7 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
             # connect_async returns at once; readings published before the subscription exists
             # would be dropped by the broker (no session yet), so wait for it.
             _wait_for(
-                lambda: alive() and all(c.subscribed.is_set() for c in service.mqtt.values()),
+                lambda: alive() and all(s.health().ready for s in service.sources.values()),
                 20,
                 "the demo's service to subscribe on the private broker",
             )

@@ -17,7 +17,9 @@ Sections (``config/example.toml`` documents every key):
 ``[alerts]`` and ``[[alerts.severity]]``
     the alert lifecycle (:class:`~limitwatch.alerts.lifecycle.AlertPolicy`).
 ``[[sources]]``
-    ``type = "mqtt"`` or ``type = "file"``, each with its own keys.
+    ``type`` picks a source plugin (``mqtt``, ``file``, or one registered in the
+    ``limitwatch.sources`` entry-point group); its keys are checked by that plugin's settings
+    model, a subclass of :class:`SourceSettings`.
 ``[[notifiers]]``
     ``type`` picks a notifier plugin; its keys are checked by that plugin's settings model.
 ``[[routes]]``
@@ -72,6 +74,7 @@ from pydantic import (
     ConfigDict,
     Field,
     PrivateAttr,
+    TypeAdapter,
     ValidationError,
     ValidationInfo,
     field_validator,
@@ -91,13 +94,6 @@ from limitwatch.alerts.messages import StreamInfo
 from limitwatch.durations import format_duration, parse_duration
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.payload import field_path
-from limitwatch.ingest.streamid import stream_id_problem
-from limitwatch.ingest.topics import (
-    TopicMapper,
-    filters_overlap,
-    validate_filter,
-    validate_topic_name,
-)
 from limitwatch.stats.baseline import Baseline, sigma_problem
 from limitwatch.stats.constants import D2
 from limitwatch.stats.rules import DETECTORS, parse_rules
@@ -108,14 +104,12 @@ __all__ = [
     "BudgetSection",
     "Config",
     "ConfigError",
-    "FileSourceConfig",
-    "MqttSourceConfig",
-    "MqttTopic",
     "Problem",
     "Route",
     "SecretRef",
     "ServiceSection",
     "SeverityEntry",
+    "SourceSettings",
     "StoreSection",
     "StreamConfig",
     "StreamEntry",
@@ -568,10 +562,6 @@ class AlertsSection(_Section):
 # --------------------------------------------------------------------------- [[sources]]
 
 
-def _protocol(value: Any) -> Any:
-    return "5" if value == 5 and not isinstance(value, bool) else value
-
-
 class TlsSettings(_Section):
     """``[sources.tls]``: TLS to the broker. Without ``ca_file`` the system's CA store is used."""
 
@@ -586,210 +576,33 @@ class TlsSettings(_Section):
         return self
 
 
-_NUMBER_HAS_NO_FIELDS = "a plain-number payload has no fields; {key} needs payload = 'json'"
 
+class SourceSettings(_Section):
+    """What every ``[[sources]]`` entry has. A source plugin's ``Settings`` derives from this,
+    with ``type: Literal["<its entry-point name>"]`` and its own keys; unknown keys are refused
+    as everywhere else. The hooks below let ``check`` and the config's advice cover a source
+    without knowing it: each gets the entry's key path (``sources[2]``)."""
 
-class MqttTopic(_Section):
-    """``[[sources.topics]]``: one topic filter, the stream template, and the payload layout."""
-
-    filter: str
-    stream: str
-    payload: Literal["number", "json"]
-    value: FieldPath = "value"
-    time: FieldPath | None = None
-    time_format: TimeFormat = "auto"
-    seq: FieldPath | None = None
-    qos: Literal[0, 1] = 1
-
-    # Field validators run in field order and see the fields before them in ``info.data``, so
-    # each problem is found even when another key of the same entry is wrong too.
-
-    @field_validator("filter")
-    @classmethod
-    def _filter(cls, value: str) -> str:
-        validate_filter(value)
-        return value
-
-    @field_validator("stream")
-    @classmethod
-    def _template(cls, value: str, info: ValidationInfo) -> str:
-        topic_filter = info.data.get("filter")
-        if topic_filter is not None:
-            TopicMapper(topic_filter, value)  # StreamTemplateError is a ValueError
-        # The template's own text is part of every stream id it makes (topics are checked as
-        # they arrive); a control character here would refuse every message.
-        problem = stream_id_problem(re.sub(r"\{[^{}]*\}", "", value))
-        if problem is not None:
-            raise ValueError(f"the text of this stream template {problem}")
-        return value
-
-    @field_validator("time", "seq")
-    @classmethod
-    def _json_only(cls, value: str | None, info: ValidationInfo) -> str | None:
-        if value is not None and info.data.get("payload") == "number":
-            raise ValueError(_NUMBER_HAS_NO_FIELDS.format(key=info.field_name))
-        return value
-
-    @model_validator(mode="after")
-    def _layout(self) -> MqttTopic:
-        if self.payload == "number" and "value" in self.model_fields_set:
-            raise _fail((("value",), _NUMBER_HAS_NO_FIELDS.format(key="value")))
-        return self
-
-
-class MqttSourceConfig(_Section):
-    """``type = "mqtt"``: one broker connection (persistent session, QoS 1, manual acks)."""
-
-    type: Literal["mqtt"]
+    type: str
     name: Name
-    host: str = Field(min_length=1)
-    port: int = Field(1883, ge=1, le=65535)
-    protocol: Annotated[Literal["5", "3.1.1"], BeforeValidator(_protocol)] = "5"
-    client_id: str = Field(min_length=1)
-    keepalive_s: int = Field(30, ge=0, le=65535)
-    session_expiry: Duration = 86400.0
-    receive_maximum: int = Field(1000, ge=1, le=65535)
-    username: str | None = None
-    password_env: EnvName | None = None
-    password_file: ConfigPath | None = None
-    tls: TlsSettings | None = None
-    status_topic: str | None = None
-    """Where ``online``/``offline`` is published, retained; filled in as
-    ``limitwatch/<client_id>/status`` when left out (so it is None only on a failed load)."""
-    max_payload_bytes: int = Field(65536, ge=1, le=268_435_455)
     max_streams: int = Field(10_000, ge=1)
     """Most streams this source may feed; readings for further new streams are refused."""
-    reconnect_min_s: int = Field(1, ge=1, le=3600)
-    reconnect_max_s: int = Field(60, ge=1, le=86400)
-    reorder_within: PositiveDuration | None = None
-    """Hold each reading this long and apply a stream's held readings in sequence (else time)
-    order: a reading overtaken by up to this much is applied in its place instead of being
-    refused as ``late``. Off by default: it delays every reading of the source by this much."""
-    topics: list[MqttTopic] = Field(min_length=1)
 
-    @model_validator(mode="before")
-    @classmethod
-    def _default_status_topic(cls, data: Any) -> Any:
-        if isinstance(data, Mapping) and "status_topic" not in data:
-            client_id = data.get("client_id")
-            if isinstance(client_id, str) and client_id:
-                data = {**data, "status_topic": f"limitwatch/{client_id}/status"}
-        return data
+    def secret_refs(self, where: str) -> list[SecretRef]:
+        """Secrets this entry points at (read at start and by ``check``)."""
+        return []
 
-    @field_validator("client_id")
-    @classmethod
-    def _client_id(cls, value: str) -> str:
-        if len(value.encode("utf-8")) > 65535 or "\x00" in value:
-            raise ValueError("a client id is at most 65535 bytes of UTF-8 without U+0000")
-        return value
+    def files_needed(self, where: str) -> list[tuple[str, Path]]:
+        """Files that must exist (certificates, CA files), each with its key path."""
+        return []
 
-    @field_validator("session_expiry")
-    @classmethod
-    def _expiry(cls, value: float) -> float:
-        # MQTT 5.0 section 3.1.2.11.2: a four-byte integer of seconds
-        if value > 0xFFFFFFFF:
-            raise ValueError("must be at most 4294967295 seconds (about 136 years)")
-        return float(math.ceil(value))
+    def advice(self, where: str) -> list[Problem]:
+        """Things allowed but probably not meant; ``check`` prints them as warnings."""
+        return []
 
-    @field_validator("status_topic")
-    @classmethod
-    def _status(cls, value: str | None) -> str | None:
-        if value is None:
-            return None
-        try:
-            validate_topic_name(value)
-        except ValueError as exc:
-            raise ValueError(
-                f"{value!r} cannot be the status topic ({exc}); the default is "
-                "limitwatch/<client_id>/status, so set status_topic when the client id holds "
-                "'+' or '#'"
-            ) from None
-        return value
-
-    @model_validator(mode="after")
-    def _connection(self) -> MqttSourceConfig:
-        problems: list[tuple[tuple[str | int, ...], str]] = []
-        if self.password_env is not None and self.password_file is not None:
-            problems.append((("password_file",), "give password_env or password_file, not both"))
-        has_password = self.password_env is not None or self.password_file is not None
-        if has_password and self.username is None and self.protocol == "3.1.1":
-            problems.append(
-                (
-                    ("username",),
-                    "MQTT 3.1.1 sends a password only with a user name (section 3.1.2.9); "
-                    "set username",
-                )
-            )
-        if self.reconnect_max_s < self.reconnect_min_s:
-            problems.append(
-                (
-                    ("reconnect_max_s",),
-                    f"must not be below reconnect_min_s ({self.reconnect_min_s})",
-                )
-            )
-        if problems:
-            raise _fail(*problems)
-        return self
-
-    @property
-    def subscriptions(self) -> tuple[tuple[str, int], ...]:
-        """``(filter, qos)`` pairs to subscribe to."""
-        return tuple((t.filter, t.qos) for t in self.topics)
-
-
-class FileSourceConfig(_Section):
-    """``type = "file"``: CSV or JSON-lines files matching a glob, polled on an interval."""
-
-    type: Literal["file"]
-    name: Name
-    glob: str = Field(min_length=1)
-    format: Literal["csv", "jsonl"]
-    poll_every: PositiveDuration = 5.0
-    value: str = Field(min_length=1)
-    time: str = Field(min_length=1)
-    time_format: TimeFormat = "auto"
-    stream: str | None = Field(None, min_length=1)
-    stream_fixed: str | None = Field(None, min_length=1)
-    seq: str | None = Field(None, min_length=1)
-    start_at: Literal["beginning", "end"] = "beginning"
-    max_streams: int = Field(10_000, ge=1)
-    """Most streams this source may feed; rows for further new streams are refused."""
-
-    @field_validator("glob")
-    @classmethod
-    def _glob(cls, value: str, info: ValidationInfo) -> str:
-        return str(_resolve_path(Path(value), info))
-
-    @field_validator("value", "time", "stream", "seq")
-    @classmethod
-    def _path(cls, value: str | None, info: ValidationInfo) -> str | None:
-        # CSV columns are plain header names; JSON lines are read by dotted paths.
-        if value is not None and info.data.get("format") == "jsonl":
-            field_path(value)
-        return value
-
-    @field_validator("stream_fixed")
-    @classmethod
-    def _fixed(cls, value: str | None) -> str | None:
-        problem = None if value is None else stream_id_problem(value)
-        if problem is not None:
-            raise ValueError(f"this stream id {problem}")
-        return value
-
-    @model_validator(mode="after")
-    def _one_stream(self) -> FileSourceConfig:
-        if (self.stream is None) == (self.stream_fixed is None):
-            raise _fail(
-                (
-                    ("stream",),
-                    "give stream (the column or field naming each row's stream) or "
-                    "stream_fixed (one stream id for every row), exactly one of them",
-                )
-            )
-        return self
-
-
-Source = Annotated[MqttSourceConfig | FileSourceConfig, Field(discriminator="type")]
+    def describe(self) -> str:
+        """One line for ``check``'s summary."""
+        return f"{self.name} ({self.type})"
 
 
 # --------------------------------------------------------------------------- [[routes]] [budget]
@@ -887,7 +700,7 @@ class Config(_Section):
     defaults: StreamOptions = _section()
     streams: list[StreamEntry] = []
     alerts: AlertsSection = _section()
-    sources: list[Source] = []
+    sources: list[SourceSettings] = []
     notifiers: list[dict[str, Any]] = []
     routes: list[Route] = []
     budget: BudgetSection = _section()
@@ -917,6 +730,53 @@ class Config(_Section):
         if extra:
             raise _fail(*extra)
         return model
+
+    @field_validator("sources", mode="before")
+    @classmethod
+    def _sources(cls, entries: Any, info: ValidationInfo) -> Any:
+        """Each entry by the settings model of the source plugin its ``type`` names: a
+        discriminated union of the types the file uses, so only their plugins are imported."""
+        from limitwatch.ingest.registry import SOURCES
+        from limitwatch.plugins import PluginError, UnknownPluginError
+
+        if not isinstance(entries, list):
+            return entries  # pydantic says what it should be
+        problems: list[tuple[tuple[str | int, ...], str]] = []
+        models: dict[str, type[SourceSettings]] = {}
+        usable: list[tuple[int, Mapping[str, Any]]] = []
+        for i, raw in enumerate(entries):
+            if not isinstance(raw, Mapping):
+                problems.append(((i,), f"should be a table, not {_show(raw)}"))
+                continue
+            kind = raw.get("type")
+            if not isinstance(kind, str):
+                problems.append(((i, "type"), _needs_type("source")))
+                continue
+            try:
+                models[kind] = SOURCES.settings_model(kind)
+            except (UnknownPluginError, PluginError) as exc:
+                problems.append(((i, "type"), str(exc)))
+                continue
+            usable.append((i, raw))
+        chosen: list[SourceSettings] = []
+        if models:
+            union: Any = (
+                next(iter(models.values()))
+                if len(models) == 1
+                else Annotated[
+                    typing.Union[tuple(models.values())],  # noqa: UP007 -- built at run time
+                    Field(discriminator="type"),
+                ]
+            )
+            adapter: TypeAdapter[Any] = TypeAdapter(union)
+            for i, raw in usable:
+                try:
+                    chosen.append(adapter.validate_python(dict(raw), context=info.context))
+                except ValidationError as exc:
+                    problems.extend(((i, *loc), msg) for loc, msg in _as_problems(exc, union))
+        if problems:
+            raise _fail(*problems)
+        return chosen
 
     @field_validator("notifiers")
     @classmethod
@@ -1089,27 +949,7 @@ class Config(_Section):
         secrets), with the key path to report a problem at."""
         refs: list[SecretRef] = []
         for i, source in enumerate(self.sources):
-            if not isinstance(source, MqttSourceConfig):
-                continue
-            if source.password_env is not None or source.password_file is not None:
-                key = "password_env" if source.password_env is not None else "password_file"
-                refs.append(
-                    SecretRef(
-                        f"sources[{i}].{key}",
-                        source.password_env,
-                        source.password_file,
-                        f"broker password for source {source.name!r}",
-                    )
-                )
-            if source.tls is not None and source.tls.key_file is not None:
-                refs.append(
-                    SecretRef(
-                        f"sources[{i}].tls.key_file",
-                        None,
-                        source.tls.key_file,
-                        f"TLS client key for source {source.name!r}",
-                    )
-                )
+            refs.extend(source.secret_refs(f"sources[{i}]"))
         for i, entry in enumerate(self.notifiers):
             bases = dict.fromkeys(
                 key.rsplit("_", 1)[0]
@@ -1138,48 +978,7 @@ class Config(_Section):
         if not self.sources:
             out.append(Problem("sources", "no sources: the service would read nothing"))
         for i, source in enumerate(self.sources):
-            if not isinstance(source, MqttSourceConfig):
-                continue
-            has_password = source.password_env is not None or source.password_file is not None
-            if has_password and source.tls is None:
-                out.append(
-                    Problem(
-                        f"sources[{i}].tls",
-                        "the broker password would travel unencrypted; add [sources.tls]",
-                    )
-                )
-            if source.protocol == "5" and source.session_expiry == 0:
-                out.append(
-                    Problem(
-                        f"sources[{i}].session_expiry",
-                        "0 ends the session at every disconnect, so the broker keeps nothing "
-                        "for us while the service is down",
-                    )
-                )
-            for j, topic in enumerate(source.topics):
-                where = f"sources[{i}].topics[{j}]"
-                if topic.qos == 0:
-                    out.append(
-                        Problem(
-                            f"{where}.qos",
-                            "QoS 0: the broker keeps nothing for us while the service is down, "
-                            "so readings sent then are lost",
-                        )
-                    )
-                for k in range(j):
-                    other = source.topics[k]
-                    if filters_overlap(other.filter, topic.filter) and (
-                        topic.seq is None or other.seq is None
-                    ):
-                        out.append(
-                            Problem(
-                                f"{where}.filter",
-                                f"overlaps sources[{i}].topics[{k}].filter "
-                                f"({other.filter!r}); a broker may deliver a message once per "
-                                "matching subscription, and without seq a copy is counted "
-                                "twice",
-                            )
-                        )
+            out.extend(source.advice(f"sources[{i}]"))
         seen: dict[str, int] = {}
         for i, entry in enumerate(self.streams):
             if entry.match in seen:
@@ -1522,11 +1321,7 @@ def check_files(config: Config) -> list[Problem]:
     folder the database goes in. (File-source globs may match nothing yet; that is allowed.)"""
     wanted: list[tuple[str, Path]] = []
     for i, source in enumerate(config.sources):
-        if isinstance(source, MqttSourceConfig) and source.tls is not None:
-            for key in ("ca_file", "cert_file"):
-                value = getattr(source.tls, key)
-                if value is not None:
-                    wanted.append((f"sources[{i}].tls.{key}", value))
+        wanted.extend(source.files_needed(f"sources[{i}]"))
     for i, entry in enumerate(config.notifiers):
         for key, value in entry.items():
             if key.endswith("_file") and not _SECRET_KEY.search(key[:-5]) and value is not None:
@@ -1540,3 +1335,21 @@ def check_files(config: Config) -> list[Problem]:
     if not folder.is_dir():
         problems.append(Problem("store.path", f"the folder {folder} does not exist"))
     return problems
+
+
+_MOVED = {
+    "MqttSourceConfig": "limitwatch.ingest.mqtt.settings",
+    "MqttTopic": "limitwatch.ingest.mqtt.settings",
+    "FileSourceConfig": "limitwatch.ingest.files.settings",
+}
+"""Settings models that moved to their source plugins' packages; still importable from here.
+(Imported on first use: those modules build on this one.)"""
+
+
+def __getattr__(name: str) -> Any:
+    module = _MOVED.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    import importlib
+
+    return getattr(importlib.import_module(module), name)

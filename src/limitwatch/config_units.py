@@ -16,6 +16,7 @@ duration key is covered without a list to keep up to date.
 from __future__ import annotations
 
 import re
+import sys
 import tomllib
 import types
 import typing
@@ -46,9 +47,20 @@ def _is_duration(annotation: Any) -> bool:
 
 @cache
 def duration_keys() -> frozenset[str]:
-    """Names of every config key that holds a duration."""
+    """Names of every config key that holds a duration: in the config's own models and in
+    the settings models of every installed source plugin (and the models beside them)."""
+    from limitwatch.ingest.registry import SOURCES
+    from limitwatch.plugins import PluginError
+
+    spaces = [vars(config_module)]
+    for kind in SOURCES.known_types():
+        try:
+            model = SOURCES.settings_model(kind)
+        except PluginError:  # a broken plugin is reported where the config uses it
+            continue
+        spaces.append(vars(sys.modules[model.__module__]))
     keys = set()
-    for model in vars(config_module).values():
+    for model in (m for space in spaces for m in space.values()):
         if isinstance(model, type) and issubclass(model, BaseModel):
             for name, field in model.model_fields.items():
                 annotation: Any = field.annotation

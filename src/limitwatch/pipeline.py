@@ -46,6 +46,7 @@ from dataclasses import dataclass, field
 
 from limitwatch.alerts.lifecycle import AlertBook, BookReport
 from limitwatch.engine import MonitorSettings, StreamMonitor
+from limitwatch.ingest.base import Parsed
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError
@@ -62,20 +63,6 @@ many seconds' worth)."""
 
 class PipelineBroken(RuntimeError):
     """A commit failed after monitors moved on; only a restart from the checkpoints is safe."""
-
-
-@dataclass(frozen=True, slots=True)
-class Parsed:
-    """One intake item after payload parsing: a reading, or the reason it has none."""
-
-    source: str
-    raw: bytes
-    reading: Reading | None = None
-    error: str | None = None
-    detail: str = ""
-    position: tuple[str, int] | None = None
-    """For a file line: (file identity, offset after the line), committed with the item when
-    a batch is applied one item at a time."""
 
 
 @dataclass

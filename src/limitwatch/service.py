@@ -2,9 +2,12 @@
 
 Threads and who owns what:
 
-* each MQTT source runs its paho-mqtt client in a process of its own
-  (:mod:`limitwatch.ingest.mqtt_process`); a reader thread per source only puts the deliveries
-  it passes up on ``intake``, and acknowledgements go back down once their batch committed;
+* sources are plugins (:mod:`limitwatch.ingest.base`, found by type name through the
+  ``limitwatch.sources`` entry-point group); the worker knows none of them by name. A source
+  that is pushed to puts items on ``intake`` from its own thread (the MQTT source: a reader
+  thread per connection process, :mod:`limitwatch.ingest.mqtt.process`); a source that is asked
+  (files) is polled by a scheduled job on the worker. Either way the worker parses, commits,
+  and only then has the source acknowledge, in arrival order;
 * the APScheduler ``BackgroundScheduler`` only puts :class:`Job` requests on ``intake``;
 * the **worker** (the thread that calls :meth:`Service.run`) is the only one that touches the
   monitors and the store: it takes a batch (bounded by count and time), evaluates, commits in
@@ -47,19 +50,16 @@ from limitwatch.alerts.delivery_watch import DeliveryCollector
 from limitwatch.alerts.lifecycle import AlertBook
 from limitwatch.alerts.outbox import OutboxWorker
 from limitwatch.clocks import CARRY_ON_AT_MOST_S, ServiceClock, describe_step
-from limitwatch.config import Config, FileSourceConfig, MqttSourceConfig
+from limitwatch.config import Config, SourceSettings
 from limitwatch.engine import MonitorSettings
-from limitwatch.ingest.files import FileLine, FileSource
-from limitwatch.ingest.mqtt import Delivery, MqttSettings
-from limitwatch.ingest.mqtt_process import MqttProcess
-from limitwatch.ingest.payload import PayloadError, RowParser, SourceParser
+from limitwatch.ingest.base import Source, SourceContext
+from limitwatch.ingest.registry import build_source
 from limitwatch.ingest.reorder import ReorderBuffer
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken, store_failed
 from limitwatch.refusals import RefusalLog
-from limitwatch.secrets import resolve_secret
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
 from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
@@ -121,17 +121,15 @@ class Service:
         self.metrics = Metrics()
         self.refusals = RefusalLog()
         self._stopping = threading.Event()
-        self.mqtt: dict[str, MqttProcess] = {}
-        self._mqtt_parsers: dict[str, SourceParser] = {}
-        self.files: dict[str, FileSource] = {}
-        self._row_parsers: dict[str, RowParser] = {}
-        self._offsets: dict[str, dict[str, int]] = {}
+        self.sources: dict[str, Source] = {}
+        """Every configured source by name, built from its plugin at start."""
         self._reorder: dict[str, ReorderBuffer] = {}
-        """MQTT sources with ``reorder_within``: their readings wait here, in order."""
+        """Sources with ``reorder_within``: their readings wait here, in order."""
         self._unacked: dict[str, deque[list[Any]]] = {}
         """Per source with a reorder window, its deliveries in arrival order as [delivery,
-        committed]: acknowledgements go in arrival order, so a held reading holds back the
-        acknowledgement of every later one until it is committed too."""
+        readings of it held and not yet committed]: acknowledgements go in arrival order, so
+        a held reading holds back the acknowledgement of every later one until it is
+        committed too."""
         self.last_commit: float | None = None
         self._heartbeat: float | None = None
         """``time.monotonic()`` when the worker last came round its loop or committed a batch
@@ -144,6 +142,17 @@ class Service:
         self.scheduler: BackgroundScheduler | None = None
         self.status: StatusServer | None = None
         self._lock: InstanceLock | None = None
+
+    @property
+    def mqtt(self) -> dict[str, Any]:
+        """The connection processes of the sources that have one, by source name (what
+        ``limitwatch bench`` and tests watch for a subscription); the worker itself goes
+        through :attr:`sources` only."""
+        return {
+            name: process
+            for name, source in self.sources.items()
+            if (process := getattr(source, "process", None)) is not None
+        }
 
     # -- settings lookups ---
 
@@ -179,23 +188,8 @@ class Service:
         self.metrics.registry.register(DeliveryCollector(self.outbox.watch, self.clock))
         self.outbox.start()
 
-        for source in cfg.sources:
-            if isinstance(source, MqttSourceConfig):
-                self._start_mqtt(source)
-            elif isinstance(source, FileSourceConfig):
-                columns: dict[str, str | None] = {"value": source.value, "time": source.time}
-                columns |= {"stream": source.stream, "seq": source.seq}
-                self.files[source.name] = FileSource(
-                    source.name,
-                    source.glob,
-                    source.format,
-                    source.start_at,
-                    columns=columns if source.format == "csv" else None,
-                )
-                self._row_parsers[source.name] = RowParser(
-                    source, future_tolerance=cfg.service.future_tolerance
-                )
-                self._offsets[source.name] = self.store.file_offsets(source.name)
+        for settings in cfg.sources:
+            self._start_source(settings)
 
         self.scheduler = self._make_scheduler()
         self.scheduler.start()
@@ -232,52 +226,32 @@ class Service:
                 describe_step(-behind).removeprefix("back by "),
             )
 
-    def _start_mqtt(self, source: MqttSourceConfig) -> None:
-        password = resolve_secret(
-            env=source.password_env, file=source.password_file, what=f"sources.{source.name}"
+    def _start_source(self, settings: SourceSettings) -> None:
+        """Build a configured source from its plugin and start it; pushed sources begin
+        putting items on ``intake``, polled ones get a job in :meth:`_make_scheduler`."""
+        assert self.store is not None
+        context = SourceContext(
+            future_tolerance=self.config.service.future_tolerance,
+            positions=self.store.file_offsets(settings.name),
+            state_file=self.config.store.path.with_name(
+                f"{self.config.store.path.name}.source-{settings.name}.json"
+            ),
         )
-        tls = source.tls
-
-        def path(value: object) -> str | None:
-            return None if value is None else str(value)
-
-        settings = MqttSettings(
-            name=source.name,
-            host=source.host,
-            port=source.port,
-            client_id=source.client_id,
-            topics=source.subscriptions,
-            protocol=source.protocol,
-            keepalive_s=int(source.keepalive_s),
-            session_expiry_s=int(source.session_expiry),
-            receive_maximum=source.receive_maximum,
-            username=source.username,
-            password=password,
-            tls=tls is not None,
-            ca_file=None if tls is None else path(tls.ca_file),
-            cert_file=None if tls is None else path(tls.cert_file),
-            key_file=None if tls is None else path(tls.key_file),
-            status_topic=source.status_topic,
-            reconnect_min_s=source.reconnect_min_s,
-            reconnect_max_s=source.reconnect_max_s,
-        )
-        self._mqtt_parsers[source.name] = SourceParser(
-            source, future_tolerance=self.config.service.future_tolerance
-        )
+        source = build_source(settings, context)
+        self.sources[source.name] = source
         if source.reorder_within is not None:
             self._reorder[source.name] = ReorderBuffer(source.reorder_within)
             self._unacked[source.name] = deque()
-        client = MqttProcess(settings, self.intake)
-        self.mqtt[source.name] = client
-        # Read when /metrics is scraped, so the figures are current whether or not anyone
-        # asked /health.
-        self.metrics.source_connected.labels(source.name).set_function(
-            lambda: 1.0 if client.connected.is_set() else 0.0
-        )
-        self.metrics.connection_restarts.labels(source.name).set_function(
-            lambda: float(client.restarts)
-        )
-        client.start()
+        if source.connection:
+            # Read when /metrics is scraped, so the figures are current whether or not anyone
+            # asked /health.
+            self.metrics.source_connected.labels(source.name).set_function(
+                lambda: 1.0 if source.health().connected else 0.0
+            )
+            self.metrics.connection_restarts.labels(source.name).set_function(
+                lambda: float(source.health().restarts)
+            )
+        source.start(self.intake)
 
     def _make_scheduler(self) -> BackgroundScheduler:
         cfg = self.config
@@ -297,8 +271,9 @@ class Service:
             self._job_every[job.id] = seconds
             scheduler.add_job(ask, "interval", seconds=seconds, id=job.id, **options)
 
-        for name, source in ((s.name, s) for s in cfg.sources if isinstance(s, FileSourceConfig)):
-            every(source.poll_every, "poll-files", name, next_run_time=_now_dt())
+        for name, source in self.sources.items():
+            if source.poll_every is not None:
+                every(source.poll_every, source.poll_job, name, next_run_time=_now_dt())
         every(cfg.service.stale_check_every, "stale-check")
         every(cfg.service.alert_tick_every, "alert-tick")
         every(cfg.service.refit_check_every, "refits")
@@ -356,8 +331,11 @@ class Service:
         """Disconnect and release everything; safe to call after a failed start."""
         if self.scheduler is not None and self.scheduler.running:
             self.scheduler.shutdown(wait=False)
-        for client in self.mqtt.values():
-            client.close()
+        for source in self.sources.values():
+            try:
+                source.close()
+            except Exception:  # one source's failure to close must not keep the others open
+                log.exception("source %s could not be closed cleanly", source.name)
         if self.outbox is not None:
             self.outbox.stop()
         if self.status is not None:
@@ -392,9 +370,9 @@ class Service:
             saved = self.pipeline.checkpoint_all(self.clock())
             log.info("checkpoints of %d streams written", saved)
 
-    def _take(self) -> tuple[list[Delivery], list[Job]]:
+    def _take(self) -> tuple[list[Any], list[Job]]:
         cfg = self.config.service
-        batch: list[Delivery] = []
+        batch: list[Any] = []
         jobs: list[Job] = []
         try:
             first = self.intake.get(timeout=0.5)
@@ -403,7 +381,7 @@ class Service:
         # batch_wait counts from when the first reading arrived, not from when the worker got
         # to it: a reading that queued while the previous batch was being committed has
         # already waited, and waiting the whole batch_wait again would double its delay.
-        stamped = first.received_at if isinstance(first, Delivery) else None
+        stamped = None if isinstance(first, Job) else first.received_at
         waited = 0.0 if stamped is None else self.timekeeper.wall() - stamped
         deadline = time.monotonic() + min(cfg.batch_wait, max(0.0, cfg.batch_wait - waited))
         item = first
@@ -429,21 +407,31 @@ class Service:
         self.metrics.queue_depth.set(self.intake.qsize())
         return batch, jobs
 
-    def _parse_delivery(self, d: Delivery) -> Parsed:
+    def _parse(self, source: Source, item: Any, received_at: float) -> list[Parsed]:
+        """``item`` parsed by its source (none, one, or several readings and refusals), with
+        the worker's own refusals: a new stream past the source's ``max_streams``, and a
+        parser's bug (a dead letter, never a stop)."""
         try:
-            # The connection process stamped the wall clock; a step back since must not make
-            # a reading timed at receipt older than the one before it.
-            received = self.timekeeper.receipt(d.received_at)
-            reading = self._mqtt_parsers[d.source].parse(d.topic, d.payload, received)
-        except PayloadError as exc:
-            return Parsed(d.source, _envelope(d), error=exc.reason, detail=exc.message)
+            parsed = source.parse(item, received_at)
         except Exception as exc:  # a parser bug must not stop the service: a dead letter
-            log.exception("source %s: a message on %r could not be parsed", d.source, d.topic)
-            return Parsed(d.source, _envelope(d), error="parse-error", detail=_failure(exc))
-        refused = self._refuse_new_stream(d.source, reading.stream)
-        if refused is not None:
-            return Parsed(d.source, _envelope(d), error=TOO_MANY_STREAMS, detail=refused)
-        return Parsed(d.source, _envelope(d), reading=reading)
+            log.exception("source %s: an item could not be parsed", source.name)
+            return [source.refused(item, "parse-error", _failure(exc))]
+        if parsed is None:
+            return []
+        found = [parsed] if isinstance(parsed, Parsed) else list(parsed)
+        for i, part in enumerate(found):
+            if part.reading is None:
+                continue
+            refused = self._refuse_new_stream(source.name, part.reading.stream)
+            if refused is not None:
+                found[i] = source.refused(item, TOO_MANY_STREAMS, refused)
+        return found
+
+    def _parse_pushed(self, item: Any) -> list[Parsed]:
+        # The source stamped the wall clock where the item arrived; a step back since must
+        # not make a reading timed at receipt older than the one before it.
+        received = self.timekeeper.receipt(item.received_at)
+        return self._parse(self.sources[item.source], item, received)
 
     def _refuse_new_stream(self, source: str, stream: str) -> str | None:
         """Why a reading for ``stream`` is refused (its source already feeds ``max_streams``
@@ -458,39 +446,40 @@ class Service:
     def _holding(self) -> bool:
         return any(len(buffer) for buffer in self._reorder.values())
 
-    def _process_deliveries(self, batch: list[Delivery], *, flush: bool = False) -> None:
+    def _process_deliveries(self, batch: list[Any], *, flush: bool = False) -> None:
         if not self._reorder:
-            items = [self._parse_delivery(d) for d in batch]
+            items = [p for d in batch for p in self._parse_pushed(d)]
             self._commit(items)
-            by_source: dict[str, list[Delivery]] = {}
+            by_source: dict[str, list[Any]] = {}
             for d in batch:  # arrival order, only after the commit
                 by_source.setdefault(d.source, []).append(d)
             for source, deliveries in by_source.items():
-                self.mqtt[source].ack(deliveries)
+                self.sources[source].acknowledge(deliveries)
             return
         self._process_reordered(batch, flush)
 
-    def _process_reordered(self, batch: list[Delivery], flush: bool) -> None:
+    def _process_reordered(self, batch: list[Any], flush: bool) -> None:
         """As :meth:`_process_deliveries`, with the readings of sources that have a reorder
         window held back until their time is up (see :mod:`limitwatch.ingest.reorder`)."""
         now = self.clock()
         items: list[Parsed] = []
-        direct: dict[str, list[Delivery]] = {}
+        direct: dict[str, list[Any]] = {}
         committed: list[list[Any]] = []
         for d in batch:
-            parsed = self._parse_delivery(d)
+            parts = self._parse_pushed(d)
             buffer = self._reorder.get(d.source)
             if buffer is None:
-                items.append(parsed)
+                items.extend(parts)
                 direct.setdefault(d.source, []).append(d)
                 continue
-            entry = [d, False]
+            entry = [d, 0]  # the delivery, and how many of its readings are held
             self._unacked[d.source].append(entry)
-            if parsed.reading is None:  # a dead letter has no place in the order
-                items.append(parsed)
-                committed.append(entry)
-            else:
-                buffer.hold(parsed.reading, (parsed, entry), d.received_at)
+            for parsed in parts:
+                if parsed.reading is None:  # a dead letter has no place in the order
+                    items.append(parsed)
+                else:
+                    entry[1] += 1
+                    buffer.hold(parsed.reading, (parsed, entry), d.received_at)
         for buffer in self._reorder.values():
             if len(buffer):
                 for _, (parsed, entry) in buffer.release(now, everything=flush):
@@ -499,15 +488,15 @@ class Service:
         if items:
             self._commit(items)
         for entry in committed:  # only after the commit
-            entry[1] = True
+            entry[1] -= 1
         for source, deliveries in direct.items():
-            self.mqtt[source].ack(deliveries)
+            self.sources[source].acknowledge(deliveries)
         for source, waiting in self._unacked.items():
             ready = []
-            while waiting and waiting[0][1]:
+            while waiting and waiting[0][1] == 0:
                 ready.append(waiting.popleft()[0])
             if ready:
-                self.mqtt[source].ack(ready)
+                self.sources[source].acknowledge(ready)
 
     def _commit(
         self, items: list[Parsed], offsets: dict[str, dict[str, int]] | None = None
@@ -554,8 +543,8 @@ class Service:
     def _run_job(self, job: Job) -> None:
         assert self.pipeline is not None and self.book is not None and self.store is not None
         now = self.clock()
-        if job.kind == "poll-files" and job.source is not None:
-            self.poll_files(job.source)
+        if job.source is not None:  # a source's poll
+            self.poll_source(job.source)
         elif job.kind == "stale-check":
             signals = self.pipeline.stale_signals(now, self._cadence_for)
             if signals:
@@ -608,69 +597,33 @@ class Service:
             self.metrics.floods.labels("ended").inc(ended)
             log.warning("flood over: notifications go out one by one again")
 
-    def poll_files(self, name: str) -> int:
-        """Read every new complete line of a file source, committing in batches; return the
-        number of lines used."""
-        source = self.files[name]
-        parser = self._row_parsers[name]
-        committed = self._offsets[name]
-        before = dict(committed)
-        pending: dict[str, int] = dict(committed)  # the source may set offsets (start_at=end)
+    def poll_source(self, name: str) -> int:
+        """Read everything new from a polled source, committing in batches of ``batch_max``
+        with the positions it reached; return the number of items used."""
+        source = self.sources[name]
+        items: list[Any] = []
         batch: list[Parsed] = []
-        advanced: dict[str, int] = {}
         used = 0
-        for line in source.poll(pending):
+        for item in source.poll():
             if self._stopping.is_set():
                 break
-            advanced[line.file_id] = line.end_offset
-            if line.record is not None or line.error is not None:
-                batch.append(self._parse_line(line, parser))
+            items.append(item)
+            batch.extend(self._parse(source, item, self.clock()))
             if len(batch) >= self.config.service.batch_max:
                 used += len(batch)
-                self._commit(batch, {name: advanced})
-                committed.update(advanced)
-                batch, advanced = [], {}
-        # offsets the source itself moved (start_at=end skips a file's existing lines)
-        for ident, offset in pending.items():
-            if before.get(ident) != offset and ident not in advanced and ident not in committed:
-                advanced[ident] = offset
-        if batch or advanced:
+                self._commit(batch, {name: source.positions(items)})
+                source.acknowledge(items)
+                items, batch = [], []
+        positions = source.positions(items)
+        if batch or positions:
             used += len(batch)
-            self._commit(batch, {name: advanced})
-            committed.update(advanced)
+            self._commit(batch, {name: positions})
+            source.acknowledge(items)
         return used
 
-    def _parse_line(self, line: FileLine, parser: RowParser) -> Parsed:
-        start = line.end_offset - len(line.raw) if line.start is None else line.start
-        where = f"{line.path}, line {line.line}" if line.line else f"{line.path} at byte {start}"
-        at = (line.file_id, line.end_offset)
-        if line.record is None:
-            detail = f"{where}: {line.error}"
-            return Parsed(line.source, line.raw, error=line.reason, detail=detail, position=at)
-        try:
-            reading = parser.parse(line.record, self.clock())
-        except PayloadError as exc:
-            return Parsed(
-                line.source,
-                line.raw,
-                error=exc.reason,
-                detail=f"{where}: {exc.message}",
-                position=at,
-            )
-        except Exception as exc:  # a parser bug must not stop the service: a dead letter
-            log.exception("source %s: a line of %s could not be parsed", line.source, line.path)
-            detail = f"{where}: {_failure(exc)}"
-            return Parsed(line.source, line.raw, error="parse-error", detail=detail, position=at)
-        refused = self._refuse_new_stream(line.source, reading.stream)
-        if refused is not None:
-            return Parsed(
-                line.source,
-                line.raw,
-                error=TOO_MANY_STREAMS,
-                detail=f"{where}: {refused}",
-                position=at,
-            )
-        return Parsed(line.source, line.raw, reading=reading, position=at)
+    def poll_files(self, name: str) -> int:
+        """:meth:`poll_source` under its earlier name (``limitwatch bench`` times it)."""
+        return self.poll_source(name)
 
     # -- health ---
 
@@ -679,7 +632,8 @@ class Service:
         return 0.0 if beat is None else time.monotonic() - beat
 
     def health(self) -> dict[str, Any]:
-        sources = {name: c.connected.is_set() for name, c in self.mqtt.items()}
+        states = {name: s.health() for name, s in self.sources.items() if s.connection}
+        sources = {name: bool(h.connected) for name, h in states.items()}
         broken = self.pipeline is not None and self.pipeline.broken
         quiet = None if self._heartbeat is None else round(self._since_last_round(), 3)
         stalled = quiet is not None and quiet > self.config.service.stall_after
@@ -696,7 +650,8 @@ class Service:
             "worker": "stalled" if stalled else "failed" if broken else "running",
             "worker_last_round_s_ago": quiet,
             "sources": sources,
-            "errors": {n: c.last_error for n, c in self.mqtt.items() if c.last_error},
+            "errors": {n: h.last_error for n, h in states.items() if h.last_error},
+            "source_state": {n: dict(h.detail) for n, h in states.items() if h.detail},
             "queue_depth": self.intake.qsize(),
             "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
             "last_commit": None if self.last_commit is None else format_time(self.last_commit),
@@ -724,11 +679,6 @@ class Service:
                 "overdue": since > every + max(every, JOB_GRACE_S),
             }
         return out
-
-
-def _envelope(d: Delivery) -> bytes:
-    """What a dead letter keeps of an MQTT message: topic and payload, so it can be replayed."""
-    return d.topic.encode("utf-8", "backslashreplace") + b"\n" + d.payload
 
 
 def _failure(exc: BaseException) -> str:

@@ -136,15 +136,23 @@ class TopicLike(Protocol):
 
 
 class FileSourceLike(Protocol):
-    """What :class:`RowParser` needs from a ``type = "file"`` source."""
+    """What :class:`RowParser` needs from a ``type = "file"`` source (read only: the config's
+    models are frozen)."""
 
-    format: Literal["csv", "jsonl"]
-    value: str
-    time: str
-    time_format: TimeFormat
-    seq: str | None
-    stream: str | None
-    stream_fixed: str | None
+    @property
+    def format(self) -> Literal["csv", "jsonl"]: ...
+    @property
+    def value(self) -> str: ...
+    @property
+    def time(self) -> str: ...
+    @property
+    def time_format(self) -> TimeFormat: ...
+    @property
+    def seq(self) -> str | None: ...
+    @property
+    def stream(self) -> str | None: ...
+    @property
+    def stream_fixed(self) -> str | None: ...
 
 
 # --------------------------------------------------------------------------- field paths

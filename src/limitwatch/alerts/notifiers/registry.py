@@ -1,5 +1,7 @@
 """Find notifier classes by type name, built-in or third-party, without importing them all.
 
+The loading itself is :mod:`limitwatch.plugins`, shared with the sources.
+
 Why entry points for the built-ins too: one path for every notifier means a plugin is exactly as
 capable as a built-in, and a test of the built-ins is a test of the plugin mechanism. Why lazy:
 importing a channel's module pulls in its client library (paho, smtplib, ...); a site that only
@@ -26,79 +28,45 @@ Python Packaging User Guide, "Entry points specification"
 from __future__ import annotations
 
 from collections.abc import Mapping
-from functools import cache
-from importlib.metadata import EntryPoint, entry_points
 from typing import Any
 
 from limitwatch.alerts.notifiers.base import Notifier, NotifierSettings
+from limitwatch.plugins import PluginError, PluginKind, UnknownPluginError
 
 GROUP = "limitwatch.notifiers"
 
 
-class UnknownNotifierError(LookupError):
+class UnknownNotifierError(UnknownPluginError):
     """No notifier type of that name is installed; the message lists those that are."""
 
 
-class NotifierPluginError(Exception):
+class NotifierPluginError(PluginError):
     """A registered notifier could not be loaded or does not keep the notifier contract."""
 
 
-def _entry_points() -> dict[str, EntryPoint]:
-    found: dict[str, EntryPoint] = {}
-    for ep in entry_points(group=GROUP):
-        other = found.get(ep.name)
-        if other is not None and other.value != ep.value:
-            raise NotifierPluginError(
-                f"two installed packages register a notifier type {ep.name!r} ({other.value} and "
-                f"{ep.value}); uninstall one of them."
-            )
-        found[ep.name] = ep
-    return found
+NOTIFIERS: PluginKind[Notifier] = PluginKind(
+    GROUP,
+    "notifier",
+    Notifier,
+    NotifierSettings,
+    unknown=UnknownNotifierError,
+    broken=NotifierPluginError,
+)
+"""The shared loader (:mod:`limitwatch.plugins`) set up for notifiers."""
 
 
 def known_types() -> list[str]:
     """Names of every installed notifier type, sorted; nothing is imported."""
-    return sorted(_entry_points())
+    return NOTIFIERS.known_types()
 
 
-@cache
 def notifier_class(type_name: str) -> type[Notifier]:
     """The class registered as ``type_name``, imported on first use.
 
     Raises :class:`UnknownNotifierError` naming the installed types, or
     :class:`NotifierPluginError` when the plugin fails to import or is not a proper notifier.
     """
-    eps = _entry_points()
-    ep = eps.get(type_name)
-    if ep is None:
-        raise UnknownNotifierError(
-            f"unknown notifier type {type_name!r}; installed types are: "
-            f"{', '.join(sorted(eps)) or '(none)'}"
-        )
-    try:
-        cls = ep.load()
-    except Exception as exc:
-        raise NotifierPluginError(
-            f"notifier type {type_name!r} ({ep.value}) could not be loaded: {exc}"
-        ) from exc
-    if not (isinstance(cls, type) and issubclass(cls, Notifier)):
-        raise NotifierPluginError(
-            f"notifier type {type_name!r} ({ep.value}) is not a subclass of "
-            "limitwatch.alerts.notifiers.base.Notifier"
-        )
-    settings = getattr(cls, "Settings", None)
-    if not (isinstance(settings, type) and issubclass(settings, NotifierSettings)):
-        raise NotifierPluginError(
-            f"notifier type {type_name!r} ({ep.value}) has no Settings model derived from "
-            "NotifierSettings"
-        )
-    declared = settings.model_fields["type"].annotation
-    if getattr(declared, "__args__", None) != (type_name,):
-        raise NotifierPluginError(
-            f"notifier type {type_name!r} ({ep.value}): its Settings.type must be "
-            f'Literal["{type_name}"], the name it is registered under'
-        )
-    return cls
+    return NOTIFIERS.load(type_name)
 
 
 def settings_model(type_name: str) -> type[NotifierSettings]:
@@ -113,10 +81,7 @@ def validate_settings(raw: Mapping[str, Any]) -> NotifierSettings:
     """
     type_name = raw.get("type")
     if not isinstance(type_name, str):
-        raise UnknownNotifierError(
-            f"a notifier needs a 'type' naming what kind it is; installed types are: "
-            f"{', '.join(known_types()) or '(none)'}"
-        )
+        raise NOTIFIERS.unknown_error(type_name)
     return settings_model(type_name).model_validate(dict(raw))
 
 

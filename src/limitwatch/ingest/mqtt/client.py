@@ -1,9 +1,9 @@
 """MQTT intake with at-least-once delivery and acknowledgement after commit.
 
 The paho-mqtt network thread only ever puts an :data:`Arrival` on a queue; the connection process
-(:mod:`limitwatch.ingest.mqtt_process`) passes it up to the service as a :class:`Delivery`. All
+(:mod:`limitwatch.ingest.mqtt.process`) passes it up to the service as a :class:`Delivery`. All
 parsing, evaluation and database work happens in the service's single worker, and
-:meth:`MqttSource.ack` is called for each delivery, in arrival order, once the transaction
+:meth:`MqttConnection.ack` is called for each delivery, in arrival order, once the transaction
 holding its effect has committed. With a fixed client id, QoS 1 and a persistent session the
 broker keeps everything not yet acknowledged -- across our crashes and its restarts -- and
 sends it again.
@@ -53,7 +53,7 @@ class Delivery(NamedTuple):
     qos: int
     retained: bool
     epoch: int = 0
-    """Which connection process received it (see :mod:`limitwatch.ingest.mqtt_process`): an
+    """Which connection process received it (see :mod:`limitwatch.ingest.mqtt.process`): an
     acknowledgement only goes back through the process that got the message."""
 
 
@@ -85,11 +85,15 @@ class MqttSettings:
     cert_file: str | None = None
     key_file: str | None = None
     status_topic: str | None = None
+    online_payload: str | bytes = "online"
+    """Published retained on ``status_topic`` at every connect."""
+    offline_payload: str | bytes = "offline"
+    """The last will on ``status_topic``, and what a clean close publishes there."""
     reconnect_min_s: float = 1.0
     reconnect_max_s: float = 60.0
 
 
-class MqttSource:
+class MqttConnection:
     """One broker connection feeding ``intake``."""
 
     def __init__(
@@ -132,7 +136,7 @@ class MqttSource:
                 cert_reqs=ssl.CERT_REQUIRED,
             )
         if s.status_topic:
-            client.will_set(s.status_topic, "offline", qos=1, retain=True)
+            client.will_set(s.status_topic, s.offline_payload, qos=1, retain=True)
         # paho's hint says int, but it sleeps for these seconds and takes a float as well
         client.reconnect_delay_set(
             min_delay=s.reconnect_min_s,  # type: ignore[arg-type]
@@ -164,13 +168,23 @@ class MqttSource:
         s = self.settings
         try:
             if s.status_topic and self.connected.is_set():
-                info = self._client.publish(s.status_topic, "offline", qos=1, retain=True)
+                info = self._client.publish(
+                    s.status_topic, s.offline_payload, qos=1, retain=True
+                )
                 info.wait_for_publish(timeout=5)
             self._client.disconnect()
         except Exception:  # closing must not fail the shutdown
             log.exception("mqtt %s: error while disconnecting", self.name)
         finally:
             self._client.loop_stop()
+
+    def publish(self, topic: str, payload: bytes, qos: int, retain: bool) -> None:
+        """Publish without waiting (paho queues it; while disconnected, QoS 1 waits for the
+        reconnect): a source's own messages to its senders, such as a rebirth request."""
+        try:
+            self._client.publish(topic, payload, qos=qos, retain=retain)
+        except Exception:  # a refused publish must not end the connection process
+            log.exception("mqtt %s: could not publish on %s", self.name, topic)
 
     def ack(self, mid: int, qos: int) -> None:
         """Acknowledge one delivery; called by the worker after its batch committed."""
@@ -190,7 +204,9 @@ class MqttSource:
             self.last_error = None
             client.subscribe(list(self.settings.topics))
             if self.settings.status_topic:
-                client.publish(self.settings.status_topic, "online", qos=1, retain=True)
+                client.publish(
+                    self.settings.status_topic, self.settings.online_payload, qos=1, retain=True
+                )
             self.connected.set()
             self._on_change()
             log.info(

@@ -8,10 +8,10 @@ connection process has a core of its own for paho; the service's process keeps t
 
 What crosses between them, over two one-way pipes:
 
-* up (connection -> service): lists of :data:`~limitwatch.ingest.mqtt.Arrival` tuples and
+* up (connection -> service): lists of :data:`~limitwatch.ingest.mqtt.client.Arrival` tuples and
   :class:`Status` records, sent by one forwarding thread as they pile up, so a busy stream
   costs one pipe message per batch rather than per reading; the service's side makes each
-  arrival a :class:`~limitwatch.ingest.mqtt.Delivery`;
+  arrival a :class:`~limitwatch.ingest.mqtt.client.Delivery`;
 * down (service -> connection): the acknowledgements of a committed batch, in arrival order,
   and the request to close.
 
@@ -44,7 +44,7 @@ from multiprocessing.connection import Connection
 from typing import Any, NamedTuple
 
 from limitwatch import LOG_FORMAT
-from limitwatch.ingest.mqtt import Delivery, MqttSettings, MqttSource
+from limitwatch.ingest.mqtt.client import Delivery, MqttConnection, MqttSettings
 
 log = logging.getLogger("limitwatch.mqtt")
 
@@ -66,7 +66,7 @@ class Status(NamedTuple):
     closed: bool = False
 
 
-def _status(source: MqttSource, closed: bool = False) -> Status:
+def _status(source: MqttConnection, closed: bool = False) -> Status:
     return Status(
         source.connected.is_set(),
         source.subscribed.is_set(),
@@ -79,7 +79,7 @@ def _status(source: MqttSource, closed: bool = False) -> Status:
 # --------------------------------------------------------------------- the connection process
 
 
-CHILD_MODULE = "limitwatch.ingest.mqtt_process"
+CHILD_MODULE = "limitwatch.ingest.mqtt.process"
 """What the connection process runs: ``python -m`` this module, with the two pipe ends' file
 descriptors and ``--source NAME`` as arguments, so ``ps`` shows which process it is and for
 which source. A plain new interpreter rather than ``multiprocessing``'s "spawn", which runs the
@@ -104,16 +104,16 @@ def child_main() -> None:
 
 
 def _serve(settings: MqttSettings, up: Connection, down: Connection, log_level: int) -> None:
-    """Run one :class:`MqttSource` until the service asks it to close or goes away."""
+    """Run one :class:`MqttConnection` until the service asks it to close or goes away."""
     logging.basicConfig(level=log_level, format=LOG_FORMAT, stream=sys.stderr)
     local: queue.SimpleQueue[Any] = queue.SimpleQueue()
-    source: MqttSource | None = None
+    source: MqttConnection | None = None
 
     def changed() -> None:
         if source is not None:
             local.put(_status(source))
 
-    source = MqttSource(settings, local, on_change=changed)
+    source = MqttConnection(settings, local, on_change=changed)
     forwarder = threading.Thread(
         target=_forward, args=(local, up), name="limitwatch-forward", daemon=True
     )
@@ -126,6 +126,8 @@ def _serve(settings: MqttSettings, up: Connection, down: Connection, log_level: 
                 ack = source.ack
                 for mid, qos in message[1]:
                     ack(mid, qos)
+            elif message[0] == "publish":
+                source.publish(*message[1:])
             elif message[0] == "close":
                 source.close()
                 local.put(_status(source, closed=True))
@@ -172,7 +174,7 @@ def _drain(local: queue.SimpleQueue[Any], items: list[Any]) -> bool:
 
 
 class MqttProcess:
-    """The service's handle on one connection process; it looks like a :class:`MqttSource`
+    """The service's handle on one connection process; it looks like a :class:`MqttConnection`
     to the service (``connected``, ``subscribed``, ``last_error``, ``connects``) and puts the
     deliveries it receives on ``intake``."""
 
@@ -302,6 +304,17 @@ class MqttProcess:
                 len(acks),
             )
 
+    def publish(self, topic: str, payload: bytes, qos: int = 1, retain: bool = False) -> bool:
+        """Have the connection process publish a message; False when it is gone (the caller
+        may ask again later)."""
+        if self._down is None:
+            return False
+        try:
+            self._down.send(("publish", topic, payload, qos, retain))
+        except (BrokenPipeError, OSError):
+            return False
+        return True
+
     def close(self, timeout: float = 15.0) -> None:
         """Ask the connection process to say ``offline`` and disconnect; wait for it to end."""
         self._closing.set()
@@ -326,7 +339,7 @@ class MqttProcess:
 
 if __name__ == "__main__":
     # Run the module under its own name: what the process pickles up the pipe must name
-    # limitwatch.ingest.mqtt_process, not __main__, for the service to read it.
-    from limitwatch.ingest.mqtt_process import child_main as _child_main
+    # limitwatch.ingest.mqtt.process, not __main__, for the service to read it.
+    from limitwatch.ingest.mqtt.process import child_main as _child_main
 
     _child_main()

@@ -91,7 +91,7 @@ def glob_folder(pattern: str) -> str:
     return folder
 
 
-class FileSource:
+class FileTail:
     """Finds new complete lines in the files matching a glob."""
 
     def __init__(

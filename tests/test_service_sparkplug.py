@@ -1,0 +1,217 @@
+"""The Sparkplug B source through the real service, a real Mosquitto and a small edge node
+(tests/sparkplug_node.py) publishing real protobuf births, data by alias, a seq gap, an unknown
+alias, a death and rebirths."""
+
+from __future__ import annotations
+
+import json
+import threading
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+import paho.mqtt.client as mqtt
+import pytest
+
+from limitwatch.config import load_config
+from tests.broker import free_port
+from tests.service_harness import ServiceProcess, count, process_gone, query, wait_until
+from tests.sparkplug_node import EdgeNode
+
+pytestmark = pytest.mark.integration
+
+T0 = int((time.time() - 86_400) * 1000)  # yesterday, in ms: readings are never in the future
+METRICS = {"oil/temp": 1, "ram/force": 2}
+
+
+def sparkplug_config(folder: Path, port: int, health_port: int | None = None) -> Path:
+    listen = f'metrics_listen = "127.0.0.1:{health_port}"\n' if health_port else ""
+    path = folder / "site.toml"
+    path.write_text(
+        f"""
+[store]
+path = "service.db"
+
+[service]
+batch_wait = "50ms"
+{listen}
+[defaults]
+learn_count = 10
+
+[[sources]]
+type = "sparkplug"
+name = "presses"
+host = "127.0.0.1"
+port = {port}
+client_id = "limitwatch-host"
+host_id = "limitwatch-test"
+edge_nodes = ["plant-a/press-1"]
+rebirth_every = "200ms"
+reconnect_min_s = 1
+reconnect_max_s = 2
+"""
+    )
+    return path
+
+
+def health(port: int) -> dict:
+    try:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=5) as answer:
+            return json.loads(answer.read())
+    except urllib.error.HTTPError as exc:
+        return json.loads(exc.read())
+    except urllib.error.URLError:
+        return {}
+
+
+class StateWatcher:
+    """Keeps the last STATE message of our host id (retained) as the spec's other hosts and
+    edge nodes would see it."""
+
+    def __init__(self, port: int, client_id: str = "state-watcher") -> None:
+        self.last: dict | None = None
+        self.retained = False
+        self.client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id)
+        self.client.on_message = self._on_message
+        self.client.connect("127.0.0.1", port)
+        self.client.subscribe("spBv1.0/STATE/limitwatch-test", qos=1)
+        self.client.loop_start()
+
+    def _on_message(self, client, userdata, message) -> None:
+        self.last = json.loads(message.payload)
+        self.retained = bool(message.retain)
+
+    def close(self) -> None:
+        self.client.loop_stop()
+        self.client.disconnect()
+
+
+def values(i: int) -> dict[str, float]:
+    return {"oil/temp": 40.0 + (i % 7) * 0.25, "ram/force": 120.0 + (i % 5)}
+
+
+def test_births_aliases_gaps_deaths_and_rebirths_through_the_service(broker, tmp_path):
+    health_port = free_port()
+    config = sparkplug_config(tmp_path, broker.port, health_port)
+    assert load_config(config).sources[0].type == "sparkplug"  # what `limitwatch check` reads
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)
+    watcher = StateWatcher(broker.port)
+    sent = 0  # readings sent that should be stored
+    try:
+        wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
+        wait_until(lambda: health(health_port).get("sources") == {"presses": True})
+        wait_until(lambda: watcher.last is not None, what="the STATE message")
+        assert watcher.last["online"] is True and isinstance(watcher.last["timestamp"], int)
+        late = StateWatcher(broker.port, "late-watcher")  # subscribes after: gets it retained
+        wait_until(lambda: late.last is not None, what="the retained STATE message")
+        assert late.retained and late.last == watcher.last
+        late.close()
+
+        node.connect()
+        node.birth(values(0), T0)
+        sent += 2
+        for i in range(1, 11):
+            node.data(values(i), T0 + 60_000 * i)
+            sent += 2
+        wait_until(lambda: count(db, "readings") == sent, what="the birth and data by alias")
+        assert node.rebirths_asked() == 0
+
+        # a seq gap: one message lost on the way. The one in hand is used, a rebirth asked.
+        node.seq += 1
+        node.data(values(11), T0 + 60_000 * 11)
+        sent += 2
+        assert node.wait_for_command(), "the edge node was asked for a rebirth"
+        wait_until(lambda: node.rebirths_asked() >= 1)
+        wait_until(lambda: count(db, "dead_letters", "reason LIKE 'seq-gap:%'") == 1)
+        node.birth(values(12), T0 + 60_000 * 12)  # the rebirth: same bdSeq, seq from 0
+        sent += 2
+
+        # an alias the births never gave: refused, never guessed, and a rebirth asked again
+        time.sleep(0.3)  # past rebirth_every
+        node.send("NDATA", [{"alias": 99, "timestamp": T0 + 60_000 * 13, "double_value": 5.0}])
+        wait_until(lambda: count(db, "dead_letters", "reason LIKE 'unknown-alias:%'") == 1)
+        wait_until(lambda: node.rebirths_asked() >= 2, what="a second rebirth request")
+        for i in range(14, 20):
+            node.data(values(i), T0 + 60_000 * i)
+            sent += 2
+        wait_until(lambda: count(db, "readings") == sent, what="data after the rebirth")
+
+        # the node goes offline: a dead letter and /health say so; data before a new birth
+        # is refused; the next birth (a new bdSeq) brings it back
+        node.die()
+        wait_until(lambda: count(db, "dead_letters", "reason LIKE 'node-offline:%'") == 1)
+        state = health(health_port)["source_state"]["presses"]
+        assert "reported offline" in state["edge_nodes"]["plant-a/press-1"]
+        node.birth(values(20), T0 + 60_000 * 20)
+        sent += 2
+        for i in range(21, 30):
+            node.data(values(i), T0 + 60_000 * i)
+            sent += 2
+        wait_until(lambda: count(db, "readings") == sent, what="data after the new birth")
+        assert "born" in health(health_port)["source_state"]["presses"]["edge_nodes"][
+            "plant-a/press-1"
+        ]
+    finally:
+        node.close()
+        code = svc.stop()
+    assert code == 0
+    wait_until(lambda: watcher.last is not None and watcher.last["online"] is False)
+    watcher.close()
+    # every reading once, in the streams the template names
+    streams = {s for (s,) in query(db, "SELECT DISTINCT stream FROM readings")}
+    assert streams == {"plant-a/press-1/oil/temp", "plant-a/press-1/ram/force"}
+    assert query(db, "SELECT count(DISTINCT stream || time) FROM readings")[0][0] == sent
+    reasons = sorted(r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters"))
+    assert reasons == ["node-offline", "seq-gap", "unknown-alias"]
+
+
+def test_kill_9_mid_stream_loses_nothing(broker, tmp_path):
+    """The service is killed with SIGKILL twice while an edge node publishes (QoS 1) 400
+    messages of two metrics each: afterwards every reading is stored exactly once, read with
+    the birth that came before the crash."""
+    config = sparkplug_config(tmp_path, broker.port)
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
+    node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)
+    node.connect()
+    node.birth(values(0), T0)
+    total = 400
+
+    def publish() -> None:
+        for i in range(1, total + 1):
+            node.data(values(i), T0 + 1000 * i)
+            if i % 25 == 0:
+                time.sleep(0.25)
+
+    sender = threading.Thread(target=publish)
+    sender.start()
+    kills = 0
+    at_kill = []
+    try:
+        while kills < 2:
+            before = count(db, "readings")
+            wait_until(lambda b=before: count(db, "readings") >= b + 60, what="readings flowing")
+            connection = svc.children()
+            svc.kill()
+            at_kill.append(count(db, "readings"))
+            kills += 1
+            for pid in connection:
+                wait_until(lambda pid=pid: process_gone(pid), timeout=10, what=f"{pid} to exit")
+            svc = ServiceProcess(config).start()
+            wait_until(
+                lambda svc=svc, k=kills: svc.logs().count("connected to") > k, what="reconnected"
+            )
+        sender.join()
+        wait_until(lambda: count(db, "readings") == 2 * (total + 1), timeout=60, what="all")
+    finally:
+        node.close()
+        assert svc.stop() == 0
+    assert all(n < 2 * (total + 1) for n in at_kill), at_kill  # killed mid-stream
+    assert query(db, "SELECT count(DISTINCT stream || time) FROM readings")[0][0] == 2 * (total + 1)
+    reasons = {r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters")}
+    assert reasons <= {"duplicate"}, reasons
+    assert (tmp_path / "service.db.source-presses.json").stat().st_mode & 0o077 == 0
