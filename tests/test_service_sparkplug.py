@@ -139,15 +139,23 @@ def test_births_aliases_gaps_deaths_and_rebirths_through_the_service(broker, tmp
             sent += 2
         wait_until(lambda: count(db, "readings") == sent, what="data after the rebirth")
 
+        # historical metrics: in order they are readings, behind their stream they are late
+        old = {"alias": 1, "timestamp": T0 + 60_000 * 20, "double_value": 40.5}
+        node.send("NDATA", [{**old, "is_historical": True}])
+        sent += 1
+        node.send("NDATA", [{**old, "timestamp": T0 + 60_000 * 3, "is_historical": True}])
+        wait_until(lambda: count(db, "dead_letters", "reason LIKE 'late:%'") == 1)
+        wait_until(lambda: count(db, "readings") == sent, what="the historical reading")
+
         # the node goes offline: a dead letter and /health say so; data before a new birth
         # is refused; the next birth (a new bdSeq) brings it back
         node.die()
         wait_until(lambda: count(db, "dead_letters", "reason LIKE 'node-offline:%'") == 1)
         state = health(health_port)["source_state"]["presses"]
         assert "reported offline" in state["edge_nodes"]["plant-a/press-1"]
-        node.birth(values(20), T0 + 60_000 * 20)
+        node.birth(values(21), T0 + 60_000 * 21)
         sent += 2
-        for i in range(21, 30):
+        for i in range(22, 30):
             node.data(values(i), T0 + 60_000 * i)
             sent += 2
         wait_until(lambda: count(db, "readings") == sent, what="data after the new birth")
@@ -165,7 +173,7 @@ def test_births_aliases_gaps_deaths_and_rebirths_through_the_service(broker, tmp
     assert streams == {"plant-a/press-1/oil/temp", "plant-a/press-1/ram/force"}
     assert query(db, "SELECT count(DISTINCT stream || time) FROM readings")[0][0] == sent
     reasons = sorted(r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters"))
-    assert reasons == ["node-offline", "seq-gap", "unknown-alias"]
+    assert reasons == ["late", "node-offline", "seq-gap", "unknown-alias"]
 
 
 def test_kill_9_mid_stream_loses_nothing(broker, tmp_path):
@@ -215,3 +223,35 @@ def test_kill_9_mid_stream_loses_nothing(broker, tmp_path):
     reasons = {r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters")}
     assert reasons <= {"duplicate"}, reasons
     assert (tmp_path / "service.db.source-presses.json").stat().st_mode & 0o077 == 0
+
+
+def test_with_clean_session_the_broker_keeps_nothing_for_the_host(broker, tmp_path):
+    """clean_session = true, as Sparkplug 3.0 asks of host applications: what the edge node
+    publishes while the service is down is not kept for it (the persistent default keeps it,
+    as the kill -9 test shows)."""
+    config = sparkplug_config(tmp_path, broker.port)
+    config.write_text(config.read_text() + "clean_session = true\n")
+    db = tmp_path / "service.db"
+    node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)
+    node.connect()
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: "subscriptions granted" in svc.logs(), what="the service subscribed")
+        node.birth(values(0), T0)
+        wait_until(lambda: count(db, "readings") == 2, what="the birth")
+    finally:
+        assert svc.stop() == 0
+    for i in range(1, 6):  # while the service is down
+        node.data(values(i), T0 + 60_000 * i)
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: svc.logs().count("subscriptions granted") >= 2, what="subscribed")
+        node.data(values(6), T0 + 60_000 * 6)
+        wait_until(lambda: count(db, "readings") == 4, what="the readings sent after")
+        assert "session present: False" in svc.logs().rsplit("connected to", 1)[1]
+    finally:
+        node.close()
+        assert svc.stop() == 0
+    assert count(db, "readings") == 4  # the birth's two and the last message's two
+    times = sorted({t for (t,) in query(db, "SELECT time FROM readings")})
+    assert times == [T0 / 1000, T0 / 1000 + 360]

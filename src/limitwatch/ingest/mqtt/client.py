@@ -91,6 +91,10 @@ class MqttSettings:
     """The last will on ``status_topic``, and what a clean close publishes there."""
     reconnect_min_s: float = 1.0
     reconnect_max_s: float = 60.0
+    clean: bool = False
+    """A clean session (3.1.1 ``clean_session``; 5 ``clean_start`` and a session expiry of 0):
+    the broker keeps nothing for us between connections. Only for a source whose protocol
+    demands it (Sparkplug's host applications); the default keeps the session."""
 
 
 class MqttConnection:
@@ -123,7 +127,7 @@ class MqttConnection:
             mqtt.CallbackAPIVersion.VERSION2,
             client_id=s.client_id,
             protocol=mqtt.MQTTv5 if v5 else mqtt.MQTTv311,
-            clean_session=None if v5 else False,
+            clean_session=None if v5 else s.clean,
             manual_ack=True,
         )
         if s.username is not None:
@@ -153,10 +157,10 @@ class MqttConnection:
         s = self.settings
         if s.protocol == "5":
             props = Properties(PacketTypes.CONNECT)
-            props.SessionExpiryInterval = s.session_expiry_s
+            props.SessionExpiryInterval = 0 if s.clean else s.session_expiry_s
             props.ReceiveMaximum = s.receive_maximum
             self._client.connect_async(
-                s.host, s.port, keepalive=s.keepalive_s, clean_start=False, properties=props
+                s.host, s.port, keepalive=s.keepalive_s, clean_start=s.clean, properties=props
             )
         else:
             self._client.connect_async(s.host, s.port, keepalive=s.keepalive_s)
@@ -227,6 +231,7 @@ class MqttConnection:
                 log.error("mqtt %s: %s", self.name, self.last_error)
             else:
                 self.subscribed.set()
+                log.info("mqtt %s: subscriptions granted", self.name)
             self._on_change()
         except Exception:
             log.exception("mqtt %s: error in on_subscribe", self.name)

@@ -24,7 +24,7 @@ from typing import Literal
 
 from pydantic import Field, field_validator
 
-from limitwatch.config import Duration, Problem
+from limitwatch.config import Duration
 from limitwatch.ingest.mqtt.settings import BrokerSettings
 from limitwatch.ingest.streamid import stream_id_problem
 
@@ -66,6 +66,12 @@ class SparkplugSourceConfig(BrokerSettings):
     """Stream id of an edge node's own metric (no device)."""
     rebirth_every: Duration = 10.0
     """Least time between two rebirth requests to one edge node."""
+    clean_session: bool = False
+    """Connect with a clean session, as Sparkplug 3.0 requires of host applications
+    (tck-id-message-flow-phid-sparkplug-clean-session-311 and -50). Off by default: with a
+    clean session the broker keeps nothing while limitwatch is down, so readings sent then are
+    lost unless the edge nodes store and forward them (as historical metrics) while our STATE
+    says offline."""
 
     @field_validator("host_id")
     @classmethod
@@ -119,9 +125,6 @@ class SparkplugSourceConfig(BrokerSettings):
         if device is None:
             return self.node_stream.format(group=group, node=node, metric=metric)
         return self.stream.format(group=group, node=node, device=device, metric=metric)
-
-    def advice(self, where: str) -> list[Problem]:
-        return super().advice(where)
 
     def describe(self) -> str:
         tls = ", TLS" if self.tls is not None else ""

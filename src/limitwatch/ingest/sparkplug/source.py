@@ -106,6 +106,7 @@ class SparkplugSource(Source):
             status_topic=settings.state_topic,
             online_payload=state_message(True, started),
             offline_payload=state_message(False, started),
+            clean=settings.clean_session,
         )
         return cls(settings, connect, context, context.state_file)
 
