@@ -44,7 +44,7 @@ from limitwatch.charts import (
     render,
     spans,
 )
-from limitwatch.cli_charts import (
+from limitwatch.cli.charts import (
     flags_from_alerts,
     limits_in_force,
     parse_since,

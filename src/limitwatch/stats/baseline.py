@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import math
 import sys
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any, Literal, get_args
 
@@ -400,6 +401,21 @@ class Baseline:
 
 
 _METHODS: tuple[str, ...] = get_args(Method)
+
+
+
+def limits_of(numbers: Mapping[str, Any]) -> Baseline | None:
+    """A stored baseline's numbers as a :class:`Baseline`: the full fit when stored whole
+    (:meth:`Baseline.to_dict`), else from its center and sigma, else None (numbers no fit could
+    have made, from a database written by hand or by a future version)."""
+    try:
+        return Baseline.from_dict(dict(numbers))
+    except (BaselineError, KeyError, TypeError, ValueError):
+        pass
+    try:
+        return Baseline.from_limits(center=numbers["center"], sigma=numbers["sigma"])
+    except (BaselineError, KeyError, TypeError, ValueError):
+        return None
 
 
 def _opt_float(v: Any) -> float | None:

@@ -14,12 +14,12 @@ from typing import Any
 import click
 
 from limitwatch.alerts.outbox import GAVE_UP, PARKED_AT
-from limitwatch.cli import FORMATS, main
-from limitwatch.cli_operator import (
-    _db_options,
-    _emit_json,
+from limitwatch.cli.options import (
+    FORMATS,
     ago_text,
     clock,
+    db_options,
+    emit_json,
     fit_table,
     iso,
     iso_s,
@@ -92,7 +92,7 @@ def _record(row: dict[str, Any]) -> dict[str, Any]:
     }
 
 
-@main.command("notifications")
+@click.command("notifications")
 @click.option("--notifier", metavar="NAME", help="Only this notifier's notifications.")
 @click.option(
     "--state",
@@ -109,7 +109,7 @@ def _record(row: dict[str, Any]) -> dict[str, Any]:
     help="List at most this many, newest first (the summary covers all of them).",
 )
 @click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
-@_db_options
+@db_options
 def notifications_cmd(
     notifier: str | None,
     state: str,
@@ -142,7 +142,7 @@ def notifications_cmd(
     summary = summarise(rows, now)
     chosen = [r for r in rows if state == "all" or row_state(r) == state][:last]
     if fmt == "json":
-        _emit_json({"notifiers": summary, "notifications": [_record(r) for r in chosen]})
+        emit_json({"notifiers": summary, "notifications": [_record(r) for r in chosen]})
         return
     if not rows:
         which = f" for {notifier}" if notifier else ""

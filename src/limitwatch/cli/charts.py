@@ -18,7 +18,7 @@ which the rule must have signalled too.
 
 The database is found as the operator commands find it (``--db``, ``--config``,
 ``$LIMITWATCH_DB``, ``./limitwatch.db``) and opened read-only through
-:func:`limitwatch.cli_operator.opened`.
+:func:`limitwatch.cli.options.opened`.
 
 >>> from limitwatch.store import StoredReading
 >>> rs = [StoredReading("s", float(i), v, None, i, "monitoring", z, None)
@@ -47,23 +47,27 @@ import click
 
 from limitwatch import charts
 from limitwatch.alerts.lifecycle import rule_words
-from limitwatch.cli import InputProblem, main
-from limitwatch.cli_operator import (
-    _db_options,
-    _stream_row,
-    _unknown_stream,
+from limitwatch.cli.options import (
+    InputProblem,
     clock,
+    db_options,
     iso_s,
-    limits_of,
     opened,
+    stream_row,
+    unknown_stream,
 )
 from limitwatch.durations import DurationError, parse_duration
 from limitwatch.ingest.timeparse import TimeFormatError, parse_time
 from limitwatch.report import IMAGE_SIZE, AlertRow, Section, image_name, render_page
+from limitwatch.stats.baseline import limits_of
 from limitwatch.stats.constants import D2, MR_UCL_SIGMA
 from limitwatch.stats.rules import DETECTORS
 from limitwatch.stats.signal import Chart
-from limitwatch.store import Alert, Store, StoredReading
+from limitwatch.store import (
+    Alert,
+    Store,
+    StoredReading,
+)
 from limitwatch.store import Baseline as StoredBaseline
 from limitwatch.textout import num
 
@@ -341,8 +345,8 @@ def gather(
             readings = readings[-last:]
         window = f"since {iso_s(start)}" + (f", newest {last}" if last is not None else "")
     if strict and not readings:
-        if _stream_row(store, stream) is None:
-            raise _unknown_stream(stream)
+        if stream_row(store, stream) is None:
+            raise unknown_stream(stream)
         raise InputProblem(f"stream {stream!r} has no stored readings in that window ({window})")
     history = store.baseline_history(stream)
     alerts = [a for a in store.alerts(stream_glob=glob.escape(stream)) if a.stream == stream]
@@ -423,7 +427,7 @@ _since_option = click.option(
 )
 
 
-@main.command("chart")
+@click.command("chart")
 @click.argument("stream")
 @_since_option
 @click.option(
@@ -440,7 +444,7 @@ _since_option = click.option(
     type=click.Path(dir_okay=False),
     help="The picture to write: FILE.png or FILE.svg.",
 )
-@_db_options
+@db_options
 def chart_cmd(
     stream: str,
     since: str | None,
@@ -516,7 +520,7 @@ def _alert_row(a: Alert) -> AlertRow:
     )
 
 
-@main.command("report")
+@click.command("report")
 @click.option(
     "--out",
     "out_dir",
@@ -538,7 +542,7 @@ def _alert_row(a: Alert) -> AlertRow:
     metavar="N",
     help="Readings per chart (the newest N).",
 )
-@_db_options
+@db_options
 def report_cmd(
     out_dir: str,
     stream_glob: str | None,

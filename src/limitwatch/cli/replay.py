@@ -1,304 +1,31 @@
-"""The ``limitwatch`` command. Thin by design: parse options, call the library, print.
-
-Every command that reads a file reports problems as one line naming the file, line and column,
-and exits with status 1; option mistakes exit with status 2 (click's convention).
-"""
+"""``limitwatch replay``: recorded readings through the engine, every signal printed."""
 
 from __future__ import annotations
 
 import dataclasses
 import json
-import textwrap
 from collections.abc import Iterable, Iterator
 from typing import Any
 
 import click
 
-from limitwatch import __version__
-from limitwatch.durations import DurationError, parse_duration
+from limitwatch.cli.options import (
+    AR1_HELP,
+    DURATION,
+    InputProblem,
+    fit_options,
+    read_csv_rows,
+)
 from limitwatch.engine import REFUSAL_WORDS, MonitorSettings
-from limitwatch.ingest.csvfile import InputFileError, Row, read_rows
+from limitwatch.ingest.csvfile import Row
 from limitwatch.ingest.replay import replay
 from limitwatch.stats.autocorrelation import ESTIMATOR, Ar1Fit, fit_ar1
-from limitwatch.stats.baseline import Baseline, BaselineError, fit_baseline
+from limitwatch.stats.baseline import BaselineError
 from limitwatch.stats.rules import UnknownRuleError
 from limitwatch.textout import num, table
 
-FORMATS = click.Choice(["table", "json"])
 
-
-class _SecondsOrDuration(click.ParamType):
-    """``90s``, ``15m``, ``2h`` as the config writes durations, or a plain number of seconds."""
-
-    name = "duration"
-
-    def convert(
-        self, value: Any, param: click.Parameter | None, ctx: click.Context | None
-    ) -> float:
-        if isinstance(value, float):
-            return value
-        try:
-            return parse_duration(str(value))
-        except DurationError as exc:
-            self.fail(str(exc), param, ctx)
-
-
-DURATION = _SecondsOrDuration()
-
-
-class InputProblem(click.ClickException):
-    """Bad input data: one clear line, exit status 1, nothing else touched."""
-
-    exit_code = 1
-
-    def format_message(self) -> str:
-        return self.message
-
-
-@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
-@click.version_option(__version__, prog_name="limitwatch")
-def main() -> None:
-    """Watch streams of individual readings with XmR charts and raise alerts on special causes.
-
-    limitwatch is a monitoring aid, not a safety system: it does not replace interlocks, alarms
-    required by local codes, or the judgement of qualified staff.
-    """
-
-
-# -- shared options ---------------------------------------------------------------------------
-
-
-def _fit_options(func: Any) -> Any:
-    options = [
-        click.option(
-            "--method",
-            type=click.Choice(["mean", "median"]),
-            default="mean",
-            show_default=True,
-            help="Sigma from the average moving range, or from the median moving range "
-            "(robust to a few wild ranges).",
-        ),
-        click.option(
-            "--lower-bound", type=float, help="Natural lower bound (e.g. 0 for downtime)."
-        ),
-        click.option("--upper-bound", type=float, help="Natural upper bound (e.g. 100 for %)."),
-        click.option(
-            "--exclude-beyond",
-            is_flag=True,
-            help="Drop baseline points beyond the limits (and moving ranges beyond the MR limit), "
-            "refit, and repeat; every exclusion is reported.",
-        ),
-        click.option(
-            "--max-iterations",
-            type=click.IntRange(1, 50),
-            default=5,
-            show_default=True,
-            help="Cap on refits with --exclude-beyond.",
-        ),
-        click.option(
-            "--min-points",
-            type=click.IntRange(2),
-            default=10,
-            show_default=True,
-            help="Refuse to fit from fewer readings than this.",
-        ),
-    ]
-    for option in reversed(options):
-        func = option(func)
-    return func
-
-
-AR1_HELP = (
-    "For autocorrelated readings (Alwan & Roberts 1988): fit an AR(1) model "
-    "x_t - mu = phi (x_t-1 - mu) + e_t to the baseline readings by conditional least squares "
-    "and chart the one-step-ahead residuals e_t instead of the raw values."
-)
-
-
-def _rows(file: str, value: str, time: str | None = None, stream: str | None = None) -> list[Any]:
-    try:
-        return list(read_rows(file, value=value, time=time, stream=stream))
-    except InputFileError as exc:
-        raise InputProblem(str(exc)) from None
-
-
-# -- baseline ---------------------------------------------------------------------------------
-
-
-@main.group()
-def baseline() -> None:
-    """Fit and inspect baselines (phase I limits)."""
-
-
-@baseline.command("fit")
-@click.argument("file", type=click.Path(dir_okay=False, allow_dash=True))
-@click.option("--value", "value_col", required=True, help="Column holding the readings.")
-@click.option(
-    "--first", type=click.IntRange(1), help="Use only the first N readings (default: all)."
-)
-@_fit_options
-@click.option("--spec-lower", type=float, help="Lower specification limit (for Cpk, Ppk).")
-@click.option("--spec-upper", type=float, help="Upper specification limit (for Cp, Cpk, ...).")
-@click.option(
-    "--ar1-residuals",
-    is_flag=True,
-    help=AR1_HELP + " Reports phi and the residuals' limits next to the plain fit.",
-)
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
-def baseline_fit(
-    file: str,
-    value_col: str,
-    first: int | None,
-    method: str,
-    lower_bound: float | None,
-    upper_bound: float | None,
-    exclude_beyond: bool,
-    max_iterations: int,
-    min_points: int,
-    spec_lower: float | None,
-    spec_upper: float | None,
-    ar1_residuals: bool,
-    fmt: str,
-) -> None:
-    """Fit XmR limits from the readings in a CSV FILE (with a header row).
-
-    With --ar1-residuals the output adds an AR(1) model of the same readings (phi and mu, by
-    conditional least squares) and the XmR limits of its one-step-ahead residuals
-    e_t = x_t - mu - phi (x_t-1 - mu), the first reading's scaled by sqrt(1 - phi^2). Use it
-    when the lag-1 autocorrelation is high: then the plain limits are too tight. In JSON the
-    model and the residual limits are under the key "ar1".
-
-    \b
-    Examples:
-      limitwatch baseline fit downtime.csv --value minutes --first 25 --lower-bound 0
-      limitwatch baseline fit tank-level.csv --value level --ar1-residuals
-    """
-    rows = _rows(file, value_col)
-    values = [row.value for row in (rows[:first] if first else rows)]
-    try:
-        fitted = fit_baseline(
-            values,
-            method=method,  # type: ignore[arg-type]
-            lower_bound=lower_bound,
-            upper_bound=upper_bound,
-            exclude_beyond=exclude_beyond,
-            max_iterations=max_iterations,
-            min_points=min_points,
-            spec_lower=spec_lower,
-            spec_upper=spec_upper,
-        )
-        ar1 = (
-            fit_ar1(
-                values,
-                method=method,  # type: ignore[arg-type]
-                exclude_beyond=exclude_beyond,
-                max_iterations=max_iterations,
-                min_points=min_points,
-            )
-            if ar1_residuals
-            else None
-        )
-    except (BaselineError, ValueError) as exc:
-        raise InputProblem(f"{file}: {exc}") from None
-    if fmt == "json":
-        data = fitted.to_dict()
-        if ar1 is not None:
-            data["ar1"] = ar1.to_dict()
-        click.echo(json.dumps(data, indent=2))
-        return
-    click.echo(_baseline_text(fitted))
-    if ar1 is not None:
-        click.echo("")
-        click.echo(_ar1_text(ar1))
-
-
-def _baseline_text(fitted: Baseline) -> str:
-    method = "average moving range" if fitted.method == "mean" else "median moving range"
-    lcl = (
-        num(fitted.lcl)
-        if fitted.lcl is not None
-        else f"none (below the lower bound {num(fitted.lower_bound)})"
-    )
-    ucl = (
-        num(fitted.ucl)
-        if fitted.ucl is not None
-        else f"none (above the upper bound {num(fitted.upper_bound)})"
-    )
-    lines = [
-        f"Baseline from {fitted.n_used} of {fitted.n} readings, sigma from the {method}",
-        "",
-        f"  center line          {num(fitted.center)}",
-        f"  average moving range {num(fitted.mr_bar)}",
-        f"  median moving range  {num(fitted.mr_median)}",
-        f"  sigma                {num(fitted.sigma)}",
-        f"  upper limit (UCL)    {ucl}",
-        f"  lower limit (LCL)    {lcl}",
-        f"  MR upper limit       {num(fitted.mr_ucl)}",
-        f"  lag-1 autocorrelation {num(fitted.lag1_autocorrelation, 3)}",
-    ]
-    cap = fitted.capability
-    if cap is not None:
-        parts = [
-            f"{name} {num(getattr(cap, name.lower()), 3)}"
-            for name in ("Cp", "Cpk", "Pp", "Ppk")
-            if getattr(cap, name.lower()) is not None
-        ]
-        lines.append(f"  capability           {'  '.join(parts)}")
-    if fitted.exclusions:
-        lines.append("")
-        lines.append("Excluded from the fit:")
-        for ex in fitted.exclusions:
-            lines.append(
-                f"  position {ex.position}: {ex.kind} (value {num(ex.value)}, "
-                f"limit {num(ex.limit)}, pass {ex.iteration})"
-            )
-    else:
-        lines.append("  excluded             none")
-    for warning in fitted.warnings:
-        lines += _warning_lines(f"warning: {warning}")
-    return "\n".join(lines)
-
-
-def _warning_lines(text: str) -> list[str]:
-    """A warning wrapped to 80 columns, continuation lines indented."""
-    return textwrap.wrap(text, 80, subsequent_indent="  ", break_on_hyphens=False)
-
-
-def _ar1_text(ar1: Ar1Fit) -> str:
-    b = ar1.baseline
-    lines = [
-        f"AR(1) model of the same {ar1.n} readings ({ESTIMATOR}):",
-        "",
-        f"  phi                  {num(ar1.phi, 4)}",
-        f"  mean (mu)            {num(ar1.mu)}",
-        f"  innovation sd        {num(ar1.innovation_sd)}",
-        "",
-        "Limits for its one-step-ahead residuals e_t = x_t - mu - phi (x_t-1 - mu),",
-        f"from {b.n_used} of {b.n} residuals:",
-        "",
-        f"  center line          {num(b.center)}",
-        f"  average moving range {num(b.mr_bar)}",
-        f"  sigma                {num(b.sigma)}",
-        f"  upper limit (UCL)    {num(b.ucl)}",
-        f"  lower limit (LCL)    {num(b.lcl)}",
-        f"  MR upper limit       {num(b.mr_ucl)}",
-        f"  lag-1 autocorrelation {num(b.lag1_autocorrelation, 3)}",
-    ]
-    if b.exclusions:
-        kinds = [e.kind for e in b.exclusions]
-        lines.append(
-            f"  excluded             {kinds.count('x-beyond-limits')} residual(s) beyond the "
-            f"limits, {kinds.count('mr-beyond-limit')} moving range(s)"
-        )
-    for warning in (*ar1.warnings, *b.warnings):
-        lines += _warning_lines(f"warning: residuals: {warning}")
-    return "\n".join(lines)
-
-
-# -- replay -----------------------------------------------------------------------------------
-
-
-@main.command("replay")
+@click.command("replay")
 @click.argument("file", type=click.Path(dir_okay=False, allow_dash=True))
 @click.option("--value", "value_col", required=True, help="Column holding the readings.")
 @click.option("--time", "time_col", help="Column holding the time (epoch seconds or ISO 8601).")
@@ -316,7 +43,7 @@ def _ar1_text(ar1: Ar1Fit) -> str:
     show_default=True,
     help="A preset (limits, western-electric, nelson) or a comma list of rule ids.",
 )
-@_fit_options
+@fit_options
 @click.option(
     "--max-gap",
     type=DURATION,
@@ -382,7 +109,7 @@ def replay_cmd(
         raise click.BadParameter(str(exc), param_hint="--rules") from None
     except ValueError as exc:
         raise click.UsageError(str(exc)) from None
-    rows = _rows(file, value_col, time=time_col, stream=stream_col)
+    rows = read_csv_rows(file, value_col, time=time_col, stream=stream_col)
     signals: list[dict[str, Any]] = []
     refused = 0
     feed: _ResidualFeed | None = None
@@ -603,15 +330,3 @@ def _print_signals(
     click.echo(f"{len(signals)} signal(s); {refused} reading(s) refused.")
     if residuals:
         click.echo("Charted: one-step-ahead residuals of each stream's AR(1) model.")
-
-
-# Command groups kept in their own modules register themselves on ``main`` when imported.
-from limitwatch import (  # noqa: E402,F401
-    cli_bench,
-    cli_charts,
-    cli_config,
-    cli_demo,
-    cli_operator,
-    cli_plan,
-    cli_service,
-)

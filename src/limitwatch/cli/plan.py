@@ -30,8 +30,14 @@ from typing import Any
 
 import click
 
-from limitwatch.cli import FORMATS, InputProblem, main
-from limitwatch.config import ConfigError, load_config
+from limitwatch.cli.options import (
+    FORMATS,
+    InputProblem,
+)
+from limitwatch.config import (
+    ConfigError,
+    load_config,
+)
 from limitwatch.durations import DurationError, format_duration, parse_duration
 from limitwatch.planner import (
     ASSUMPTIONS,
@@ -82,7 +88,7 @@ def _save_cache(path: Path) -> None:
         click.echo(f"warning: could not keep the run lengths in {path}: {exc}", err=True)
 
 
-@main.command("plan")
+@click.command("plan")
 @click.option(
     "--cadence",
     metavar="DURATION",

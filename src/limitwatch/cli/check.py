@@ -36,7 +36,9 @@ from typing import Any
 
 import click
 
-from limitwatch.cli import InputProblem, main
+from limitwatch.cli.options import (
+    InputProblem,
+)
 from limitwatch.config import (
     Config,
     ConfigError,
@@ -48,7 +50,11 @@ from limitwatch.config import (
 )
 from limitwatch.config_units import bare_durations_in
 from limitwatch.durations import format_duration
-from limitwatch.planner import StreamPlan, plan_stream, site_false_alarms
+from limitwatch.planner import (
+    StreamPlan,
+    plan_stream,
+    site_false_alarms,
+)
 from limitwatch.stats.arl import ArlError
 from limitwatch.textout import num
 
@@ -62,7 +68,7 @@ cries wolf more than weekly soon stops being read (ANSI/ISA-18.2 and EEMUA 191 m
 point about alarm rates at the scale of a whole control room)."""
 
 
-@main.command("check")
+@click.command("check")
 @click.option(
     "--config",
     "config_file",
