@@ -11,7 +11,6 @@ import click
 
 from limitwatch.cli.options import (
     AR1_HELP,
-    FORMATS,
     WIDTH,
     InputProblem,
     actor_name,
@@ -19,6 +18,7 @@ from limitwatch.cli.options import (
     db_options,
     emit_json,
     fit_options,
+    format_option,
     iso,
     iso_s,
     opened,
@@ -55,7 +55,7 @@ def baseline() -> None:
     is_flag=True,
     help=AR1_HELP + " Reports phi and the residuals' limits next to the plain fit.",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
+@format_option()
 def baseline_fit(
     file: str,
     value_col: str,
@@ -304,14 +304,7 @@ def _no_baseline(store: Store, stream: str) -> InputProblem:
 
 @baseline.command("show")
 @click.argument("stream")
-@click.option(
-    "--format",
-    "fmt",
-    type=FORMATS,
-    default="table",
-    show_default=True,
-    help="Text for people, or JSON for scripts.",
-)
+@format_option("Text for people, or JSON for scripts.")
 @db_options
 def baseline_show(stream: str, fmt: str, db_path: str | None, config_file: str | None) -> None:
     """Show the current baseline of STREAM: its limits and where they came from.
@@ -337,14 +330,7 @@ def baseline_show(stream: str, fmt: str, db_path: str | None, config_file: str |
 
 @baseline.command("history")
 @click.argument("stream")
-@click.option(
-    "--format",
-    "fmt",
-    type=FORMATS,
-    default="table",
-    show_default=True,
-    help="Text for people, or JSON (a list, oldest version first) for scripts.",
-)
+@format_option("Text for people, or JSON (a list, oldest version first) for scripts.")
 @db_options
 def baseline_history(stream: str, fmt: str, db_path: str | None, config_file: str | None) -> None:
     """List every baseline version of STREAM, oldest first, each with who made it, why, from

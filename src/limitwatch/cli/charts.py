@@ -1,45 +1,13 @@
 """``limitwatch chart`` and ``limitwatch report``: pictures of what the service judged.
 
-Why the gathering lives here and not in :mod:`limitwatch.charts`: the picture must show the limits
-each reading was actually judged against, and the store records that only indirectly. A baseline
-version is stored when it is fitted (learned, or refit by an operator), but the service adopts a
-refit later, at its next check; the reading that first used it is not recorded. What *is* recorded
-is each monitored reading's ``z = (value - center) / sigma`` under the limits in force, so
-:func:`limits_in_force` finds, reading by reading, the stored version that reproduces the stored
-``z``. Limits that no stored version reproduces (a baseline typed into the config) are recovered
-from two readings' values and z-scores.
-
-Each stored reading records the rules that signalled on it, and :func:`signal_flags` marks
-exactly those. Readings stored before that record existed (a database from an older limitwatch)
-fall back on the alerts: an alert holds its first and last signalling reading.
-:func:`flags_from_alerts` marks both, and for the two rules that keep no state
-(``beyond-limits``, ``mr-beyond-limit``) every reading between them that crossed the same limit,
-which the rule must have signalled too.
-
-The database is found as the operator commands find it (``--db``, ``--config``,
-``$LIMITWATCH_DB``, ``./limitwatch.db``) and opened read-only through
+The pictures are gathered by :mod:`limitwatch.charts.gather` and drawn by
+:mod:`limitwatch.charts.draw`; the database is found as the operator commands find it
+(``--db``, ``--config``, ``$LIMITWATCH_DB``, ``./limitwatch.db``) and opened read-only through
 :func:`limitwatch.cli.options.opened`.
-
->>> from limitwatch.store import StoredReading
->>> rs = [StoredReading("s", float(i), v, None, i, "monitoring", z, None)
-...       for i, (v, z) in enumerate([(11.0, 0.5), (12.0, 1.0), (9.0, -0.5)])]
->>> [(s.version, s.start, s.center, s.sigma) for s in limits_in_force(rs, [])]
-[(None, 0, 10.0, 2.0)]
-
-References
-----------
-Montgomery, D. C., *Introduction to Statistical Quality Control*, on phase II monitoring against
-fixed limits and revising them (a new version applies from the reading after the change).
-Western Electric Co. (1956), *Statistical Quality Control Handbook* (cited from memory): a point
-beyond the limits is a signal by itself, whatever came before.
 """
 
 from __future__ import annotations
 
-import glob
-import math
-from collections.abc import Sequence
-from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -47,357 +15,53 @@ import click
 
 from limitwatch import charts
 from limitwatch.alerts.lifecycle import rule_words
+from limitwatch.charts.gather import (
+    DEFAULT_LAST,
+    BadSince,
+    NothingToChart,
+    since_time,
+    stored_limit_set,
+)
+from limitwatch.charts.gather import gather as gather_chart
+from limitwatch.charts.report import IMAGE_SIZE, AlertRow, Section, image_name, render_page
 from limitwatch.cli.options import (
     InputProblem,
     clock,
     db_options,
     iso_s,
     opened,
-    stream_row,
     unknown_stream,
 )
-from limitwatch.durations import DurationError, parse_duration
-from limitwatch.ingest.timeparse import TimeFormatError, parse_time
-from limitwatch.report import IMAGE_SIZE, AlertRow, Section, image_name, render_page
-from limitwatch.stats.baseline import limits_of
-from limitwatch.stats.constants import D2, MR_UCL_SIGMA
-from limitwatch.stats.rules import DETECTORS
-from limitwatch.stats.signal import Chart
 from limitwatch.store import (
     Alert,
     Store,
-    StoredReading,
 )
 from limitwatch.store import Baseline as StoredBaseline
 from limitwatch.textout import num
 
-DEFAULT_LAST = 500
-"""Readings drawn when neither --since nor --last is given: enough to see runs and shifts, few
-enough that each point stays visible at 1200 pixels."""
-
-_Z_TOLERANCE = 1e-7
-_LOOKAHEAD = 50
-"""How far ahead to look for a second reading to recover unstored limits from."""
-_EVERY_SIGNAL_MARKED = frozenset({"beyond-limits", "mr-beyond-limit"})
-"""Rules that judge each reading alone, so every signal between an alert's first and last can
-be found again from the stored readings."""
-
-
-# --------------------------------------------------------------------------- gathering (pure)
-
-
-def _provenance(stored: StoredBaseline) -> tuple[str, str]:
-    learned = stored.created_by == "limitwatch" and stored.reason.startswith("learned")
-    title = "learned" if learned else f"refit by {stored.created_by}"
-    return title, f"{stored.reason} ({iso_s(stored.created_at)})"
-
-
-def _stored_set(stored: StoredBaseline, start: int) -> charts.LimitSet | None:
-    limits = limits_of(stored.numbers)
-    if limits is None:
-        return None
-    title, detail = _provenance(stored)
-    return charts.LimitSet(
-        version=stored.version,
-        start=start,
-        center=limits.center,
-        sigma=limits.sigma,
-        ucl=limits.ucl,
-        lcl=limits.lcl,
-        mr_center=limits.mr_bar if limits.method == "mean" else limits.mr_median,
-        mr_ucl=limits.mr_ucl,
-        n=limits.n_used,
-        method=limits.method,
-        lower_bound=limits.lower_bound,
-        upper_bound=limits.upper_bound,
-        title=title,
-        detail=detail,
-    )
-
-
-def _reproduces(s: charts.LimitSet, r: StoredReading) -> bool:
-    assert r.z is not None
-    z = (r.value - s.center) / s.sigma
-    return abs(z - r.z) <= _Z_TOLERANCE * max(1.0, abs(r.z))
-
-
-def _recovered(a: StoredReading, b: StoredReading) -> charts.LimitSet | None:
-    """Center and sigma from two readings judged against the same limits:
-    ``value = center + z * sigma`` twice gives both."""
-    assert a.z is not None and b.z is not None and a.index is not None
-    if a.z == b.z:
-        return None
-    sigma = (b.value - a.value) / (b.z - a.z)
-    if not (math.isfinite(sigma) and sigma > 0):
-        return None
-    center = a.value - a.z * sigma
-    return charts.LimitSet(
-        version=None,
-        start=a.index,
-        center=center,
-        sigma=sigma,
-        ucl=center + 3.0 * sigma,
-        lcl=center - 3.0 * sigma,
-        mr_center=D2 * sigma,
-        mr_ucl=MR_UCL_SIGMA * sigma,
-        n=0,
-        method="mean",
-        title="(recovered from the readings' z-scores)",
-        detail="limits not in the baseline history, e.g. typed into the config",
-    )
-
-
-def limits_in_force(
-    readings: Sequence[StoredReading], history: Sequence[StoredBaseline]
-) -> list[charts.LimitSet]:
-    """The limits each monitored reading in ``readings`` was judged against, as a list of
-    :class:`~limitwatch.charts.LimitSet` whose ``start`` is the first reading (stream index) of
-    the window judged against it.
-
-    Versions only move forward, so the current version is kept while it reproduces the stored z;
-    otherwise the oldest newer version that does is taken. Readings no stored version explains
-    get limits recovered from themselves (see :func:`_recovered`); learning readings (no z) get
-    none.
-    """
-    stored = [s for b in history if (s := _stored_set(b, 0)) is not None]
-    stored.sort(key=lambda s: s.version or 0)
-    judged = [r for r in readings if r.z is not None and r.index is not None]
-    out: list[charts.LimitSet] = []
-    current: charts.LimitSet | None = None
-    for k, r in enumerate(judged):
-        assert r.index is not None
-        if current is not None and _reproduces(current, r):
-            continue
-        floor = (current.version or 0) if current is not None else 0
-        found = next(
-            (s for s in stored if (s.version or 0) > floor and _reproduces(s, r)),
-            None,
-        )
-        if found is not None:
-            current = replace(found, start=r.index)
-            out.append(current)
-            continue
-        later = next(
-            (
-                s
-                for q in judged[k + 1 : k + 1 + _LOOKAHEAD]
-                if not any(_reproduces(v, q) for v in stored)
-                and (s := _recovered(r, q)) is not None
-            ),
-            None,
-        )
-        if later is not None:
-            current = later
-            out.append(current)
-    return out
-
-
-def signal_flags(
-    alerts: Sequence[Alert],
-    readings: Sequence[StoredReading],
-    limits: Sequence[charts.LimitSet],
-) -> list[charts.Flag]:
-    """Every rule that signalled on each reading in ``readings``, as recorded with the reading;
-    for readings stored before signals were recorded, what :func:`flags_from_alerts` can tell."""
-    out = [
-        charts.Flag(r.index, rule, _chart_of(rule))
-        for r in readings
-        if r.signals and r.index is not None
-        for rule in r.signals
-    ]
-    older = [r for r in readings if r.signals is None]
-    if older:
-        out += flags_from_alerts(alerts, older, limits)
-    return sorted(set(out), key=lambda f: (f.index, f.chart, f.rule))
-
-
-def _chart_of(rule: str) -> Chart:
-    detector = DETECTORS.get(rule)
-    return "x" if detector is None else detector.chart
-
-
-@dataclass(frozen=True, slots=True)
-class _RuleSpan:
-    """One rule's part of an incident: its first and last signalling reading."""
-
-    rule: str
-    first_index: int | None
-    last_index: int | None
-    signal: dict[str, Any]
-
-
-def _per_rule(alerts: Sequence[Alert]) -> list[_RuleSpan]:
-    """Each incident's rules as spans of their own (an incident from before rules were kept
-    per incident counts as one span of its opening rule)."""
-    out = []
-    for a in alerts:
-        if not a.rules:
-            out.append(_RuleSpan(a.rule, a.first_index, a.last_index, a.signal))
-        for t in a.rules.values():
-            out.append(_RuleSpan(t.rule, t.first_index, t.last_index, t.signal))
-    return out
-
-
-def flags_from_alerts(
-    alerts: Sequence[Alert],
-    readings: Sequence[StoredReading],
-    limits: Sequence[charts.LimitSet],
-) -> list[charts.Flag]:
-    """The readings in ``readings`` that signalled, with the rule, from the stream's alerts.
-
-    Every alert's first and last signalling reading is marked. For ``beyond-limits`` and
-    ``mr-beyond-limit``, which judge each reading alone, every reading between the two that
-    crossed the same limit (``|z| > k``; ``MR / sigma > limit``) is marked as well: the rule
-    cannot have let it pass.
-    """
-    by_index = {r.index: r for r in readings if r.index is not None}
-    ordered = sorted(limits, key=lambda s: s.start)
-
-    def sigma_at(index: int) -> float | None:
-        found = None
-        for s in ordered:
-            if s.start <= index:
-                found = s.sigma
-        return found
-
-    out: list[charts.Flag] = []
-    for a in _per_rule(alerts):
-        chart: Chart = "mr" if a.signal.get("chart") == "mr" else "x"
-        for index in {a.first_index, a.last_index}:
-            if index is not None and index in by_index:
-                out.append(charts.Flag(index, a.rule, chart))
-        if a.first_index is None or a.last_index is None:
-            continue
-        between = [
-            r for i, r in by_index.items() if a.first_index < i < a.last_index and r.z is not None
-        ]
-        if a.rule == "beyond-limits":
-            k = abs(a.signal.get("limit") or 3.0)
-            out.extend(charts.Flag(r.index, a.rule, "x") for r in between if abs(r.z) > k)  # type: ignore[arg-type]
-        elif a.rule == "mr-beyond-limit":
-            limit, sigma = a.signal.get("limit"), a.signal.get("sigma")
-            k = limit / sigma if limit and sigma else MR_UCL_SIGMA
-            for r in between:
-                s = sigma_at(r.index)  # type: ignore[arg-type]
-                if r.mr is not None and s and r.mr / s > k:
-                    out.append(charts.Flag(r.index, a.rule, "mr"))  # type: ignore[arg-type]
-    return sorted(set(out), key=lambda f: (f.index, f.chart, f.rule))
-
-
-def to_points(readings: Sequence[StoredReading]) -> tuple[charts.Point, ...]:
-    return tuple(
-        charts.Point(
-            index=r.index if r.index is not None else i,
-            time=r.time,
-            value=r.value,
-            mr=r.mr,
-            learning=r.phase == "learning" or r.z is None,
-        )
-        for i, r in enumerate(readings)
-    )
-
-
-# --------------------------------------------------------------------------- gathering (store)
-
 
 def parse_since(text: str, newest: float | None) -> float:
-    """``--since``: an ISO 8601 time, epoch seconds, or a span with a unit (``8h``, ``2d``)
-    counted back from the stream's newest reading (readings carry the sender's time, which in
-    a replay may be far from today's clock).
+    """``--since``: see :func:`limitwatch.charts.gather.since_time`.
 
     >>> parse_since("2027-01-01T06:00:00Z", None), parse_since("2h", 10_000.0)
     (1798783200.0, 2800.0)
     """
-    stripped = text.strip()
-    problem = click.BadParameter(
-        f"{text!r} is neither a time (ISO 8601 such as 2027-01-02T06:00:00Z, or epoch seconds) "
-        "nor a span back from the newest reading (such as 8h or 2d)",
-        param_hint="--since",
-    )
-    if stripped and stripped[-1].isalpha() and not stripped.upper().endswith("Z"):
-        try:
-            span = parse_duration(stripped)
-        except DurationError:
-            raise problem from None
-        return (newest if newest is not None else 0.0) - span
     try:
-        return parse_time(stripped)
-    except TimeFormatError:
-        raise problem from None
+        return since_time(text, newest)
+    except BadSince as exc:
+        raise click.BadParameter(str(exc), param_hint="--since") from None
 
 
 def gather(
     store: Store, stream: str, *, since: str | None, last: int | None, strict: bool = True
 ) -> charts.ChartData:
-    """The chart data of ``stream`` from the store: the chosen readings, the limits in force,
-    the flagged readings. ``strict`` makes an unknown stream or an empty window an error."""
-    if since is None:
-        wanted = last or DEFAULT_LAST
-        readings = store.recent_readings(stream, last=wanted)
-        window = f"newest {wanted} readings"
-        if len(readings) < wanted:
-            window = f"all {len(readings)} stored readings"
-    else:
-        everything = store.recent_readings(stream)
-        start = parse_since(since, everything[-1].time if everything else None)
-        readings = [r for r in everything if r.time >= start]
-        if last is not None:
-            readings = readings[-last:]
-        window = f"since {iso_s(start)}" + (f", newest {last}" if last is not None else "")
-    if strict and not readings:
-        if stream_row(store, stream) is None:
-            raise unknown_stream(stream)
-        raise InputProblem(f"stream {stream!r} has no stored readings in that window ({window})")
-    history = store.baseline_history(stream)
-    alerts = [a for a in store.alerts(stream_glob=glob.escape(stream)) if a.stream == stream]
-    limits = limits_in_force(readings, history)
-    notes: list[str] = []
-    if history and history[-1].version not in {s.version for s in limits}:
-        notes.append(
-            f"v{history[-1].version} ({history[-1].reason}) is stored but no reading drawn here "
-            "was judged against it yet."
-        )
-    unrecorded = any(r.signals is None for r in readings)
-    partial = {
-        t.rule: t.signal_count
-        for a in alerts
-        for t in (a.rules.values() if a.rules else ())
-        if unrecorded
-        and t.rule not in _EVERY_SIGNAL_MARKED
-        and t.signal_count > 2
-        and t.first_index is not None
-        and t.first_index >= (readings[0].index or 0 if readings else 0)
-    }
-    if partial:
-        counts = ", ".join(f"{rule} {n}" for rule, n in sorted(partial.items()))
-        notes.append(
-            "Readings stored by an older limitwatch do not record their signals: there, run "
-            f"rules mark each alert's first and last signal only; the alerts counted {counts}."
-        )
-    points = to_points(readings)
-    gaps = charts.silences(points)
-    for a in alerts:
-        if a.state != "cleared" and a.silent_since is not None:
-            gaps.append(charts.Silence(a.silent_since, None, a.last_time))
-    return charts.ChartData(
-        stream=stream,
-        points=points,
-        limits=tuple(limits),
-        flags=tuple(signal_flags(alerts, readings, limits)),
-        window=window,
-        notes=tuple(notes),
-        incidents=tuple(
-            charts.IncidentSpan(
-                a.id,
-                a.first_time,
-                a.seen_time if a.state == "cleared" else None,
-                tuple(t.rule for t in sorted(a.rules.values(), key=lambda t: t.first_time))
-                or (a.rule,),
-            )
-            for a in reversed(alerts)
-        ),
-        silences=tuple(gaps),
-    )
+    """:func:`limitwatch.charts.gather.gather`, its refusals as the command's errors."""
+    try:
+        return gather_chart(store, stream, since=since, last=last, strict=strict)
+    except BadSince as exc:
+        raise click.BadParameter(str(exc), param_hint="--since") from None
+    except NothingToChart as exc:
+        raise (InputProblem(str(exc)) if exc.known else unknown_stream(stream)) from None
 
 
 def _draw(data: charts.ChartData, path: Path) -> None:
@@ -488,7 +152,7 @@ def chart_cmd(
 def _limit_rows(stored: StoredBaseline | None) -> list[tuple[str, str]]:
     if stored is None:
         return []
-    s = _stored_set(stored, 0)
+    s = stored_limit_set(stored, 0)
     if s is None:
         return [("version", f"v{stored.version}"), ("numbers", str(stored.numbers))]
     return [

@@ -15,10 +15,10 @@ from typing import Any
 import click
 
 from limitwatch.cli.options import (
-    FORMATS,
     clock,
     db_options,
     emit_json,
+    format_option,
     iso,
     iso_s,
     opened,
@@ -138,7 +138,7 @@ def _record(row: dict[str, Any], payload_bytes: int) -> dict[str, Any]:
     show_default=True,
     help="Show at most this many bytes of each payload; its full size is always given.",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
+@format_option()
 @db_options
 def dead_letters_cmd(
     source: str | None,

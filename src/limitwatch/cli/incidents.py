@@ -11,7 +11,6 @@ import click
 from limitwatch.alerts.lifecycle import held_until, rule_words
 from limitwatch.alerts.messages import with_unit
 from limitwatch.cli.options import (
-    FORMATS,
     WIDTH,
     InputProblem,
     actor_name,
@@ -21,6 +20,7 @@ from limitwatch.cli.options import (
     db_options,
     emit_json,
     fit_table,
+    format_option,
     iso,
     iso_s,
     load_config_arg,
@@ -130,14 +130,7 @@ _STATE_WORDS = {short: state for state, short in _STATE_SHORT.items()} | {
     metavar="GLOB",
     help="Only streams whose id matches GLOB (shell-style, case-sensitive), e.g. 'pack-*'.",
 )
-@click.option(
-    "--format",
-    "fmt",
-    type=FORMATS,
-    default="table",
-    show_default=True,
-    help="A table for people, or JSON for scripts.",
-)
+@format_option()
 @db_options
 def alerts_cmd(
     state: str | None,
@@ -299,14 +292,7 @@ def event_record(event: AlertEvent) -> dict[str, Any]:
 
 @click.command("log")
 @click.argument("alert_id", type=int)
-@click.option(
-    "--format",
-    "fmt",
-    type=FORMATS,
-    default="table",
-    show_default=True,
-    help="A table for people, or JSON for scripts.",
-)
+@format_option()
 @db_options
 def log_cmd(alert_id: int, fmt: str, db_path: str | None, config_file: str | None) -> None:
     """Show incident ALERT_ID: the rules that joined it (how often, first and last signal) and

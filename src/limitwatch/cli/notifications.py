@@ -15,12 +15,12 @@ import click
 
 from limitwatch.alerts.outbox import GAVE_UP, PARKED_AT
 from limitwatch.cli.options import (
-    FORMATS,
     ago_text,
     clock,
     db_options,
     emit_json,
     fit_table,
+    format_option,
     iso,
     iso_s,
     opened,
@@ -108,7 +108,7 @@ def _record(row: dict[str, Any]) -> dict[str, Any]:
     show_default=True,
     help="List at most this many, newest first (the summary covers all of them).",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
+@format_option()
 @db_options
 def notifications_cmd(
     notifier: str | None,

@@ -266,6 +266,16 @@ def db_options(func: Callable[..., Any]) -> Callable[..., Any]:
     )(func)
 
 
+def format_option(
+    help: str = "A table for people, or JSON for scripts.",
+    choices: click.Choice = FORMATS,
+) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """``--format``, passed to the command as ``fmt``; ``table`` unless asked otherwise."""
+    return click.option(
+        "--format", "fmt", type=choices, default="table", show_default=True, help=help
+    )
+
+
 def locate(db_path: str | None, config_file: str | None) -> Target:
     """Which file to open: ``--db``, else the config's ``store.path``, else ``$LIMITWATCH_DB``,
     else ``./limitwatch.db``."""

@@ -31,8 +31,8 @@ from typing import Any
 import click
 
 from limitwatch.cli.options import (
-    FORMATS,
     InputProblem,
+    format_option,
 )
 from limitwatch.config import (
     ConfigError,
@@ -129,7 +129,7 @@ def _save_cache(path: Path) -> None:
     "finds the rule set that fits with the shortest delay at one sigma. With --config the "
     "default is [budget] false_alarms_per_week.",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
+@format_option()
 @click.option("--no-cache", is_flag=True, help="Neither read nor write the run-length cache file.")
 def plan(
     cadence: str | None,

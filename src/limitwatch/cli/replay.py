@@ -14,6 +14,7 @@ from limitwatch.cli.options import (
     DURATION,
     InputProblem,
     fit_options,
+    format_option,
     read_csv_rows,
 )
 from limitwatch.engine import REFUSAL_WORDS, MonitorSettings
@@ -56,8 +57,9 @@ from limitwatch.textout import num, table
     help=AR1_HELP + " The model is fitted on each stream's baseline readings (--baseline-first); "
     "limits, rules and signals then refer to the residuals.",
 )
-@click.option(
-    "--format", "fmt", type=click.Choice(["table", "jsonl"]), default="table", show_default=True
+@format_option(
+    "A table for people, or JSON Lines (one object per signal) for scripts.",
+    click.Choice(["table", "jsonl"]),
 )
 def replay_cmd(
     file: str,

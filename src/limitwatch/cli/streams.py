@@ -9,12 +9,12 @@ from typing import Any
 import click
 
 from limitwatch.cli.options import (
-    FORMATS,
     InputProblem,
     clock,
     db_options,
     emit_json,
     fit_table,
+    format_option,
     iso,
     opened,
     short_num,
@@ -125,14 +125,7 @@ def _shelf_cell(shelves: Sequence[Shelf], now: float) -> str:
     metavar="GLOB",
     help="Only streams whose id matches GLOB (shell-style, case-sensitive), e.g. 'oven-*'.",
 )
-@click.option(
-    "--format",
-    "fmt",
-    type=FORMATS,
-    default="table",
-    show_default=True,
-    help="A table for people, or JSON for scripts.",
-)
+@format_option()
 @db_options
 def streams_cmd(
     stream_glob: str | None, fmt: str, db_path: str | None, config_file: str | None
