@@ -887,3 +887,34 @@ def test_write_changes_writes_a_decision_in_one_call_and_a_repeat_queues_nothing
     assert fresh_db.alert(first_id).quiet_count == 2
     with fresh_db.transaction():
         assert fresh_db.next_alert_id() == first_id + 1
+
+
+def test_a_read_only_look_refuses_what_it_cannot_read_and_changes_nothing(tmp_path: Path):
+    from limitwatch.store import SchemaTooOld
+
+    path = tmp_path / "plant.db"
+    with Store.open(path, now=T0) as store:
+        store.add_dead_letter("gw", b"x", "bad-json", now=T0)
+    with Store.open_read_only(path, described="plant.db (from --db)") as look:
+        assert [d.reason for d in look.dead_letters()] == ["bad-json"]
+        with pytest.raises(sqlite3.OperationalError, match="readonly"):
+            look.add_dead_letter("gw", b"y", "bad-json", now=T0)
+    old = tmp_path / "old.db"
+    db = sqlite_utils.Database(old)
+    migrate(db, now=T0, target=1)
+    db.close()
+    with pytest.raises(SchemaTooOld, match=r"schema version 1, older .*upgrades it"):
+        Store.open_read_only(old)
+    assert sqlite_utils.Database(old).execute(
+        "SELECT max(version) FROM schema_migrations"
+    ).fetchone() == (1,)  # the look upgraded nothing
+    (tmp_path / "notes.txt").write_text("not a database\n" * 100)
+    with pytest.raises(NotADatabase, match=r"notes.txt \(from here\) is not an SQLite database"):
+        Store.open_read_only(
+            tmp_path / "notes.txt", described=f"{tmp_path / 'notes.txt'} (from here)"
+        )
+    empty = sqlite_utils.Database(tmp_path / "other.db")
+    empty["t"].insert({"a": 1})
+    empty.close()
+    with pytest.raises(NotADatabase, match="is not a limitwatch database"):
+        Store.open_read_only(tmp_path / "other.db")

@@ -40,12 +40,10 @@ import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
-from fnmatch import fnmatchcase
 from pathlib import Path
 from typing import Any
 
 import click
-import sqlite_utils
 
 from limitwatch.alerts.messages import StreamInfo
 from limitwatch.config import (
@@ -56,11 +54,11 @@ from limitwatch.durations import DurationError, parse_duration
 from limitwatch.ingest.csvfile import InputFileError, read_rows
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.store import (
-    MIGRATIONS,
     Store,
     StoreError,
     StreamRow,
 )
+from limitwatch.store.base import connect_checked
 from limitwatch.textout import AUTO, num, output_width, printable, table
 
 FORMATS = click.Choice(["table", "json"])
@@ -99,7 +97,6 @@ DB_ENV = "LIMITWATCH_DB"
 DEFAULT_DB = "limitwatch.db"
 WIDTH = 80
 
-_SCHEMA = MIGRATIONS[-1].version
 
 
 def clock() -> float:
@@ -300,8 +297,9 @@ def _config_store_path(config_file: str) -> Path:
         raise InputProblem(str(exc)) from None
 
 
-def _connect_read_only(target: Target) -> tuple[sqlite3.Connection, int]:
-    """Open the file read-only and check it is a limitwatch database this code can read."""
+def _open(target: Target, *, write: bool, now: float) -> Store:
+    """The store named by ``target``; the store checks it is a limitwatch database it can read
+    (:func:`limitwatch.store.base.connect_checked`), and its errors become ``Error:`` lines."""
     path = target.path
     if not path.exists():
         raise InputProblem(
@@ -310,42 +308,12 @@ def _connect_read_only(target: Target) -> tuple[sqlite3.Connection, int]:
         )
     if not path.is_file():
         raise InputProblem(f"{path} (from {target.origin}) is not a file")
-    conn = sqlite3.connect(path.resolve().as_uri() + "?mode=ro", uri=True)
-    try:
-        conn.execute("PRAGMA busy_timeout = 5000")
-        row = conn.execute("SELECT max(version) FROM schema_migrations").fetchone()
-    except sqlite3.DatabaseError as exc:
-        conn.close()
-        what = "a limitwatch database" if "no such table" in str(exc) else "an SQLite database"
-        raise InputProblem(
-            f"{path} (from {target.origin}) is not {what} ({exc}); check the path"
-        ) from None
-    version = int(row[0] or 0)
-    if version > _SCHEMA:
-        conn.close()
-        raise InputProblem(
-            f"{path} has schema version {version}, newer than this limitwatch knows "
-            f"({_SCHEMA}); upgrade limitwatch"
-        )
-    return conn, version
-
-
-def _open(target: Target, *, write: bool, now: float) -> Store:
-    conn, version = _connect_read_only(target)
+    described = f"{path} (from {target.origin})"
     if write:
-        conn.close()
+        connect_checked(path, described=described)[0].close()
         # Store.open upgrades an older schema in place, as the service would.
-        return Store.open(target.path, now=now)
-    if version < _SCHEMA:
-        conn.close()
-        raise InputProblem(
-            f"{target.path} has schema version {version}, older than this limitwatch "
-            f"reads ({_SCHEMA}); the service upgrades it when it starts, and so does any "
-            "command that changes something (ack, shelve, unshelve, baseline refit)"
-        )
-    db = sqlite_utils.Database(conn, execute_plugins=False)
-    db.register_function(fnmatchcase, deterministic=True, name="glob_match")
-    return Store(db, str(target.path))
+        return Store.open(path, now=now)
+    return Store.open_read_only(path, described=described)
 
 
 @contextmanager

@@ -49,6 +49,7 @@ from limitwatch.store.errors import (
     NotificationNotFound,
     NotShelved,
     SchemaTooNew,
+    SchemaTooOld,
     ShelfRejected,
     StoreError,
 )
@@ -118,6 +119,7 @@ __all__ = [
     "OutboxRow",
     "RuleTally",
     "SchemaTooNew",
+    "SchemaTooOld",
     "Shelf",
     "ShelfRejected",
     "Store",

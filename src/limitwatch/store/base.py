@@ -14,9 +14,12 @@ import sqlite_utils
 
 from limitwatch.store.errors import (
     NotADatabase,
+    SchemaTooNew,
+    SchemaTooOld,
     StoreError,
 )
 from limitwatch.store.schema import (
+    MIGRATIONS,
     _create_private,
     _immediate,
     _recorded_version,
@@ -73,6 +76,27 @@ class StoreBase:
             db.close()
             raise
         return cls(db, path)
+
+    @classmethod
+    def open_read_only(cls, path: str | Path, *, described: str | None = None) -> Self:
+        """Open an existing database to read only (SQLite ``mode=ro``): a look at it cannot
+        change anything the service depends on, nor upgrade its schema behind its back.
+        ``described`` names the file in messages (e.g. where the path came from).
+
+        Raises :class:`NotADatabase`, :class:`SchemaTooNew` or :class:`SchemaTooOld`.
+        """
+        conn, version = connect_checked(path, described=described)
+        known = MIGRATIONS[-1].version
+        if version < known:
+            conn.close()
+            raise SchemaTooOld(
+                f"{path} has schema version {version}, older than this limitwatch "
+                f"reads ({known}); the service upgrades it when it starts, and so does any "
+                "command that changes something (ack, shelve, unshelve, baseline refit)"
+            )
+        db = sqlite_utils.Database(conn, execute_plugins=False)
+        db.register_function(fnmatchcase, deterministic=True, name="glob_match")
+        return cls(db, str(path))
 
     def close(self) -> None:
         self.db.close()
@@ -141,3 +165,30 @@ def inserted_id(cursor: sqlite3.Cursor) -> int:
     if rowid is None:
         raise StoreError("the INSERT made no row; this is a bug in limitwatch, please report it")
     return rowid
+
+
+def connect_checked(
+    path: str | Path, *, described: str | None = None
+) -> tuple[sqlite3.Connection, int]:
+    """A read-only connection to an existing file, and its schema version, once it is known to
+    be a limitwatch database no newer than this code. The schema's owner checks this, so every
+    reader refuses a wrong file with the same words."""
+    path = Path(path)
+    described = described or str(path)
+    conn = sqlite3.connect(path.resolve().as_uri() + "?mode=ro", uri=True)
+    try:
+        conn.execute("PRAGMA busy_timeout = 5000")
+        row = conn.execute("SELECT max(version) FROM schema_migrations").fetchone()
+    except sqlite3.DatabaseError as exc:
+        conn.close()
+        what = "a limitwatch database" if "no such table" in str(exc) else "an SQLite database"
+        raise NotADatabase(f"{described} is not {what} ({exc}); check the path") from None
+    version = int(row[0] or 0)
+    known = MIGRATIONS[-1].version
+    if version > known:
+        conn.close()
+        raise SchemaTooNew(
+            f"{path} has schema version {version}, newer than this limitwatch knows "
+            f"({known}); upgrade limitwatch"
+        )
+    return conn, version

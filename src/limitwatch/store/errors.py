@@ -15,6 +15,11 @@ class SchemaTooNew(StoreError):
     """The file was written by a newer limitwatch than this one."""
 
 
+class SchemaTooOld(StoreError):
+    """A read-only look at a file whose schema this code no longer reads; opening it to write
+    upgrades it."""
+
+
 class AlertNotFound(StoreError, LookupError):
     """No alert has the given id."""
 
