@@ -19,22 +19,6 @@ from limitwatch.store.records import (
 class ReadingsArea(StoreBase):
     """Accepted readings, the streams they made and the monitors' checkpoints."""
 
-    def record_batch(
-        self,
-        outcomes: Iterable[Outcome],
-        *,
-        now: float,
-        checkpoints: Mapping[str, Mapping[str, Any]] | None = None,
-    ) -> int:
-        """Store a batch's accepted readings, stream summaries and checkpoints in one transaction;
-        return how many readings were new. Call the alert book inside the same ``transaction()``
-        so alerts and notifications commit with the readings that caused them."""
-        with self.transaction():
-            stored = self.add_readings(outcomes, now=now)
-            if checkpoints:
-                self.save_checkpoints(checkpoints, now=now)
-        return stored
-
     def add_readings(self, outcomes: Iterable[Outcome], *, now: float) -> int:
         """Keep accepted readings (refused ones changed nothing and are not kept here) and update
         each stream's summary. A redelivered reading (same stream and time) is ignored."""
