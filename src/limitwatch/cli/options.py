@@ -16,7 +16,7 @@ Conventions:
 * Problems the operator can fix exit with status 1 and one line starting ``Error:``; option
   mistakes exit with status 2 (click's convention).
 
->>> span_text(5400), span_text(3 * 86400 + 7200), ago_text(0.0, 600.0)
+>>> short_duration(5400), short_duration(3 * 86400 + 7200), ago_text(0.0, 600.0)
 ('1h30m', '3d02h', '10m ago')
 
 References
@@ -50,7 +50,7 @@ from limitwatch.config import (
     ConfigError,
     load_config,
 )
-from limitwatch.durations import DurationError, parse_duration
+from limitwatch.durations import DurationError, parse_duration, short_duration
 from limitwatch.ingest.csvfile import InputFileError, read_rows
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.store import (
@@ -108,27 +108,6 @@ def clock() -> float:
 
 
 
-def span_text(seconds: float, parts: int = 2) -> str:
-    """A duration in its largest unit or two (rounded down), compact enough for a table cell.
-
-    >>> [span_text(s) for s in (42, 600, 3 * 3600, 3 * 3600 + 300, 50 * 3600)]
-    ['42s', '10m', '3h', '3h05m', '2d02h']
-    >>> span_text(3 * 3600 + 300, parts=1)
-    '3h'
-    """
-    s = max(0, round(seconds))
-    if s < 60:
-        return f"{s}s"
-    m = s // 60
-    if m < 60:
-        return f"{m}m"
-    h, m = divmod(m, 60)
-    if h < 48:
-        return f"{h}h{m:02d}m" if m and parts > 1 else f"{h}h"
-    d, h = divmod(h, 24)
-    return f"{d}d{h:02d}h" if h and parts > 1 else f"{d}d"
-
-
 def ago_text(then: float | None, now: float) -> str:
     """How long ago, for the past week; a short UTC date otherwise (or for a time ahead).
 
@@ -141,7 +120,7 @@ def ago_text(then: float | None, now: float) -> str:
     if -60 < d < 0:
         return "just now"
     if 0 <= d < 7 * 86400:
-        return f"{span_text(d, parts=1)} ago"
+        return f"{short_duration(d, parts=1)} ago"
     return format_time(math.floor(then))[:10]
 
 

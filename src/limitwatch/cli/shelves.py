@@ -16,14 +16,13 @@ from limitwatch.cli.options import (
     db_options,
     iso_s,
     opened,
-    span_text,
     wrap_text,
 )
 from limitwatch.config import (
     ConfigError,
     load_config,
 )
-from limitwatch.durations import format_duration
+from limitwatch.durations import format_duration, short_duration
 from limitwatch.stats.rules import DETECTORS
 from limitwatch.store import (
     NotShelved,
@@ -216,7 +215,7 @@ def unshelve_cmd(
         click.echo(
             wrap_text(
                 f"Ended the shelf on {printable(shelf.stream)} ({what}) set by {shelf.shelved_by} "
-                f"({shelf.reason}); it had {span_text(shelf.until - now)} left."
+                f"({shelf.reason}); it had {short_duration(shelf.until - now)} left."
             )
         )
 

@@ -18,12 +18,12 @@ from limitwatch.cli.options import (
     iso,
     opened,
     short_num,
-    span_text,
 )
 from limitwatch.config import (
     ConfigError,
     load_config,
 )
+from limitwatch.durations import short_duration
 from limitwatch.planner import (
     plan_stream,
 )
@@ -113,9 +113,9 @@ def _shelf_cell(shelves: Sequence[Shelf], now: float) -> str:
     until = max(s.until for s in shelves)
     rules = {s.rule for s in shelves}
     if None in rules:
-        return f"all {span_text(until - now)}"
+        return f"all {short_duration(until - now)}"
     label = "1 rule" if len(rules) == 1 else f"{len(rules)} rules"
-    return f"{label} {span_text(until - now)}"
+    return f"{label} {short_duration(until - now)}"
 
 
 @click.command("streams")

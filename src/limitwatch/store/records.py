@@ -9,11 +9,11 @@ import json
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
 from typing import Any, Literal
 
 import orjson
 
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import StreamSignal
 
 SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
@@ -86,7 +86,7 @@ def read_json(text: str) -> Any:
 def _iso(t: float | None) -> str:
     if t is None:
         return "an unknown time"
-    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
+    return format_time(math.floor(t))
 
 
 def _loads(text: str | None, default: Any) -> Any:
