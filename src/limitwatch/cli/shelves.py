@@ -23,7 +23,7 @@ from limitwatch.config import (
     load_config,
 )
 from limitwatch.durations import format_duration, short_duration
-from limitwatch.stats.rules import DETECTORS
+from limitwatch.stats import rules
 from limitwatch.store import (
     NotShelved,
     Shelf,
@@ -32,7 +32,7 @@ from limitwatch.store import (
 )
 from limitwatch.textout import printable
 
-RULE_IDS: tuple[str, ...] = tuple(sorted({*DETECTORS, "stale"}))
+RULE_IDS: tuple[str, ...] = tuple(sorted(rules.RULE_IDS))
 """Rule ids an operator may shelve: every detector plus the stale-stream check."""
 
 

@@ -618,6 +618,12 @@ DETECTORS: Mapping[str, type[_Rule] | type[Ewma] | type[Cusum]] = MappingProxyTy
 )
 """Every detector that :func:`parse_rules` knows: the run tests plus ``ewma`` and ``cusum``."""
 
+STALE = "stale"
+"""The rule id of the check that a stream still reports (the service runs it, not a detector)."""
+
+RULE_IDS: tuple[str, ...] = (*sorted(DETECTORS), STALE)
+"""Every rule id a signal can carry. This registry is the one list; others derive from it."""
+
 
 class RuleSpecError(ValueError):
     """A rule selection that cannot be used; the message says what to write instead."""
