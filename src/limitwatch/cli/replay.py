@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
-from collections.abc import Iterable, Iterator
+from functools import partial
 from typing import Any
 
 import click
@@ -20,8 +20,8 @@ from limitwatch.cli.options import (
 from limitwatch.engine import REFUSAL_WORDS, MonitorSettings
 from limitwatch.ingest.csvfile import Row
 from limitwatch.ingest.replay import replay
-from limitwatch.stats.autocorrelation import ESTIMATOR, Ar1Fit, fit_ar1
-from limitwatch.stats.baseline import BaselineError
+from limitwatch.residuals import ResidualFeed
+from limitwatch.stats.autocorrelation import ESTIMATOR
 from limitwatch.stats.rules import UnknownRuleError
 from limitwatch.textout import num, table
 
@@ -114,10 +114,10 @@ def replay_cmd(
     rows = read_csv_rows(file, value_col, time=time_col, stream=stream_col)
     signals: list[dict[str, Any]] = []
     refused = 0
-    feed: _ResidualFeed | None = None
+    feed: ResidualFeed | None = None
     engine_settings = settings
     if ar1_residuals:
-        feed = _ResidualFeed(file, rows, settings)
+        feed = ResidualFeed(rows, settings, on_refused=partial(_say_refused, file))
         # Bounds belong to the raw readings (the feed refuses those beyond them); the residuals'
         # own autocorrelation is judged by the AR(1) fit, in words that fit residuals.
         engine_settings = dataclasses.replace(
@@ -223,87 +223,12 @@ def _never_judged(monitors: dict[str, Any], judged: dict[str, int], needed: int)
     return out
 
 
-class _ResidualFeed:
-    """The rows of a replay with each value replaced by its AR(1) one-step-ahead residual.
-
-    Each stream's model is fitted on the first ``learn_count`` readings the engine will accept
-    (in time order, within the natural bounds), the same readings whose residuals the engine
-    then learns its baseline from. Readings beyond a natural bound are refused here (the
-    residuals have no bound); a reading the engine will refuse for its time does not move the
-    filter, and a repeat of the previous reading is passed as a repeat of its residual, so the
-    engine names the refusal as it would for raw readings.
-    """
-
-    def __init__(self, file: str, rows: list[Row], settings: MonitorSettings) -> None:
-        self.file = file
-        self.settings = settings
-        self.refused = 0
-        self.raw: dict[int, float] = {}
-        self.models: dict[str, Ar1Fit] = {}
-        self.problems: dict[str, str] = {}
-        first: dict[str, list[float]] = {}
-        last: dict[str, float] = {}
-        for row in rows:
-            if self._bound(row.value) is not None:
-                continue
-            before = last.get(row.stream)
-            if before is not None and row.time <= before:
-                continue
-            last[row.stream] = row.time
-            values = first.setdefault(row.stream, [])
-            if len(values) < settings.learn_count:
-                values.append(row.value)
-        for stream, values in first.items():
-            if len(values) < settings.learn_count:
-                continue  # never leaves the learning phase: nothing to chart
-            try:
-                self.models[stream] = fit_ar1(
-                    values,
-                    method=settings.method,
-                    exclude_beyond=settings.exclude_beyond,
-                    max_iterations=settings.max_iterations,
-                    min_points=settings.min_points,
-                    warn_points=settings.warn_points,
-                )
-            except BaselineError as exc:
-                self.problems[stream] = str(exc)
-
-    def _bound(self, value: float) -> str | None:
-        s = self.settings
-        if s.lower_bound is not None and value < s.lower_bound:
-            return "below-lower-bound"
-        if s.upper_bound is not None and value > s.upper_bound:
-            return "above-upper-bound"
-        return None
-
-    def rows(self, rows: Iterable[Row]) -> Iterator[Row]:
-        filters = {stream: model.filter() for stream, model in self.models.items()}
-        last: dict[str, tuple[float, float, float]] = {}  # time, reading, residual
-        for row in rows:
-            reason = self._bound(row.value)
-            if reason is not None:
-                self.refused += 1
-                click.echo(
-                    f"refused: {self.file}, line {row.line}: reading {num(row.value)} "
-                    f"for stream {row.stream!r}: {reason}",
-                    err=True,
-                )
-                continue
-            if row.stream in self.problems:
-                continue
-            self.raw[row.line] = row.value
-            f = filters.get(row.stream)
-            if f is None:  # too few readings ever to fit a baseline
-                yield row
-                continue
-            before = last.get(row.stream)
-            if before is not None and row.time <= before[0]:
-                repeat = row.time == before[0] and row.value == before[1]
-                value = before[2] if repeat else f.peek(row.value)
-            else:
-                value = f.update(row.value)
-                last[row.stream] = (row.time, row.value, value)
-            yield dataclasses.replace(row, value=value)
+def _say_refused(file: str, row: Row, reason: str) -> None:
+    click.echo(
+        f"refused: {file}, line {row.line}: reading {num(row.value)} "
+        f"for stream {row.stream!r}: {reason}",
+        err=True,
+    )
 
 
 def _print_signals(
