@@ -24,10 +24,7 @@ from limitwatch.config import (
     load_config,
 )
 from limitwatch.durations import short_duration
-from limitwatch.planner import (
-    plan_stream,
-)
-from limitwatch.stats.arl import ArlError
+from limitwatch.site_plan import weekly_false_alarms
 from limitwatch.stats.baseline import Baseline as Limits
 from limitwatch.stats.baseline import limits_of
 from limitwatch.store import (
@@ -88,23 +85,7 @@ def false_alarms_by_stream(config_file: str | None, streams: Sequence[str]) -> d
         config = load_config(config_file)
     except ConfigError as exc:
         raise InputProblem(str(exc)) from None
-    known: dict[tuple[str, float], float | None] = {}
-    out: dict[str, float] = {}
-    for stream in streams:
-        opts = config.stream_settings(stream)
-        if opts.cadence is None:
-            continue
-        key = (opts.rules, float(opts.cadence))
-        if key not in known:
-            try:
-                plan = plan_stream(opts.rules, float(opts.cadence), shifts=())
-                known[key] = plan.false_alarms("week")
-            except (ArlError, ValueError):
-                known[key] = None
-        value = known[key]
-        if value is not None:
-            out[stream] = value
-    return out
+    return weekly_false_alarms(config, streams)
 
 
 def _shelf_cell(shelves: Sequence[Shelf], now: float) -> str:
