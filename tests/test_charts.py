@@ -44,16 +44,16 @@ from limitwatch.charts import (
     render,
     spans,
 )
-from limitwatch.cli_charts import (
+from limitwatch.charts.gather import (
     flags_from_alerts,
     limits_in_force,
-    parse_since,
     signal_flags,
 )
+from limitwatch.charts.report import Section, image_name, render_page
+from limitwatch.cli.charts import parse_since
 from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
 from limitwatch.pipeline import Parsed, Pipeline
-from limitwatch.report import Section, image_name, render_page
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store, StoredReading
 from tests.helpers import CLI, CliResult, cli, examples
@@ -485,7 +485,7 @@ def test_rule_labels_never_overlap_even_when_clusters_crowd_together() -> None:
     pts = tuple(replace(p, value=values[p.index]) for p in pts)
     fig = Figure(figsize=(12, 8), dpi=100)
     FigureCanvasAgg(fig)
-    charts._draw(fig, ChartData("pack-9/downtime", pts, limits, tuple(flags)))
+    charts.draw_figure(fig, ChartData("pack-9/downtime", pts, limits, tuple(flags)))
     renderer = fig.canvas.get_renderer()
     boxes = []
     for axis in fig.axes:

@@ -14,7 +14,7 @@ from click.testing import CliRunner
 
 from limitwatch import demo_folder
 from limitwatch.cli import main
-from limitwatch.cli_demo import command_prefix, demo_config_text
+from limitwatch.cli.demo import command_prefix, demo_config_text
 from limitwatch.demo import STREAMS
 from limitwatch.store import Store
 from tests.broker import mosquitto_path

@@ -466,12 +466,12 @@ def test_a_replay_after_clearing_does_not_reopen(book: AlertBook):
 
 def test_a_rolled_back_batch_leaves_no_alert_and_the_retry_enqueues_once(book: AlertBook):
     with pytest.raises(RuntimeError), book.store.transaction():
-        book.store.record_batch([hit(T0)], now=T0)
+        book.store.add_readings([hit(T0)], now=T0)
         book.apply([hit(T0)], now=T0)
         raise RuntimeError("process killed before commit")
     assert book.store.alerts() == [] and rows(book.store) == []
     with book.store.transaction():
-        book.store.record_batch([hit(T0)], now=T0 + 5)
+        book.store.add_readings([hit(T0)], now=T0 + 5)
         book.apply([hit(T0)], now=T0 + 5)
     (alert,) = book.store.alerts()
     assert rows(book.store) == [(f"{alert.id}:opened:0:default", "default")]
@@ -990,7 +990,7 @@ def write_then_die(self, changes):
 
 Store.write_changes = write_then_die
 with store.transaction():
-    store.record_batch([hit(T0), quiet(T0 + 1)], now=T0 + 1)
+    store.add_readings([hit(T0), quiet(T0 + 1)], now=T0 + 1)
     book.apply([hit(T0), quiet(T0 + 1)], now=T0 + 1)
 """
 
@@ -1016,7 +1016,7 @@ def test_a_kill_9_between_decision_and_commit_loses_and_doubles_no_notification(
         book = AlertBook(store, AlertPolicy(clear_after=3))
         for _ in range(2):  # and a second redelivery changes nothing
             with store.transaction():
-                store.record_batch([hit(T0), quiet(T0 + 1)], now=T0 + 2)
+                store.add_readings([hit(T0), quiet(T0 + 1)], now=T0 + 2)
                 book.apply([hit(T0), quiet(T0 + 1)], now=T0 + 2)
         (incident,) = store.alerts()
         assert rows(store) == [(f"{incident.id}:opened:0:default", "default")]

@@ -663,3 +663,15 @@ def test_snapshot_of_the_wrong_rule_is_refused():
 def test_public_names_exist():
     for name in rules.__all__:
         assert hasattr(rules, name)
+
+
+def test_every_list_of_rule_ids_agrees_with_the_registry() -> None:
+    from limitwatch.alerts.messages import RULE_WORDS
+    from limitwatch.cli.shelves import RULE_IDS as SHELVABLE
+    from limitwatch.config import KNOWN_RULES
+    from limitwatch.stats.rules import DETECTORS, RULE_IDS
+
+    assert set(RULE_IDS) == {*DETECTORS, "stale"} and len(RULE_IDS) == len(set(RULE_IDS))
+    assert set(SHELVABLE) == set(RULE_IDS)
+    assert set(KNOWN_RULES) == set(RULE_IDS)
+    assert set(RULE_WORDS) == set(RULE_IDS)  # every rule is explained in the notices

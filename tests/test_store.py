@@ -42,6 +42,17 @@ from limitwatch.store import (
 T0 = 1_700_000_000.0
 
 
+def commit_batch(
+    store: Store, outcomes: list[Outcome], *, now: float, checkpoints: dict | None = None
+) -> int:
+    """A batch as the pipeline commits it: its readings and due checkpoints in one transaction."""
+    with store.transaction():
+        stored = store.add_readings(outcomes, now=now)
+        if checkpoints:
+            store.save_checkpoints(checkpoints, now=now)
+    return stored
+
+
 def outcome(
     stream: str,
     time: float,
@@ -242,14 +253,14 @@ def test_a_file_that_is_not_a_database_is_refused_with_a_clear_error(tmp_path: P
 # --------------------------------------------------------------------------- transactions
 
 
-def test_record_batch_commits_readings_streams_and_checkpoints_together(fresh_db: Store):
+def test_one_transaction_commits_readings_streams_and_checkpoints_together(fresh_db: Store):
     batch = [
         outcome("line-1/temp", T0, 80.5, index=0),
         outcome("line-1/temp", T0 + 60, 81.0, index=1),
         outcome("line-1/temp", T0 + 60, 81.0, accepted=False),  # refused: not kept
         outcome("line-2/temp", T0 + 30, 70.0, index=0, phase="learning"),
     ]
-    stored = fresh_db.record_batch(batch, now=T0 + 61, checkpoints={"line-1/temp": {"n": 2}})
+    stored = commit_batch(fresh_db, batch, now=T0 + 61, checkpoints={"line-1/temp": {"n": 2}})
     assert stored == 3
     other = raw(fresh_db)
     assert count(other, "readings") == 3
@@ -265,7 +276,7 @@ def test_a_failure_mid_batch_leaves_nothing_written(fresh_db: Store):
     # The readings are inserted first; the checkpoint cannot be serialised, so the batch fails
     # after them.
     with pytest.raises(TypeError):
-        fresh_db.record_batch(batch, now=T0 + 5, checkpoints={"line-1/temp": {"bad": object()}})
+        commit_batch(fresh_db, batch, now=T0 + 5, checkpoints={"line-1/temp": {"bad": object()}})
     other = raw(fresh_db)
     for table in ("readings", "streams", "checkpoints"):
         assert count(other, table) == 0, table
@@ -274,7 +285,7 @@ def test_a_failure_mid_batch_leaves_nothing_written(fresh_db: Store):
 
 def test_an_outer_transaction_rolls_back_the_batch_and_the_alerts_together(fresh_db: Store):
     with pytest.raises(RuntimeError), fresh_db.transaction():
-        fresh_db.record_batch([outcome("line-1/temp", T0, 95.0, index=0)], now=T0)
+        commit_batch(fresh_db, [outcome("line-1/temp", T0, 95.0, index=0)], now=T0)
         fresh_db.open_alert(signal(), severity="warning", now=T0)
         raise RuntimeError("crash before commit")
     other = raw(fresh_db)
@@ -312,21 +323,21 @@ def test_a_nested_block_that_fails_rolls_back_only_itself(fresh_db: Store):
 
 def test_a_redelivered_reading_is_stored_once(fresh_db: Store):
     batch = [outcome("s", T0 + i, float(i), index=i) for i in range(3)]
-    assert fresh_db.record_batch(batch, now=T0) == 3
-    assert fresh_db.record_batch(batch, now=T0 + 10) == 0
+    assert commit_batch(fresh_db, batch, now=T0) == 3
+    assert commit_batch(fresh_db, batch, now=T0 + 10) == 0
     assert [r.value for r in fresh_db.recent_readings("s")] == [0.0, 1.0, 2.0]
 
 
 def test_an_older_reading_does_not_overwrite_the_stream_summary(fresh_db: Store):
-    fresh_db.record_batch([outcome("s", T0 + 100, 5.0, index=7)], now=T0 + 100)
-    fresh_db.record_batch([outcome("s", T0 + 50, 4.0, index=6)], now=T0 + 101)
+    commit_batch(fresh_db, [outcome("s", T0 + 100, 5.0, index=7)], now=T0 + 100)
+    commit_batch(fresh_db, [outcome("s", T0 + 50, 4.0, index=6)], now=T0 + 101)
     (row,) = fresh_db.streams()
     assert (row.last_time, row.last_value, row.last_index) == (T0 + 100, 5.0, 7)
     assert row.first_seen == T0 + 100
 
 
 def test_recent_readings_returns_the_newest_n_oldest_first(fresh_db: Store):
-    fresh_db.record_batch(
+    commit_batch(fresh_db,
         [outcome("s", T0 + i, float(i), index=i) for i in range(10)]
         + [outcome("other", T0, 99.0, index=0)],
         now=T0 + 10,
@@ -342,7 +353,7 @@ def test_recent_readings_returns_the_newest_n_oldest_first(fresh_db: Store):
 
 def _fill(store: Store) -> list[tuple[str, float]]:
     keys = [("a", T0 + 60 * i) for i in range(10)] + [("b", T0 + 60 * i) for i in range(3)]
-    store.record_batch([outcome(s, t, 1.0) for s, t in keys], now=T0 + 600)
+    commit_batch(store, [outcome(s, t, 1.0) for s, t in keys], now=T0 + 600)
     return keys
 
 
@@ -887,3 +898,34 @@ def test_write_changes_writes_a_decision_in_one_call_and_a_repeat_queues_nothing
     assert fresh_db.alert(first_id).quiet_count == 2
     with fresh_db.transaction():
         assert fresh_db.next_alert_id() == first_id + 1
+
+
+def test_a_read_only_look_refuses_what_it_cannot_read_and_changes_nothing(tmp_path: Path):
+    from limitwatch.store import SchemaTooOld
+
+    path = tmp_path / "plant.db"
+    with Store.open(path, now=T0) as store:
+        store.add_dead_letter("gw", b"x", "bad-json", now=T0)
+    with Store.open_read_only(path, described="plant.db (from --db)") as look:
+        assert [d.reason for d in look.dead_letters()] == ["bad-json"]
+        with pytest.raises(sqlite3.OperationalError, match="readonly"):
+            look.add_dead_letter("gw", b"y", "bad-json", now=T0)
+    old = tmp_path / "old.db"
+    db = sqlite_utils.Database(old)
+    migrate(db, now=T0, target=1)
+    db.close()
+    with pytest.raises(SchemaTooOld, match=r"schema version 1, older .*upgrades it"):
+        Store.open_read_only(old)
+    assert sqlite_utils.Database(old).execute(
+        "SELECT max(version) FROM schema_migrations"
+    ).fetchone() == (1,)  # the look upgraded nothing
+    (tmp_path / "notes.txt").write_text("not a database\n" * 100)
+    with pytest.raises(NotADatabase, match=r"notes.txt \(from here\) is not an SQLite database"):
+        Store.open_read_only(
+            tmp_path / "notes.txt", described=f"{tmp_path / 'notes.txt'} (from here)"
+        )
+    empty = sqlite_utils.Database(tmp_path / "other.db")
+    empty["t"].insert({"a": 1})
+    empty.close()
+    with pytest.raises(NotADatabase, match="is not a limitwatch database"):
+        Store.open_read_only(tmp_path / "other.db")

@@ -27,7 +27,7 @@ from __future__ import annotations
 import math
 import re
 
-__all__ = ["UNITS", "DurationError", "format_duration", "parse_duration"]
+__all__ = ["UNITS", "DurationError", "format_duration", "parse_duration", "short_duration"]
 
 UNITS: dict[str, float] = {
     "w": 7 * 86400.0,
@@ -135,3 +135,25 @@ def format_duration(seconds: float | None) -> str:
 
 def _trim(value: float, decimals: int) -> str:
     return f"{value:.{decimals}f}".rstrip("0").rstrip(".")
+
+
+def short_duration(seconds: float, parts: int = 2) -> str:
+    """A duration in its largest unit or two (rounded down), compact enough for a table cell;
+    :func:`format_duration` is the exact form that :func:`parse_duration` reads back.
+
+    >>> [short_duration(s) for s in (42, 600, 3 * 3600, 3 * 3600 + 300, 50 * 3600)]
+    ['42s', '10m', '3h', '3h05m', '2d02h']
+    >>> short_duration(3 * 3600 + 300, parts=1)
+    '3h'
+    """
+    s = max(0, round(seconds))
+    if s < 60:
+        return f"{s}s"
+    m = s // 60
+    if m < 60:
+        return f"{m}m"
+    h, m = divmod(m, 60)
+    if h < 48:
+        return f"{h}h{m:02d}m" if m and parts > 1 else f"{h}h"
+    d, h = divmod(h, 24)
+    return f"{d}d{h:02d}h" if h and parts > 1 else f"{d}d"

@@ -26,11 +26,11 @@ import math
 import shlex
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.durations import format_duration
+from limitwatch.ingest.timeparse import format_time
 from limitwatch.textout import printable
 
 if TYPE_CHECKING:
@@ -97,10 +97,11 @@ class StreamInfo:
 
 
 def iso_time(t: float | None) -> str | None:
-    """Epoch seconds as ISO 8601 UTC to the second (``2030-01-01T06:00:00Z``)."""
+    """Epoch seconds as ISO 8601 UTC to the second (``2030-01-01T06:00:00Z``), by the one time
+    formatter, :func:`limitwatch.ingest.timeparse.format_time`."""
     if t is None or not math.isfinite(t):
         return None
-    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
+    return format_time(math.floor(t))
 
 
 def fmt_value(x: float | None, sigma: float | None = None) -> str:

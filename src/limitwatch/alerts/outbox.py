@@ -49,11 +49,11 @@ import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, Literal
 
 from limitwatch.alerts.delivery_watch import DeliveryWatch
+from limitwatch.alerts.messages import iso_time
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier
 from limitwatch.alerts.notifiers.registry import build_notifier
 from limitwatch.store import Notification, Store
@@ -77,10 +77,6 @@ def backoff_delay(
 ) -> float:
     """Seconds to wait after the ``failures``-th failure (0 for the first): full jitter."""
     return rng.uniform(0.0, min(cap_s, base_s * 2.0 ** min(failures, 40)))
-
-
-def _iso(t: float) -> str:
-    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
 
 
 @dataclass(frozen=True, slots=True)
@@ -285,7 +281,7 @@ class OutboxWorker:
             return self._give_up(
                 store,
                 row,
-                f"it expires at {_iso(row.expires_at)}, before the next attempt would be due; "
+                f"it expires at {iso_time(row.expires_at)}, before the next attempt would be due; "
                 f"last error: {error}",
                 notifier,
             )
@@ -318,7 +314,7 @@ class OutboxWorker:
             (PARKED_AT, now, self.batch_size),
         ).fetchall()
         for row_id, route, attempts, last_error, expires_at in rows:
-            reason = f"expired at {_iso(expires_at)} after {attempts} attempt(s)" + (
+            reason = f"expired at {iso_time(expires_at)} after {attempts} attempt(s)" + (
                 f"; last error: {last_error}" if last_error else ""
             )
             with store.transaction():

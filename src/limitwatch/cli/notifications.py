@@ -14,13 +14,13 @@ from typing import Any
 import click
 
 from limitwatch.alerts.outbox import GAVE_UP, PARKED_AT
-from limitwatch.cli import FORMATS, main
-from limitwatch.cli_operator import (
-    _db_options,
-    _emit_json,
+from limitwatch.cli.options import (
     ago_text,
     clock,
+    db_options,
+    emit_json,
     fit_table,
+    format_option,
     iso,
     iso_s,
     opened,
@@ -92,7 +92,7 @@ def _record(row: dict[str, Any]) -> dict[str, Any]:
     }
 
 
-@main.command("notifications")
+@click.command("notifications")
 @click.option("--notifier", metavar="NAME", help="Only this notifier's notifications.")
 @click.option(
     "--state",
@@ -108,8 +108,8 @@ def _record(row: dict[str, Any]) -> dict[str, Any]:
     show_default=True,
     help="List at most this many, newest first (the summary covers all of them).",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
-@_db_options
+@format_option()
+@db_options
 def notifications_cmd(
     notifier: str | None,
     state: str,
@@ -142,7 +142,7 @@ def notifications_cmd(
     summary = summarise(rows, now)
     chosen = [r for r in rows if state == "all" or row_state(r) == state][:last]
     if fmt == "json":
-        _emit_json({"notifiers": summary, "notifications": [_record(r) for r in chosen]})
+        emit_json({"notifiers": summary, "notifications": [_record(r) for r in chosen]})
         return
     if not rows:
         which = f" for {notifier}" if notifier else ""

@@ -14,8 +14,15 @@ from typing import Any
 
 import click
 
-from limitwatch.cli import FORMATS, main
-from limitwatch.cli_operator import _db_options, _emit_json, clock, iso, iso_s, opened
+from limitwatch.cli.options import (
+    clock,
+    db_options,
+    emit_json,
+    format_option,
+    iso,
+    iso_s,
+    opened,
+)
 from limitwatch.durations import DurationError, parse_duration
 from limitwatch.ingest.timeparse import TimeFormatError, parse_time
 from limitwatch.payloadview import escape_text, view_payload
@@ -104,7 +111,7 @@ def _record(row: dict[str, Any], payload_bytes: int) -> dict[str, Any]:
     }
 
 
-@main.command("dead-letters")
+@click.command("dead-letters")
 @click.option("--source", metavar="NAME", help="Only inputs from this source (its config name).")
 @click.option(
     "--reason",
@@ -131,8 +138,8 @@ def _record(row: dict[str, Any], payload_bytes: int) -> dict[str, Any]:
     show_default=True,
     help="Show at most this many bytes of each payload; its full size is always given.",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
-@_db_options
+@format_option()
+@db_options
 def dead_letters_cmd(
     source: str | None,
     reason: str | None,
@@ -171,7 +178,7 @@ def dead_letters_cmd(
         {"source": s, "reason": r, "count": n} for (s, r), n in sorted(counts.items())
     ]
     if fmt == "json":
-        _emit_json(
+        emit_json(
             {"dead_letters": [_record(r, payload_bytes) for r in rows], "counts": summary}
         )
         return

@@ -1,6 +1,7 @@
-"""``limitwatch chart`` and ``limitwatch report``: pictures of what the service judged.
+"""What a chart of one stream shows, gathered from the store: readings, the limits each was
+judged against, the readings that signalled, incidents and silences.
 
-Why the gathering lives here and not in :mod:`limitwatch.charts`: the picture must show the limits
+Why gathering is apart from drawing: the picture must show the limits
 each reading was actually judged against, and the store records that only indirectly. A baseline
 version is stored when it is fitted (learned, or refit by an operator), but the service adopts a
 refit later, at its next check; the reading that first used it is not recorded. What *is* recorded
@@ -15,10 +16,6 @@ fall back on the alerts: an alert holds its first and last signalling reading.
 :func:`flags_from_alerts` marks both, and for the two rules that keep no state
 (``beyond-limits``, ``mr-beyond-limit``) every reading between them that crossed the same limit,
 which the rule must have signalled too.
-
-The database is found as the operator commands find it (``--db``, ``--config``,
-``$LIMITWATCH_DB``, ``./limitwatch.db``) and opened read-only through
-:func:`limitwatch.cli_operator.opened`.
 
 >>> from limitwatch.store import StoredReading
 >>> rs = [StoredReading("s", float(i), v, None, i, "monitoring", z, None)
@@ -40,32 +37,29 @@ import glob
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
-from pathlib import Path
 from typing import Any
 
-import click
-
-from limitwatch import charts
-from limitwatch.alerts.lifecycle import rule_words
-from limitwatch.cli import InputProblem, main
-from limitwatch.cli_operator import (
-    _db_options,
-    _stream_row,
-    _unknown_stream,
-    clock,
-    iso_s,
-    limits_of,
-    opened,
+from limitwatch.charts.data import (
+    ChartData,
+    Flag,
+    IncidentSpan,
+    LimitSet,
+    Point,
+    Silence,
+    silences,
 )
 from limitwatch.durations import DurationError, parse_duration
-from limitwatch.ingest.timeparse import TimeFormatError, parse_time
-from limitwatch.report import IMAGE_SIZE, AlertRow, Section, image_name, render_page
+from limitwatch.ingest.timeparse import TimeFormatError, format_time, parse_time
+from limitwatch.stats.baseline import limits_of
 from limitwatch.stats.constants import D2, MR_UCL_SIGMA
 from limitwatch.stats.rules import DETECTORS
 from limitwatch.stats.signal import Chart
-from limitwatch.store import Alert, Store, StoredReading
+from limitwatch.store import (
+    Alert,
+    Store,
+    StoredReading,
+)
 from limitwatch.store import Baseline as StoredBaseline
-from limitwatch.textout import num
 
 DEFAULT_LAST = 500
 """Readings drawn when neither --since nor --last is given: enough to see runs and shifts, few
@@ -79,21 +73,63 @@ _EVERY_SIGNAL_MARKED = frozenset({"beyond-limits", "mr-beyond-limit"})
 be found again from the stored readings."""
 
 
+class NothingToChart(LookupError):
+    """The stream never reported, or has no readings in the window asked for."""
+
+    def __init__(self, stream: str, *, known: bool, window: str = "") -> None:
+        self.stream = stream
+        self.known = known
+        super().__init__(
+            f"stream {stream!r} has no stored readings in that window ({window})"
+            if known
+            else f"no stream {stream!r} has reported to this database"
+        )
+
+
+class BadSince(ValueError):
+    """A ``since`` that is neither a time nor a span back from the newest reading."""
+
+
+def since_time(text: str, newest: float | None) -> float:
+    """An ISO 8601 time, epoch seconds, or a span with a unit (``8h``, ``2d``) counted back from
+    the stream's newest reading (readings carry the sender's time, which in a replay may be far
+    from today's clock).
+
+    >>> since_time("2027-01-01T06:00:00Z", None), since_time("2h", 10_000.0)
+    (1798783200.0, 2800.0)
+    """
+    stripped = text.strip()
+    problem = BadSince(
+        f"{text!r} is neither a time (ISO 8601 such as 2027-01-02T06:00:00Z, or epoch seconds) "
+        "nor a span back from the newest reading (such as 8h or 2d)"
+    )
+    if stripped and stripped[-1].isalpha() and not stripped.upper().endswith("Z"):
+        try:
+            span = parse_duration(stripped)
+        except DurationError:
+            raise problem from None
+        return (newest if newest is not None else 0.0) - span
+    try:
+        return parse_time(stripped)
+    except TimeFormatError:
+        raise problem from None
+
+
 # --------------------------------------------------------------------------- gathering (pure)
 
 
 def _provenance(stored: StoredBaseline) -> tuple[str, str]:
     learned = stored.created_by == "limitwatch" and stored.reason.startswith("learned")
     title = "learned" if learned else f"refit by {stored.created_by}"
-    return title, f"{stored.reason} ({iso_s(stored.created_at)})"
+    return title, f"{stored.reason} ({format_time(math.floor(stored.created_at))})"
 
 
-def _stored_set(stored: StoredBaseline, start: int) -> charts.LimitSet | None:
+def stored_limit_set(stored: StoredBaseline, start: int) -> LimitSet | None:
     limits = limits_of(stored.numbers)
     if limits is None:
         return None
     title, detail = _provenance(stored)
-    return charts.LimitSet(
+    return LimitSet(
         version=stored.version,
         start=start,
         center=limits.center,
@@ -111,13 +147,13 @@ def _stored_set(stored: StoredBaseline, start: int) -> charts.LimitSet | None:
     )
 
 
-def _reproduces(s: charts.LimitSet, r: StoredReading) -> bool:
+def _reproduces(s: LimitSet, r: StoredReading) -> bool:
     assert r.z is not None
     z = (r.value - s.center) / s.sigma
     return abs(z - r.z) <= _Z_TOLERANCE * max(1.0, abs(r.z))
 
 
-def _recovered(a: StoredReading, b: StoredReading) -> charts.LimitSet | None:
+def _recovered(a: StoredReading, b: StoredReading) -> LimitSet | None:
     """Center and sigma from two readings judged against the same limits:
     ``value = center + z * sigma`` twice gives both."""
     assert a.z is not None and b.z is not None and a.index is not None
@@ -127,7 +163,7 @@ def _recovered(a: StoredReading, b: StoredReading) -> charts.LimitSet | None:
     if not (math.isfinite(sigma) and sigma > 0):
         return None
     center = a.value - a.z * sigma
-    return charts.LimitSet(
+    return LimitSet(
         version=None,
         start=a.index,
         center=center,
@@ -145,9 +181,9 @@ def _recovered(a: StoredReading, b: StoredReading) -> charts.LimitSet | None:
 
 def limits_in_force(
     readings: Sequence[StoredReading], history: Sequence[StoredBaseline]
-) -> list[charts.LimitSet]:
+) -> list[LimitSet]:
     """The limits each monitored reading in ``readings`` was judged against, as a list of
-    :class:`~limitwatch.charts.LimitSet` whose ``start`` is the first reading (stream index) of
+    :class:`~limitwatch.charts.data.LimitSet` whose ``start`` is the first reading (stream index) of
     the window judged against it.
 
     Versions only move forward, so the current version is kept while it reproduces the stored z;
@@ -155,11 +191,11 @@ def limits_in_force(
     get limits recovered from themselves (see :func:`_recovered`); learning readings (no z) get
     none.
     """
-    stored = [s for b in history if (s := _stored_set(b, 0)) is not None]
+    stored = [s for b in history if (s := stored_limit_set(b, 0)) is not None]
     stored.sort(key=lambda s: s.version or 0)
     judged = [r for r in readings if r.z is not None and r.index is not None]
-    out: list[charts.LimitSet] = []
-    current: charts.LimitSet | None = None
+    out: list[LimitSet] = []
+    current: LimitSet | None = None
     for k, r in enumerate(judged):
         assert r.index is not None
         if current is not None and _reproduces(current, r):
@@ -191,12 +227,12 @@ def limits_in_force(
 def signal_flags(
     alerts: Sequence[Alert],
     readings: Sequence[StoredReading],
-    limits: Sequence[charts.LimitSet],
-) -> list[charts.Flag]:
+    limits: Sequence[LimitSet],
+) -> list[Flag]:
     """Every rule that signalled on each reading in ``readings``, as recorded with the reading;
     for readings stored before signals were recorded, what :func:`flags_from_alerts` can tell."""
     out = [
-        charts.Flag(r.index, rule, _chart_of(rule))
+        Flag(r.index, rule, _chart_of(rule))
         for r in readings
         if r.signals and r.index is not None
         for rule in r.signals
@@ -237,8 +273,8 @@ def _per_rule(alerts: Sequence[Alert]) -> list[_RuleSpan]:
 def flags_from_alerts(
     alerts: Sequence[Alert],
     readings: Sequence[StoredReading],
-    limits: Sequence[charts.LimitSet],
-) -> list[charts.Flag]:
+    limits: Sequence[LimitSet],
+) -> list[Flag]:
     """The readings in ``readings`` that signalled, with the rule, from the stream's alerts.
 
     Every alert's first and last signalling reading is marked. For ``beyond-limits`` and
@@ -256,12 +292,12 @@ def flags_from_alerts(
                 found = s.sigma
         return found
 
-    out: list[charts.Flag] = []
+    out: list[Flag] = []
     for a in _per_rule(alerts):
         chart: Chart = "mr" if a.signal.get("chart") == "mr" else "x"
         for index in {a.first_index, a.last_index}:
             if index is not None and index in by_index:
-                out.append(charts.Flag(index, a.rule, chart))
+                out.append(Flag(index, a.rule, chart))
         if a.first_index is None or a.last_index is None:
             continue
         between = [
@@ -269,20 +305,20 @@ def flags_from_alerts(
         ]
         if a.rule == "beyond-limits":
             k = abs(a.signal.get("limit") or 3.0)
-            out.extend(charts.Flag(r.index, a.rule, "x") for r in between if abs(r.z) > k)  # type: ignore[arg-type]
+            out.extend(Flag(r.index, a.rule, "x") for r in between if abs(r.z) > k)  # type: ignore[arg-type]
         elif a.rule == "mr-beyond-limit":
             limit, sigma = a.signal.get("limit"), a.signal.get("sigma")
             k = limit / sigma if limit and sigma else MR_UCL_SIGMA
             for r in between:
                 s = sigma_at(r.index)  # type: ignore[arg-type]
                 if r.mr is not None and s and r.mr / s > k:
-                    out.append(charts.Flag(r.index, a.rule, "mr"))  # type: ignore[arg-type]
+                    out.append(Flag(r.index, a.rule, "mr"))  # type: ignore[arg-type]
     return sorted(set(out), key=lambda f: (f.index, f.chart, f.rule))
 
 
-def to_points(readings: Sequence[StoredReading]) -> tuple[charts.Point, ...]:
+def to_points(readings: Sequence[StoredReading]) -> tuple[Point, ...]:
     return tuple(
-        charts.Point(
+        Point(
             index=r.index if r.index is not None else i,
             time=r.time,
             value=r.value,
@@ -293,40 +329,13 @@ def to_points(readings: Sequence[StoredReading]) -> tuple[charts.Point, ...]:
     )
 
 
-# --------------------------------------------------------------------------- gathering (store)
-
-
-def parse_since(text: str, newest: float | None) -> float:
-    """``--since``: an ISO 8601 time, epoch seconds, or a span with a unit (``8h``, ``2d``)
-    counted back from the stream's newest reading (readings carry the sender's time, which in
-    a replay may be far from today's clock).
-
-    >>> parse_since("2027-01-01T06:00:00Z", None), parse_since("2h", 10_000.0)
-    (1798783200.0, 2800.0)
-    """
-    stripped = text.strip()
-    problem = click.BadParameter(
-        f"{text!r} is neither a time (ISO 8601 such as 2027-01-02T06:00:00Z, or epoch seconds) "
-        "nor a span back from the newest reading (such as 8h or 2d)",
-        param_hint="--since",
-    )
-    if stripped and stripped[-1].isalpha() and not stripped.upper().endswith("Z"):
-        try:
-            span = parse_duration(stripped)
-        except DurationError:
-            raise problem from None
-        return (newest if newest is not None else 0.0) - span
-    try:
-        return parse_time(stripped)
-    except TimeFormatError:
-        raise problem from None
-
 
 def gather(
     store: Store, stream: str, *, since: str | None, last: int | None, strict: bool = True
-) -> charts.ChartData:
+) -> ChartData:
     """The chart data of ``stream`` from the store: the chosen readings, the limits in force,
-    the flagged readings. ``strict`` makes an unknown stream or an empty window an error."""
+    the flagged readings. ``strict`` makes an unknown stream or an empty window an error
+    (:class:`NothingToChart`)."""
     if since is None:
         wanted = last or DEFAULT_LAST
         readings = store.recent_readings(stream, last=wanted)
@@ -335,15 +344,17 @@ def gather(
             window = f"all {len(readings)} stored readings"
     else:
         everything = store.recent_readings(stream)
-        start = parse_since(since, everything[-1].time if everything else None)
+        start = since_time(since, everything[-1].time if everything else None)
         readings = [r for r in everything if r.time >= start]
         if last is not None:
             readings = readings[-last:]
-        window = f"since {iso_s(start)}" + (f", newest {last}" if last is not None else "")
+        window = f"since {format_time(math.floor(start))}" + (
+            f", newest {last}" if last is not None else ""
+        )
     if strict and not readings:
-        if _stream_row(store, stream) is None:
-            raise _unknown_stream(stream)
-        raise InputProblem(f"stream {stream!r} has no stored readings in that window ({window})")
+        if not any(s.id == stream for s in store.streams(glob=glob.escape(stream))):
+            raise NothingToChart(stream, known=False)
+        raise NothingToChart(stream, known=True, window=window)
     history = store.baseline_history(stream)
     alerts = [a for a in store.alerts(stream_glob=glob.escape(stream)) if a.stream == stream]
     limits = limits_in_force(readings, history)
@@ -371,11 +382,11 @@ def gather(
             f"rules mark each alert's first and last signal only; the alerts counted {counts}."
         )
     points = to_points(readings)
-    gaps = charts.silences(points)
+    gaps = silences(points)
     for a in alerts:
         if a.state != "cleared" and a.silent_since is not None:
-            gaps.append(charts.Silence(a.silent_since, None, a.last_time))
-    return charts.ChartData(
+            gaps.append(Silence(a.silent_since, None, a.last_time))
+    return ChartData(
         stream=stream,
         points=points,
         limits=tuple(limits),
@@ -383,7 +394,7 @@ def gather(
         window=window,
         notes=tuple(notes),
         incidents=tuple(
-            charts.IncidentSpan(
+            IncidentSpan(
                 a.id,
                 a.first_time,
                 a.seen_time if a.state == "cleared" else None,
@@ -395,209 +406,3 @@ def gather(
         silences=tuple(gaps),
     )
 
-
-def _draw(data: charts.ChartData, path: Path) -> None:
-    try:
-        charts.render(data, path, width_px=IMAGE_SIZE[0], height_px=IMAGE_SIZE[1])
-    except charts.ChartsUnavailable as exc:
-        raise InputProblem(str(exc)) from None
-    except OSError as exc:
-        raise InputProblem(f"cannot write {path}: {exc.strerror or exc}") from None
-
-
-def _need_matplotlib() -> None:
-    try:
-        charts.require_matplotlib()
-    except charts.ChartsUnavailable as exc:
-        raise InputProblem(str(exc)) from None
-
-
-# --------------------------------------------------------------------------- commands
-
-
-_since_option = click.option(
-    "--since",
-    metavar="TIME",
-    help="Only readings at or after TIME: ISO 8601 (2027-01-02T06:00:00Z), epoch seconds, or a "
-    "span back from the stream's newest reading (8h, 2d).",
-)
-
-
-@main.command("chart")
-@click.argument("stream")
-@_since_option
-@click.option(
-    "--last",
-    type=click.IntRange(1),
-    metavar="N",
-    help=f"Only the newest N readings (of those since --since)  [default: {DEFAULT_LAST} "
-    "without --since].",
-)
-@click.option(
-    "-o",
-    "--output",
-    required=True,
-    type=click.Path(dir_okay=False),
-    help="The picture to write: FILE.png or FILE.svg.",
-)
-@_db_options
-def chart_cmd(
-    stream: str,
-    since: str | None,
-    last: int | None,
-    output: str,
-    db_path: str | None,
-    config_file: str | None,
-) -> None:
-    """Draw the XmR chart of STREAM: the X chart over the moving-range chart, with the limits in
-    force (stepping where the baseline changed), zones A/B/C, the readings that signalled
-    marked with their rule, and the numbers in a caption.
-
-    Needs the charts extra: pip install 'limitwatch[charts]'.
-
-    \b
-    Examples:
-      limitwatch chart pack-2/downtime -o pack-2.png
-      limitwatch chart comp-a/discharge-temp --since 12h -o comp-a.svg
-    """
-    path = Path(output)
-    if path.suffix.lower() not in (".png", ".svg"):
-        raise click.BadParameter(
-            f"{output!r} must end in .png or .svg (the suffix picks the format)",
-            param_hint="-o/--output",
-        )
-    _need_matplotlib()
-    with opened(db_path, config_file, now=clock()) as store:
-        data = gather(store, stream, since=since, last=last)
-    if path.parent != Path():
-        path.parent.mkdir(parents=True, exist_ok=True)
-    _draw(data, path)
-    names = [s.name for s, _, _ in charts.spans(data.points, data.limits)]
-    versions = f"limits {', '.join(names)}" if names else "no limits yet"
-    flagged = len({f.index for f in data.flags})
-    click.echo(
-        f"Wrote {path}: {len(data.points)} readings of {stream} ({data.window}), "
-        f"{versions}, {flagged} reading(s) flagged."
-    )
-
-
-def _limit_rows(stored: StoredBaseline | None) -> list[tuple[str, str]]:
-    if stored is None:
-        return []
-    s = _stored_set(stored, 0)
-    if s is None:
-        return [("version", f"v{stored.version}"), ("numbers", str(stored.numbers))]
-    return [
-        ("version", f"v{stored.version}, {s.title}, {iso_s(stored.created_at)}"),
-        ("reason", stored.reason),
-        ("center line", num(s.center, 5)),
-        ("sigma", num(s.sigma, 4)),
-        ("UCL", num(s.ucl, 5) if s.ucl is not None else "none (beyond the natural bound)"),
-        ("LCL", num(s.lcl, 5) if s.lcl is not None else "none (beyond the natural bound)"),
-        ("MR upper limit", num(s.mr_ucl, 4)),
-        ("readings used", str(s.n)),
-        ("method", f"sigma from the {charts.method_words(s.method)}"),
-    ]
-
-
-def _alert_row(a: Alert) -> AlertRow:
-    at = "" if a.first_index is None else f"reading {a.first_index}, "
-    return AlertRow(
-        id=a.id,
-        rule=", ".join(t.rule for t in sorted(a.rules.values(), key=lambda t: t.first_time))
-        or a.rule,
-        state=a.state,
-        severity=a.severity,
-        opened=iso_s(a.opened_at),
-        first=f"{at}{iso_s(a.first_time)}",
-        last_value=num(a.last_value, 5),
-        count=a.signal_count,
-        meaning=rule_words(a.rule),
-    )
-
-
-@main.command("report")
-@click.option(
-    "--out",
-    "out_dir",
-    required=True,
-    type=click.Path(file_okay=False),
-    help="Folder for index.html and the chart pictures (created if needed).",
-)
-@click.option(
-    "--stream",
-    "stream_glob",
-    metavar="GLOB",
-    help="Only streams whose id matches GLOB (shell-style, case-sensitive)  [default: all].",
-)
-@click.option(
-    "--last",
-    type=click.IntRange(1),
-    default=DEFAULT_LAST,
-    show_default=True,
-    metavar="N",
-    help="Readings per chart (the newest N).",
-)
-@_db_options
-def report_cmd(
-    out_dir: str,
-    stream_glob: str | None,
-    last: int,
-    db_path: str | None,
-    config_file: str | None,
-) -> None:
-    """Write a static HTML page (DIR/index.html) with every stream's chart, its current limits
-    and its open and acknowledged alerts. The page needs no network: no scripts, no web fonts,
-    the pictures are PNG files next to it.
-
-    Needs the charts extra: pip install 'limitwatch[charts]'.
-
-    \b
-    Example:
-      limitwatch report --out plant-report
-    """
-    _need_matplotlib()
-    now = clock()
-    gathered: list[tuple[charts.ChartData, StoredBaseline | None, list[Alert], Any]] = []
-    with opened(db_path, config_file, now=now) as store:
-        source = store.path
-        rows = store.streams(glob=stream_glob)
-        live = store.live_alerts([r.id for r in rows])
-        for row in rows:
-            data = gather(store, row.id, since=None, last=last, strict=False)
-            mine = [a for a in live if a.stream == row.id]
-            gathered.append((data, store.current_baseline(row.id), mine, row))
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    taken: set[str] = {"index.html"}
-    sections: list[Section] = []
-    for data, current, mine, row in gathered:
-        name = image_name(row.id, taken)
-        _draw(data, out / name)
-        sections.append(
-            Section(
-                stream=row.id,
-                image=name,
-                limits=_limit_rows(current),
-                alerts=[_alert_row(a) for a in sorted(mine, key=lambda a: a.id)],
-                summary=[
-                    num(row.last_value, 5),
-                    iso_s(row.last_time),
-                    row.phase or "-",
-                    "-" if current is None else f"v{current.version}",
-                ],
-            )
-        )
-    page = render_page(
-        sections,
-        generated=iso_s(now),
-        source=source,
-        summary_headers=["last value", "last reading (UTC)", "phase", "baseline"],
-    )
-    index = out / "index.html"
-    index.write_text(page, encoding="utf-8")
-    alerts = sum(len(s.alerts) for s in sections)
-    click.echo(
-        f"Wrote {index} with {len(sections)} stream chart(s) and {alerts} open or acknowledged "
-        "alert(s); open it in a browser, no network needed."
-    )

@@ -30,8 +30,14 @@ from typing import Any
 
 import click
 
-from limitwatch.cli import FORMATS, InputProblem, main
-from limitwatch.config import ConfigError, load_config
+from limitwatch.cli.options import (
+    InputProblem,
+    format_option,
+)
+from limitwatch.config import (
+    ConfigError,
+    load_config,
+)
 from limitwatch.durations import DurationError, format_duration, parse_duration
 from limitwatch.planner import (
     ASSUMPTIONS,
@@ -82,7 +88,7 @@ def _save_cache(path: Path) -> None:
         click.echo(f"warning: could not keep the run lengths in {path}: {exc}", err=True)
 
 
-@main.command("plan")
+@click.command("plan")
 @click.option(
     "--cadence",
     metavar="DURATION",
@@ -123,7 +129,7 @@ def _save_cache(path: Path) -> None:
     "finds the rule set that fits with the shortest delay at one sigma. With --config the "
     "default is [budget] false_alarms_per_week.",
 )
-@click.option("--format", "fmt", type=FORMATS, default="table", show_default=True)
+@format_option()
 @click.option("--no-cache", is_flag=True, help="Neither read nor write the run-length cache file.")
 def plan(
     cadence: str | None,

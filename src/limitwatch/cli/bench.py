@@ -12,10 +12,9 @@ import sys
 import click
 
 from limitwatch.bench import PARTS, describe, machine, run
-from limitwatch.cli import main
 
 
-@main.command("bench")
+@click.command("bench")
 @click.option("--quick", is_flag=True, help="Smaller runs: the whole bench in about a minute.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON document instead of text.")
 @click.option(

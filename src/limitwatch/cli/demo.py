@@ -12,6 +12,7 @@ from __future__ import annotations
 import json
 import shlex
 import shutil
+import sqlite3
 import sys
 import threading
 import time
@@ -23,7 +24,9 @@ from pathlib import Path
 import click
 
 from limitwatch import SAFETY_CAUTION, demo_folder
-from limitwatch.cli import main
+from limitwatch.config import (
+    load_config,
+)
 from limitwatch.demo import LEARN, PLANT, STREAMS, generate
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.localbroker import mosquitto_path, private_broker
@@ -64,7 +67,7 @@ time_format = "epoch_s"
     return text[:start] + source + text[end:]
 
 
-@main.command("demo")
+@click.command("demo")
 @click.option(
     "--folder",
     type=click.Path(file_okay=False),
@@ -120,7 +123,6 @@ def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
 
 
 def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], None]) -> None:
-    from limitwatch.config import load_config
     from limitwatch.service import Job, Service
 
     config = load_config(root / "demo.toml")
@@ -233,7 +235,6 @@ def _mqtt_feeder(config: object) -> Callable[[list[tuple[str, float, float]]], N
 
 
 def _stored(db: Path) -> int:
-    import sqlite3
 
     conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
     try:
@@ -245,7 +246,6 @@ def _stored(db: Path) -> int:
 
 
 def _stale_alerts(db: Path) -> int:
-    import sqlite3
 
     conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
     try:
@@ -287,7 +287,6 @@ def _wait_for(check: Callable[[], bool], timeout: float, what: str) -> None:
 
 
 def _summary(root: Path, db: Path, echo: Callable[[str], None]) -> None:
-    import sqlite3
 
     conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True)
     try:

@@ -8,12 +8,18 @@ import sys
 import click
 
 from limitwatch import LOG_FORMAT, SAFETY_CAUTION
-from limitwatch.cli import InputProblem, main
-from limitwatch.config import ConfigError, check_secrets, load_config
+from limitwatch.cli.options import (
+    InputProblem,
+)
+from limitwatch.config import (
+    ConfigError,
+    check_secrets,
+    load_config,
+)
 from limitwatch.config_units import bare_durations_in
 
 
-@main.command("serve")
+@click.command("serve")
 @click.option(
     "--config",
     "config_path",
