@@ -5,6 +5,7 @@ alias, a death and rebirths."""
 from __future__ import annotations
 
 import json
+import random
 import threading
 import time
 import urllib.error
@@ -16,6 +17,7 @@ import pytest
 
 from limitwatch.config import load_config
 from tests.broker import free_port
+from tests.receivers import WebhookReceiver
 from tests.service_harness import ServiceProcess, count, process_gone, query, wait_until
 from tests.sparkplug_node import EdgeNode
 
@@ -25,7 +27,9 @@ T0 = int((time.time() - 86_400) * 1000)  # yesterday, in ms: readings are never 
 METRICS = {"oil/temp": 1, "ram/force": 2}
 
 
-def sparkplug_config(folder: Path, port: int, health_port: int | None = None) -> Path:
+def sparkplug_config(
+    folder: Path, port: int, health_port: int | None = None, extra: str = ""
+) -> Path:
     listen = f'metrics_listen = "127.0.0.1:{health_port}"\n' if health_port else ""
     path = folder / "site.toml"
     path.write_text(
@@ -50,7 +54,7 @@ edge_nodes = ["plant-a/press-1"]
 rebirth_every = "200ms"
 reconnect_min_s = 1
 reconnect_max_s = 2
-"""
+{extra}"""
     )
     return path
 
@@ -174,6 +178,63 @@ def test_births_aliases_gaps_deaths_and_rebirths_through_the_service(broker, tmp
     assert query(db, "SELECT count(DISTINCT stream || time) FROM readings")[0][0] == sent
     reasons = sorted(r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters"))
     assert reasons == ["late", "node-offline", "seq-gap", "unknown-alias"]
+
+
+def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(broker, tmp_path):
+    """NDEATH (here the node's explicit death; the broker sends the same bytes as its will)
+    opens a stale incident on each of its streams in the batch that commits the death, long
+    before any stale check could (none is configured: no cadence), and the notification says
+    the node reported offline and when its last reading was. The new birth's data clears them."""
+    db = tmp_path / "service.db"
+    with WebhookReceiver() as hook:
+        extra = (
+            f'\n[[notifiers]]\nname = "ops-hook"\ntype = "webhook"\nurl = "{hook.url}"\n'
+            "connect_timeout_s = 2\nread_timeout_s = 5\n"
+        )
+        svc = ServiceProcess(sparkplug_config(tmp_path, broker.port, extra=extra)).start()
+        node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)
+        try:
+            wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
+            node.connect()
+            node.birth(steady(0), T0)
+            for i in range(1, 15):
+                node.data(steady(i), T0 + 60_000 * i)
+            wait_until(lambda: count(db, "readings") == 30, what="the birth and data")
+            assert count(db, "alerts") == 0
+
+            node.die()
+            wait_until(lambda: count(db, "alerts", "rule = 'stale' AND state = 'open'") == 2,
+                       what="both streams' stale incidents")  # fmt: skip
+            wait_until(lambda: len(_bodies(hook, "opened")) == 2, what="both notifications")
+            node.birth(steady(15), T0 + 60_000 * 15)
+            node.data(steady(16), T0 + 60_000 * 16)
+            wait_until(lambda: count(db, "alerts", "state = 'cleared'") == 2,
+                       what="the rebirth's readings clear them")  # fmt: skip
+            wait_until(lambda: len(_bodies(hook, "cleared")) == 2, what="both cleared notices")
+        finally:
+            node.close()
+            assert svc.stop() == 0
+    opened, cleared = _bodies(hook, "opened"), _bodies(hook, "cleared")
+    assert sorted(b["stream"] for b in opened) == [
+        "plant-a/press-1/oil/temp",
+        "plant-a/press-1/ram/force",
+    ]
+    for body in opened:
+        assert body["rule"] == "stale"
+        assert "the edge node plant-a/press-1 reported offline (NDEATH)" in body["rule_words"]
+        assert body["silent_since"] == (T0 + 60_000 * 14) / 1000  # its last reading
+    assert {b["stream"] for b in cleared} == {b["stream"] for b in opened}
+    assert count(db, "alerts") == 2  # the rebirth opened nothing new
+
+
+def steady(i: int) -> dict[str, float]:
+    """In-control values (independent normal noise), so only the death opens incidents."""
+    noise = random.Random(i)
+    return {"oil/temp": 40.0 + noise.gauss(0, 0.2), "ram/force": 120.0 + noise.gauss(0, 1.0)}
+
+
+def _bodies(hook: WebhookReceiver, kind: str) -> list[dict]:
+    return [b for b in (json.loads(r.body) for r in hook.accepted()) if b["kind"] == kind]
 
 
 def test_kill_9_mid_stream_loses_nothing(broker, tmp_path):

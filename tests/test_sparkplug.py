@@ -97,10 +97,16 @@ def test_ndeath_needs_the_births_bdseq():
     handle(host, "NBIRTH", birth(bd=4))
     out = handle(host, "NDEATH", payload(None, [bd_seq_metric(3)]))
     assert [r.reason for r in out.refusals] == ["stale-death"]
+    assert out.offline == []  # an older session's death takes nothing offline
     assert host.nodes[("plant-a", "press-1")].born
     out = handle(host, "NDEATH", payload(None, [bd_seq_metric(4)]))
     assert [r.reason for r in out.refusals] == ["node-offline"]
     assert "reported offline" in out.event
+    # its numeric metrics (not bdSeq, not the Boolean rebirth control) go offline at once
+    assert out.offline == [(None, "oil/temp"), (None, "ram/force")]
+    assert out.offline_words == "the edge node plant-a/press-1 reported offline (NDEATH)"
+    again = handle(host, "NDEATH", payload(None, [bd_seq_metric(4)]))
+    assert again.offline == []  # already offline: nothing new to say
     out = handle(host, "NDATA", payload(1, [{"alias": 1, "double_value": 1.0}], T))
     assert out.rebirth and [r.reason for r in out.refusals] == ["not-born"]
 
@@ -118,6 +124,8 @@ def test_devices_are_born_fed_and_die():
     assert [r.reason for r in out.refusals] == ["unknown-alias"]
     out = handle(host, "DDEATH", payload(4, []), device="pump-2")
     assert [r.reason for r in out.refusals] == ["device-offline"]
+    assert out.offline == [("pump-2", "flow")]  # the device's metrics only, not the node's
+    assert out.offline_words == "the device plant-a/press-1/pump-2 reported offline (DDEATH)"
     out = handle(host, "DDATA", payload(5, [{"alias": 20, "float_value": 3.0}]), device="pump-2")
     assert [r.reason for r in out.refusals] == ["not-born"]
 
@@ -227,4 +235,9 @@ def test_random_and_truncated_payloads_through_the_source_are_dead_letters(kind,
     assert [p.reading.value for p in good if p.reading] == [41.5, 7.0]
     for body in (junk, (birth() + junk)[:cut]):
         for part in deliver(topic, body):
+            if part.offline:  # a death of the born node: its streams, and no dead letter
+                assert part.reading is None and part.error is None and "offline" in part.detail
+                streams = {"plant-a/press-1/oil/temp", "plant-a/press-1/ram/force"}
+                assert set(part.offline) <= streams
+                continue
             assert part.reading is not None or (part.error and part.raw.startswith(topic.encode()))

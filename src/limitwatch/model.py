@@ -51,6 +51,9 @@ class StreamSignal:
     baseline_version: int
     statistic: float | None = None
     limit: float | None = None
+    cause: str | None = None
+    """Why a ``stale`` signal came before its time, in words for people (a source said the
+    sender went offline); None for the silence the stale check measures."""
 
 
 @dataclass(slots=True)

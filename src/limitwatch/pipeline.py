@@ -42,7 +42,7 @@ import logging
 import math
 import sqlite3
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 from limitwatch.alerts.lifecycle import AlertBook, BookReport
 from limitwatch.engine import MonitorSettings, StreamMonitor
@@ -335,13 +335,19 @@ class Pipeline:
         touched: dict[str, StreamMonitor] = {}
         fitted: list[tuple[StreamMonitor, Outcome]] = []
         due: list[str] = []
+        offline: dict[str, str] = {}
+        """Stream -> why its sender went offline, for streams with no reading after that."""
         for item in items:
+            if item.offline:
+                offline.update(dict.fromkeys(item.offline, item.detail))
+                continue
             if item.reading is None:
                 reason = item.error or "unreadable"
                 dead_rows.append((item.source, item.raw, _reason(reason, item.detail)))
                 result.dead.append((item.source, reason))
                 continue
             stream = item.reading.stream
+            offline.pop(stream, None)  # back online within the batch
             try:
                 monitor = self.monitor(stream, now)
             except Exception as exc:
@@ -374,6 +380,10 @@ class Pipeline:
             for monitor, outcome in fitted:
                 self._record_learned(monitor, outcome, now)
             report = self.book.apply(result.outcomes, now)
+            gone = self.offline_signals(offline, now)
+            if gone:
+                report = _added(report, self.book.apply_signals(gone, now))
+                result.signals.extend(gone)
             due = self._due(touched, [m.stream for m, _ in fitted], now)
             if due:
                 self.store.save_checkpoints(
@@ -406,6 +416,18 @@ class Pipeline:
         return result
 
     def _apply_alone(self, item: Parsed, now: float, result: BatchResult) -> None:
+        if item.offline:
+            gone = self.offline_signals(dict.fromkeys(item.offline, item.detail), now)
+            if gone:
+                reports: list[BookReport] = []
+                self._commit_or_break(lambda: reports.append(self.book.apply_signals(gone, now)))
+                result.signals.extend(gone)
+                for report in reports:
+                    result.opened += report.opened
+                    result.queued += report.queued
+                    result.flood_started += report.flood_started
+                    result.flood_ended += report.flood_ended
+            return
         reading = item.reading
         if reading is None:
             self._dead_alone(item, item.error or "unreadable", item.detail, now, result)
@@ -623,32 +645,59 @@ class Pipeline:
             last = monitor.last_time
             if cadence is None or last is None:
                 continue
-            silent = now - last
-            if silent <= cadence * multiple:
+            if now - last <= cadence * multiple:
                 continue
-            b = monitor.baseline
-            out.append(
-                StreamSignal(
-                    stream=stream,
-                    rule="stale",
-                    chart="x",
-                    side=None,
-                    index=max(monitor.count - 1, 0),
-                    time=now,
-                    value=monitor.last_value if monitor.last_value is not None else float("nan"),
-                    involved=(),
-                    center=b.center if b else float("nan"),
-                    sigma=b.sigma if b else float("nan"),
-                    ucl=b.ucl if b else None,
-                    lcl=b.lcl if b else None,
-                    mr=None,
-                    mr_ucl=b.mr_ucl if b else float("nan"),
-                    baseline_version=monitor.baseline_version,
-                    statistic=silent,
-                    limit=cadence * multiple,
-                )
-            )
+            out.append(_stale(monitor, now, limit=cadence * multiple))
         return out
+
+    def offline_signals(self, causes: dict[str, str], now: float) -> list[StreamSignal]:
+        """A ``stale`` signal at once for each stream whose sender said it went offline
+        (``causes``: stream -> the words why), whatever its cadence: the same signal the stale
+        check makes, with the cause and without a limit. Streams never read are left out
+        (there is no last reading to speak of); no monitor is made for them."""
+        out = []
+        for stream, cause in causes.items():
+            monitor = self.monitors.get(stream)
+            if monitor is None or monitor.last_time is None:
+                continue
+            out.append(_stale(monitor, now, limit=None, cause=cause))
+        return out
+
+
+def _stale(
+    monitor: StreamMonitor, now: float, *, limit: float | None, cause: str | None = None
+) -> StreamSignal:
+    """A ``stale`` signal for ``monitor``'s stream as of ``now``: its statistic is the silence
+    since the last reading, so the incident's silence begins there."""
+    assert monitor.last_time is not None
+    b = monitor.baseline
+    return StreamSignal(
+        stream=monitor.stream,
+        rule="stale",
+        chart="x",
+        side=None,
+        index=max(monitor.count - 1, 0),
+        time=now,
+        value=monitor.last_value if monitor.last_value is not None else float("nan"),
+        involved=(),
+        center=b.center if b else float("nan"),
+        sigma=b.sigma if b else float("nan"),
+        ucl=b.ucl if b else None,
+        lcl=b.lcl if b else None,
+        mr=None,
+        mr_ucl=b.mr_ucl if b else float("nan"),
+        baseline_version=monitor.baseline_version,
+        statistic=max(now - monitor.last_time, 0.0),
+        limit=limit,
+        cause=cause,
+    )
+
+
+def _added(a: BookReport, b: BookReport) -> BookReport:
+    """Two reports of one batch as one."""
+    return BookReport(
+        **{f.name: getattr(a, f.name) + getattr(b, f.name) for f in fields(a)}
+    )
 
 
 _ROW_REFUSED = (

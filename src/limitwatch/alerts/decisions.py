@@ -238,6 +238,10 @@ class _Work:
                 self.event(alert, "raised", f"severity {alert.severity} -> {severity}")
                 alert.severity = severity
         else:
+            if "cause" in tally.signal and "cause" not in ctx:
+                # The stale check's later signal repeats a silence whose cause a source said
+                # (a Sparkplug death): keep saying it.
+                ctx["cause"] = tally.signal["cause"]
             tally.signal_count += 1
             tally.last_time, tally.last_index, tally.last_value = (
                 signal.time,

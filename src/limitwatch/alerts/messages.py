@@ -85,6 +85,18 @@ def rule_words(rule: str) -> str:
     return RULE_WORDS.get(rule, f"Rule {rule!r} signalled a special cause.")
 
 
+def _said(rule: str, signal: dict[str, Any]) -> str:
+    """:func:`rule_words`, but for a stale incident whose sender said it went offline (a
+    Sparkplug death), what it said instead of a guess at why the readings stopped."""
+    cause = signal.get("cause") if rule == "stale" else None
+    if not cause:
+        return rule_words(rule)
+    return (
+        f"No readings: {cause}. Its readings stop until it comes back (its next birth or data "
+        "clears this)."
+    )
+
+
 @dataclass(frozen=True, slots=True)
 class StreamInfo:
     """What the config says about a stream, for people: its description and unit."""
@@ -181,7 +193,7 @@ def notification_payload(
             "first_time_iso": iso_time(t.first_time),
             "last_time": t.last_time,
             "last_time_iso": iso_time(t.last_time),
-            "words": rule_words(t.rule),
+            "words": _said(t.rule, sig),
         }
         for t in sorted(alert.rules.values(), key=lambda t: (t.first_time, t.rule))
     ]
@@ -200,7 +212,7 @@ def notification_payload(
         "description": info.description,
         "unit": info.unit,
         "rule": alert.rule,
-        "rule_words": rule_words(alert.rule),
+        "rule_words": _said(alert.rule, sig),
         "rules": rules,
         "severity": alert.severity,
         "value": _num(alert.last_value),

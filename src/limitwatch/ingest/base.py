@@ -85,6 +85,11 @@ class Parsed:
     """Where the source stands once this item is used (for a file line: file identity and
     the offset after the line), committed with the item when a batch is applied one item at
     a time."""
+    offline: tuple[str, ...] = ()
+    """Streams whose sender said it went offline (a Sparkplug death): the worker opens their
+    stale incidents in the batch that commits this item, with ``detail`` as the words why,
+    instead of waiting for the stale check. A reading of the stream later in the same batch
+    cancels it. Not a dead letter: ``reading`` and ``error`` stay None."""
 
 
 class Item(NamedTuple):

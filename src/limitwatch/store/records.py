@@ -308,7 +308,7 @@ def signal_context(signal: StreamSignal) -> dict[str, Any]:
     >>> signal_context(s)["ucl"], signal_context(s)["involved"]
     (129.0, [40])
     """
-    return {
+    context: dict[str, Any] = {
         "chart": signal.chart,
         "side": signal.side,
         "index": signal.index,
@@ -323,6 +323,9 @@ def signal_context(signal: StreamSignal) -> dict[str, Any]:
         "statistic": _finite(signal.statistic),
         "limit": _finite(signal.limit),
     }
+    if signal.cause:
+        context["cause"] = signal.cause
+    return context
 
 
 @dataclass(frozen=True, slots=True)

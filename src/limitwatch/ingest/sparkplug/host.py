@@ -130,6 +130,10 @@ class Outcome:
     skipped: int = 0
     rebirth: bool = False
     event: str | None = None
+    offline: list[tuple[str | None, str]] = field(default_factory=list)
+    """(device or None, metric name) of each numeric metric a death took offline."""
+    offline_words: str = ""
+    """Who reported offline, for the stale incidents of those metrics' streams."""
 
 
 @dataclass
@@ -211,6 +215,8 @@ class SparkplugHost:
                 assert message.device is not None
                 if message.device in node.devices:
                     node.devices.discard(message.device)
+                    out.offline = _numeric_metrics(node, {message.device})
+                    out.offline_words = f"the device {_name(message)} reported offline (DDEATH)"
                     out.refusals.append(
                         Refusal(
                             "device-offline",
@@ -262,6 +268,8 @@ class SparkplugHost:
         node.seq = None
         out.event = "edge node reported offline (NDEATH)"
         if was_born:
+            out.offline = _numeric_metrics(node, None)
+            out.offline_words = f"the edge node {_name(message)} reported offline (NDEATH)"
             out.refusals.append(
                 Refusal(
                     "node-offline",
@@ -363,6 +371,19 @@ class SparkplugHost:
             out.readings.append(
                 MetricReading(message.device, name, moment, value, metric.is_historical)
             )
+
+
+def _numeric_metrics(
+    node: NodeState, devices: set[str] | None
+) -> list[tuple[str | None, str]]:
+    """The metrics the births gave as numbers (those that become readings), of ``devices``
+    only, or of the node and every device when None."""
+    return sorted(
+        ((device, name) for (device, name), datatype in node.names.items()
+         if datatype in _NUMERIC and not name.startswith(_OWN)
+         and (devices is None or device in devices)),
+        key=lambda pair: (pair[0] or "", pair[1]),
+    )
 
 
 def _decode(payload: bytes) -> Any:

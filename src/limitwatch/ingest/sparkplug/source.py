@@ -37,7 +37,13 @@ from limitwatch.ingest.mqtt.client import Delivery, MqttSettings
 from limitwatch.ingest.mqtt.process import MqttProcess
 from limitwatch.ingest.mqtt.source import connection_settings, envelope
 from limitwatch.ingest.payload import LATEST_TIME
-from limitwatch.ingest.sparkplug.host import NodeState, SparkplugHost, parse_topic
+from limitwatch.ingest.sparkplug.host import (
+    Message,
+    NodeState,
+    Outcome,
+    SparkplugHost,
+    parse_topic,
+)
 from limitwatch.ingest.sparkplug.proto import DATATYPES, Payload
 from limitwatch.ingest.sparkplug.settings import SparkplugSourceConfig
 from limitwatch.ingest.streamid import stream_id_problem
@@ -142,6 +148,8 @@ class SparkplugSource(Source):
             self._ask_rebirth(message.group, message.node, received_at)
         self.skipped += outcome.skipped
         out = [Parsed(self.name, raw, error=r.reason, detail=r.detail) for r in outcome.refusals]
+        if outcome.offline:
+            out.append(self._offline(message, outcome, raw))
         for found in outcome.readings:
             stream = self.config.stream_for(message.group, message.node, found.device, found.metric)
             problem = _time_problem(found.time, received_at, self.future_tolerance)
@@ -157,6 +165,15 @@ class SparkplugSource(Source):
                 continue
             out.append(Parsed(self.name, raw, reading=Reading(stream, found.time, found.value)))
         return out
+
+    def _offline(self, message: Message, outcome: Outcome, raw: bytes) -> Parsed:
+        """The streams a death took offline, for the worker to open their stale incidents."""
+        streams = []
+        for device, metric in outcome.offline:
+            stream = self.config.stream_for(message.group, message.node, device, metric)
+            if stream_id_problem(stream) is None:
+                streams.append(stream)
+        return Parsed(self.name, raw, offline=tuple(streams), detail=outcome.offline_words)
 
     def _ask_rebirth(self, group: str, node: str, now: float) -> None:
         last = self._asked.get((group, node))
