@@ -113,6 +113,15 @@ class EdgeNode:
         ).wait_for_publish(5)
         self.bd_seq += 1
 
+    def vanish(self) -> None:
+        """Drop the connection without a DISCONNECT (power cut, cable pulled): the broker
+        publishes the will, the NDEATH set at connect."""
+        self.client.loop_stop()
+        sock = self.client.socket()
+        if sock is not None:
+            sock.close()
+        self.bd_seq += 1
+
     def close(self) -> None:
         self.client.loop_stop()
         self.client.disconnect()

@@ -180,9 +180,12 @@ def test_births_aliases_gaps_deaths_and_rebirths_through_the_service(broker, tmp
     assert reasons == ["late", "node-offline", "seq-gap", "unknown-alias"]
 
 
-def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(broker, tmp_path):
-    """NDEATH (here the node's explicit death; the broker sends the same bytes as its will)
-    opens a stale incident on each of its streams in the batch that commits the death, long
+@pytest.mark.parametrize("how", ["ndeath", "will"])
+def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(
+    broker, tmp_path, how
+):
+    """NDEATH (the node's own, or its will that the broker sends when the node's connection
+    drops) opens a stale incident on each of its streams in the batch that commits the death, long
     before any stale check could (none is configured: no cadence), and the notification says
     the node reported offline and when its last reading was. The new birth's data clears them."""
     db = tmp_path / "service.db"
@@ -202,10 +205,17 @@ def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(bro
             wait_until(lambda: count(db, "readings") == 30, what="the birth and data")
             assert count(db, "alerts") == 0
 
-            node.die()
+            if how == "will":
+                node.vanish()
+                node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)  # comes back later
+                node.bd_seq = 1
+            else:
+                node.die()
             wait_until(lambda: count(db, "alerts", "rule = 'stale' AND state = 'open'") == 2,
                        what="both streams' stale incidents")  # fmt: skip
             wait_until(lambda: len(_bodies(hook, "opened")) == 2, what="both notifications")
+            if how == "will":
+                node.connect()
             node.birth(steady(15), T0 + 60_000 * 15)
             node.data(steady(16), T0 + 60_000 * 16)
             wait_until(lambda: count(db, "alerts", "state = 'cleared'") == 2,
