@@ -95,3 +95,23 @@ def test_the_stale_check_repeating_the_silence_keeps_the_cause(tmp_path: Path) -
             assert alert.signal_count == 2
             assert alert.signal["cause"] == CAUSE
             assert CAUSE in notification_payload(alert, Notice("reminder", 1), 9600.0)["rule_words"]
+
+
+def test_an_offline_item_in_a_batch_applied_one_at_a_time_still_opens_them(tmp_path: Path) -> None:
+    """A batch the database refuses a row of is applied again item by item: the death's
+    stale incidents open there too, after the readings before it."""
+    with Store.open(tmp_path / "lw.db", now=0.0) as store:
+        pipe = _pipeline(store)
+        _fed(pipe)
+        store.db.conn.execute(
+            "CREATE TRIGGER no_thirteen BEFORE INSERT ON readings WHEN NEW.value = 13.0 "
+            "BEGIN SELECT RAISE(ABORT, 'a value of 13 is refused here'); END"
+        )
+        refused = Parsed("presses", b"13", Reading(PRESS[0], 1000.0 + 60.0 * 12, 13.0))
+        result = pipe.process([_reading(PRESS[1], 12), refused, _death()], now=9000.0)
+        assert [reason for _, reason in result.dead] == ["store-refused"]
+        assert result.opened == 2 and len(result.signals) == 2
+        live = {a.stream: a for a in store.live_alerts()}
+        assert sorted(live) == sorted(PRESS)
+        assert live[PRESS[1]].silent_since == 1000.0 + 60.0 * 12
+        assert live[PRESS[0]].silent_since == 1000.0 + 60.0 * 11  # the refused one never counted
