@@ -115,3 +115,17 @@ def test_an_offline_item_in_a_batch_applied_one_at_a_time_still_opens_them(tmp_p
         assert sorted(live) == sorted(PRESS)
         assert live[PRESS[1]].silent_since == 1000.0 + 60.0 * 12
         assert live[PRESS[0]].silent_since == 1000.0 + 60.0 * 11  # the refused one never counted
+
+
+def test_a_death_joins_a_live_incident_and_says_why_under_its_stale_rule(tmp_path: Path) -> None:
+    with Store.open(tmp_path / "lw.db", now=0.0) as store:
+        pipe = _pipeline(store)
+        _fed(pipe)
+        wild = Parsed("presses", b"wild", Reading(PRESS[0], 1000.0 + 60.0 * 12, 90.0))
+        pipe.process([wild], now=9000.0)
+        pipe.process([_death((PRESS[0],))], now=9100.0)
+        (alert,) = store.live_alerts()
+        assert {"beyond-limits", "stale"} <= set(alert.rules)
+        body = notification_payload(alert, Notice("opened", 0), 9100.0)
+        words = {r["rule"]: r["words"] for r in body["rules"]}
+        assert CAUSE in words["stale"] and CAUSE not in words["beyond-limits"]

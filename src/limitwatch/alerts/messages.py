@@ -193,7 +193,7 @@ def notification_payload(
             "first_time_iso": iso_time(t.first_time),
             "last_time": t.last_time,
             "last_time_iso": iso_time(t.last_time),
-            "words": _said(t.rule, sig),
+            "words": _said(t.rule, t.signal),
         }
         for t in sorted(alert.rules.values(), key=lambda t: (t.first_time, t.rule))
     ]
