@@ -16,7 +16,7 @@ from limitwatch.config import (
     check_secrets,
     load_config,
 )
-from limitwatch.config_units import bare_durations_in
+from limitwatch.config.units import bare_durations_in
 
 
 @click.command("serve")
