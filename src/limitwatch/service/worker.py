@@ -39,11 +39,9 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable
-from dataclasses import dataclass
-from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED, JobExecutionEvent
+from apscheduler.events import JobExecutionEvent
 from apscheduler.schedulers.background import BackgroundScheduler
 
 from limitwatch.alerts.delivery_watch import DeliveryCollector
@@ -55,41 +53,20 @@ from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.base import Source, SourceContext
 from limitwatch.ingest.registry import build_source
 from limitwatch.ingest.reorder import ReorderBuffer
-from limitwatch.ingest.timeparse import format_time
 from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
-from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken, store_failed
+from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken
 from limitwatch.refusals import RefusalLog
+from limitwatch.service import batch as batch_step
+from limitwatch.service import health as health_report
+from limitwatch.service import jobs as job_plan
+from limitwatch.service.jobs import _STOP, Job
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
-from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
 from limitwatch.streamcap import StreamCap
-from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.service")
 
-
-@dataclass(frozen=True, slots=True)
-class Job:
-    """A request from the scheduler, carried out by the worker between batches."""
-
-    kind: str
-    source: str | None = None
-
-    @property
-    def id(self) -> str:
-        """The scheduler's id for the job, and its name in ``/health``."""
-        return self.kind if self.source is None else f"{self.kind}:{self.source}"
-
-
-_STOP = Job("stop")
-
-RETENTION_EVERY_S = 3600.0
-"""How often old readings and dead letters are pruned."""
-
-JOB_GRACE_S = 60.0
-"""A job is overdue in ``/health`` once it has not run for its interval plus the larger of
-this and its interval (a file poll reading a long backlog holds the other jobs up a while)."""
 
 
 class Service:
@@ -254,32 +231,8 @@ class Service:
         source.start(self.intake)
 
     def _make_scheduler(self) -> BackgroundScheduler:
-        cfg = self.config
-        scheduler = BackgroundScheduler(
-            timezone="UTC",
-            job_defaults={"coalesce": True, "max_instances": 1, "misfire_grace_time": 30},
-        )
-        scheduler.add_listener(self._job_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED)
-
-        def every(seconds: float, kind: str, source: str | None = None, **options: Any) -> None:
-            job = Job(kind, source)
-
-            def ask() -> None:
-                self._job_fired[job.id] = self.monotonic()
-                self.intake.put(job)
-
-            self._job_every[job.id] = seconds
-            scheduler.add_job(ask, "interval", seconds=seconds, id=job.id, **options)
-
-        for name, source in self.sources.items():
-            if source.poll_every is not None:
-                every(source.poll_every, source.poll_job, name, next_run_time=_now_dt())
-        every(cfg.service.stale_check_every, "stale-check")
-        every(cfg.service.alert_tick_every, "alert-tick")
-        every(cfg.service.refit_check_every, "refits")
-        # Always: dead letters are bounded by default even when readings are kept for ever.
-        every(RETENTION_EVERY_S, "retention")
-        return scheduler
+        """See :func:`limitwatch.service.jobs.make_scheduler`."""
+        return job_plan.make_scheduler(self)
 
     def _watch_clock(self) -> None:
         """Notice a step of the wall clock; say so and plan the jobs again."""
@@ -296,27 +249,12 @@ class Service:
         self._replan()
 
     def _replan(self) -> None:
-        """Set each job's next run from the monotonic clock: one interval after the scheduler
-        last queued it. APScheduler keeps next run times on the wall clock, so after a step
-        back of two hours it would wait two hours before running anything."""
-        scheduler = self.scheduler
-        if scheduler is None or not scheduler.running:
-            return
-        mono = self.monotonic()
-        wall_now = _now_dt()  # the scheduler's own clock, whatever the service was given
-        for job in scheduler.get_jobs():
-            every = self._job_every.get(job.id)
-            if every is None or job.next_run_time is None:  # not ours, or paused
-                continue
-            since = mono - self._job_fired.get(job.id, self._started_mono)
-            wait = min(every, max(0.0, every - since))
-            scheduler.modify_job(job.id, next_run_time=wall_now + timedelta(seconds=wait))
+        """See :func:`limitwatch.service.jobs.replan`."""
+        job_plan.replan(self)
 
     def _job_event(self, event: JobExecutionEvent) -> None:
-        if event.exception is not None:
-            log.error("scheduled job %s failed: %s", event.job_id, event.exception)
-        else:
-            log.warning("scheduled job %s missed its run time", event.job_id)
+        """See :func:`limitwatch.service.jobs.job_event`."""
+        job_plan.job_event(self, event)
 
     def request_stop(self, *_: Any) -> None:
         """Signal-handler safe: set a flag and wake the worker."""
@@ -408,218 +346,57 @@ class Service:
         return batch, jobs
 
     def _parse(self, source: Source, item: Any, received_at: float) -> list[Parsed]:
-        """``item`` parsed by its source (none, one, or several readings and refusals), with
-        the worker's own refusals: a new stream past the source's ``max_streams``, and a
-        parser's bug (a dead letter, never a stop)."""
-        try:
-            parsed = source.parse(item, received_at)
-        except Exception as exc:  # a parser bug must not stop the service: a dead letter
-            log.exception("source %s: an item could not be parsed", source.name)
-            return [source.refused(item, "parse-error", _failure(exc))]
-        if parsed is None:
-            return []
-        found = [parsed] if isinstance(parsed, Parsed) else list(parsed)
-        for i, part in enumerate(found):
-            if part.reading is None:
-                continue
-            refused = self._refuse_new_stream(source.name, part.reading.stream)
-            if refused is not None:
-                found[i] = source.refused(item, TOO_MANY_STREAMS, refused)
-        return found
+        """See :func:`limitwatch.service.batch.parse`."""
+        return batch_step.parse(self, source, item, received_at)
 
     def _parse_pushed(self, item: Any) -> list[Parsed]:
-        # The source stamped the wall clock where the item arrived; a step back since must
-        # not make a reading timed at receipt older than the one before it.
-        received = self.timekeeper.receipt(item.received_at)
-        return self._parse(self.sources[item.source], item, received)
+        """See :func:`limitwatch.service.batch.parse_pushed`."""
+        return batch_step.parse_pushed(self, item)
 
     def _refuse_new_stream(self, source: str, stream: str) -> str | None:
-        """Why a reading for ``stream`` is refused (its source already feeds ``max_streams``
-        streams and this one would be new), or None when it may go on."""
-        assert self.pipeline is not None
-        cap = self.stream_cap
-        if cap.admit(source, stream, exists=stream in self.pipeline.monitors):
-            return None
-        self.metrics.streams_refused.labels(source).inc()
-        return f"stream {stream[:200]!r} would be more than max_streams = {cap.limits[source]}"
+        """See :func:`limitwatch.service.batch.refuse_new_stream`."""
+        return batch_step.refuse_new_stream(self, source, stream)
 
     def _holding(self) -> bool:
-        return any(len(buffer) for buffer in self._reorder.values())
+        """See :func:`limitwatch.service.batch.holding`."""
+        return batch_step.holding(self)
 
     def _process_deliveries(self, batch: list[Any], *, flush: bool = False) -> None:
-        if not self._reorder:
-            items = [p for d in batch for p in self._parse_pushed(d)]
-            self._commit(items)
-            by_source: dict[str, list[Any]] = {}
-            for d in batch:  # arrival order, only after the commit
-                by_source.setdefault(d.source, []).append(d)
-            for source, deliveries in by_source.items():
-                self.sources[source].acknowledge(deliveries)
-            return
-        self._process_reordered(batch, flush)
+        """See :func:`limitwatch.service.batch.process_deliveries`."""
+        batch_step.process_deliveries(self, batch, flush=flush)
 
     def _process_reordered(self, batch: list[Any], flush: bool) -> None:
-        """As :meth:`_process_deliveries`, with the readings of sources that have a reorder
-        window held back until their time is up (see :mod:`limitwatch.ingest.reorder`)."""
-        now = self.clock()
-        items: list[Parsed] = []
-        direct: dict[str, list[Any]] = {}
-        committed: list[list[Any]] = []
-        for d in batch:
-            parts = self._parse_pushed(d)
-            buffer = self._reorder.get(d.source)
-            if buffer is None:
-                items.extend(parts)
-                direct.setdefault(d.source, []).append(d)
-                continue
-            entry = [d, 0]  # the delivery, and how many of its readings are held
-            self._unacked[d.source].append(entry)
-            for parsed in parts:
-                if parsed.reading is None:  # a dead letter has no place in the order
-                    items.append(parsed)
-                else:
-                    entry[1] += 1
-                    buffer.hold(parsed.reading, (parsed, entry), d.received_at)
-        for buffer in self._reorder.values():
-            if len(buffer):
-                for _, (parsed, entry) in buffer.release(now, everything=flush):
-                    items.append(parsed)
-                    committed.append(entry)
-        if items:
-            self._commit(items)
-        for entry in committed:  # only after the commit
-            entry[1] -= 1
-        for source, deliveries in direct.items():
-            self.sources[source].acknowledge(deliveries)
-        for source, waiting in self._unacked.items():
-            ready = []
-            while waiting and waiting[0][1] == 0:
-                ready.append(waiting.popleft()[0])
-            if ready:
-                self.sources[source].acknowledge(ready)
+        """See :func:`limitwatch.service.batch.process_reordered`."""
+        batch_step.process_reordered(self, batch, flush)
 
     def _commit(
         self, items: list[Parsed], offsets: dict[str, dict[str, int]] | None = None
     ) -> BatchResult:
-        assert self.pipeline is not None
-        started = time.perf_counter()
-        now = self.clock()
-        result = self.pipeline.process(items, now, file_offsets=offsets)
-        self.last_commit = now
-        self._heartbeat = time.monotonic()
-        m = self.metrics
-        m.batch_seconds.observe(time.perf_counter() - started)
-        m.batch_size.observe(len(items))
-        m.readings.labels("accepted").inc(len(result.outcomes))
-        for source, reason in result.dead:
-            m.dead_letters.labels(reason).inc()
-            self.refusals.note(source, reason, now)
-        for s in result.signals:
-            m.signals.labels(s.rule).inc()
-        m.alerts_opened.inc(result.opened)
-        self._count_floods(result.flood_started, result.flood_ended)
-        m.streams.set(len(self.pipeline.monitors))
-        if result.queued and self.outbox is not None:
-            self.outbox.wake()
-        return result
+        """See :func:`limitwatch.service.batch.commit`."""
+        return batch_step.commit(self, items, offsets)
 
     def _streams_fed(self, source: str) -> float:
         return float(self.stream_cap.count(source))
 
     def _run_job_guarded(self, job: Job) -> None:
-        """Run one job; a job's own failure is logged and the next run tries again, so a bug
-        in, say, the stale check never stops the readings. A failure of the store itself ends
-        the service the way a failed batch commit does (see :func:`serve`)."""
-        try:
-            self._run_job(job)
-        except PipelineBroken:
-            raise
-        except Exception as exc:
-            if store_failed(exc):
-                raise PipelineBroken(f"scheduled job {job.kind} failed: {exc}") from exc
-            self.metrics.job_failures.labels(job.kind).inc()
-            log.exception("scheduled job %s failed; its next run tries again", job.kind)
+        """See :func:`limitwatch.service.jobs.run_job_guarded`."""
+        job_plan.run_job_guarded(self, job)
 
     def _run_job(self, job: Job) -> None:
-        assert self.pipeline is not None and self.book is not None and self.store is not None
-        now = self.clock()
-        if job.source is not None:  # a source's poll
-            self.poll_source(job.source)
-        elif job.kind == "stale-check":
-            signals = self.pipeline.stale_signals(now, self._cadence_for)
-            if signals:
-                report = self.book.apply_signals(signals, now)
-                self.metrics.alerts_opened.inc(report.opened)
-                self._count_floods(report.flood_started, report.flood_ended)
-                if report.queued and self.outbox is not None:
-                    self.outbox.wake()
-        elif job.kind == "alert-tick":
-            report = self.book.tick(now)
-            self._count_floods(report.flood_started, report.flood_ended)
-            if report.queued and self.outbox is not None:
-                self.outbox.wake()
-        elif job.kind == "refits":
-            for stream in self.pipeline.adopt_new_baselines(now):
-                log.info("stream %s: adopted a new stored baseline", printable(stream))
-        elif job.kind == "retention":
-            self.prune(now)
-        self._job_ran[job.id] = (self.monotonic(), now)
+        """See :func:`limitwatch.service.jobs.run_job`."""
+        job_plan.run_job(self, job)
 
     def prune(self, now: float) -> tuple[int, int]:
-        """The retention job: drop readings and dead letters past the ``[store]`` limits;
-        return (readings, dead letters) deleted."""
-        assert self.pipeline is not None and self.store is not None
-        cfg = self.config.store
-        readings = 0
-        if cfg.keep_readings_for is not None or cfg.keep_readings_per_stream is not None:
-            # Readings newer than a stream's checkpoint are part of its state until the next one.
-            self.pipeline.checkpoint_all(now)
-            readings = self.store.prune_readings(
-                now, max_age_s=cfg.keep_readings_for, max_per_stream=cfg.keep_readings_per_stream
-            )
-        letters = self.store.prune_dead_letters(
-            now, max_age_s=cfg.keep_dead_letters_for, max_count=cfg.keep_dead_letters
-        )
-        if readings or letters:
-            log.info("retention: dropped %d readings and %d dead letters", readings, letters)
-        return readings, letters
+        """See :func:`limitwatch.service.jobs.prune`."""
+        return job_plan.prune(self, now)
 
     def _count_floods(self, started: int, ended: int) -> None:
-        """Log and count a flood's start and end (its record is in the store's floods table)."""
-        if started:
-            self.metrics.floods.labels("started").inc(started)
-            log.warning(
-                "flood: more than %s incidents within %s s; their notifications fold into one",
-                self.config.alerts.flood_after,
-                self.config.alerts.flood_window,
-            )
-        if ended:
-            self.metrics.floods.labels("ended").inc(ended)
-            log.warning("flood over: notifications go out one by one again")
+        """See :func:`limitwatch.service.jobs.count_floods`."""
+        job_plan.count_floods(self, started, ended)
 
     def poll_source(self, name: str) -> int:
-        """Read everything new from a polled source, committing in batches of ``batch_max``
-        with the positions it reached; return the number of items used."""
-        source = self.sources[name]
-        items: list[Any] = []
-        batch: list[Parsed] = []
-        used = 0
-        for item in source.poll():
-            if self._stopping.is_set():
-                break
-            items.append(item)
-            batch.extend(self._parse(source, item, self.clock()))
-            if len(batch) >= self.config.service.batch_max:
-                used += len(batch)
-                self._commit(batch, {name: source.positions(items)})
-                source.acknowledge(items)
-                items, batch = [], []
-        positions = source.positions(items)
-        if batch or positions:
-            used += len(batch)
-            self._commit(batch, {name: positions})
-            source.acknowledge(items)
-        return used
+        """See :func:`limitwatch.service.batch.poll_source`."""
+        return batch_step.poll_source(self, name)
 
     def poll_files(self, name: str) -> int:
         """:meth:`poll_source` under its earlier name (``limitwatch bench`` times it)."""
@@ -628,67 +405,20 @@ class Service:
     # -- health ---
 
     def _since_last_round(self) -> float:
-        beat = self._heartbeat
-        return 0.0 if beat is None else time.monotonic() - beat
+        """See :func:`limitwatch.service.health.since_last_round`."""
+        return health_report.since_last_round(self)
 
     def health(self) -> dict[str, Any]:
-        states = {name: s.health() for name, s in self.sources.items() if s.connection}
-        sources = {name: bool(h.connected) for name, h in states.items()}
-        broken = self.pipeline is not None and self.pipeline.broken
-        quiet = None if self._heartbeat is None else round(self._since_last_round(), 3)
-        stalled = quiet is not None and quiet > self.config.service.stall_after
-        jobs = self._job_health()
-        overdue = any(j["overdue"] for j in jobs.values())
-        now = self.clock()
-        watch = self.outbox.watch if self.outbox is not None else None
-        notifiers = {} if watch is None else watch.health(now)
-        after = self.config.service.notifier_failing_after
-        failing = [] if watch is None else watch.failing_longer_than(after, now)
-        ok = all(sources.values()) and not broken and not stalled and not overdue and not failing
-        return {
-            "status": "ok" if ok else "degraded",
-            "worker": "stalled" if stalled else "failed" if broken else "running",
-            "worker_last_round_s_ago": quiet,
-            "sources": sources,
-            "errors": {n: h.last_error for n, h in states.items() if h.last_error},
-            "source_state": {n: dict(h.detail) for n, h in states.items() if h.detail},
-            "queue_depth": self.intake.qsize(),
-            "streams": 0 if self.pipeline is None else len(self.pipeline.monitors),
-            "last_commit": None if self.last_commit is None else format_time(self.last_commit),
-            "jobs": jobs,
-            "clock": {
-                "steps_seen": self.timekeeper.steps,
-                "ahead_of_wall_s": round(self.timekeeper.ahead_s(), 3),
-            },
-            "notifiers": notifiers,
-            "notifiers_failing_too_long": failing,
-        }
+        """See :func:`limitwatch.service.health.health`."""
+        return health_report.health(self)
 
     def _job_health(self) -> dict[str, dict[str, Any]]:
-        """Each scheduled job's interval, last run (ISO 8601, service time) and whether it is
-        overdue, measured on the monotonic clock so that a clock step neither hides nor fakes
-        a late job."""
-        mono = self.monotonic()
-        out: dict[str, dict[str, Any]] = {}
-        for job_id, every in self._job_every.items():
-            ran = self._job_ran.get(job_id)
-            since = mono - (self._started_mono if ran is None else ran[0])
-            out[job_id] = {
-                "every_s": every,
-                "last_run": None if ran is None else format_time(ran[1]),
-                "overdue": since > every + max(every, JOB_GRACE_S),
-            }
-        return out
+        """See :func:`limitwatch.service.jobs.job_health`."""
+        return job_plan.job_health(self)
 
 
-def _failure(exc: BaseException) -> str:
-    """An unexpected exception in words, bounded: the kind and the start of its message."""
-    text = f"{type(exc).__name__}: {exc}"
-    return text if len(text) <= 300 else text[:297] + "..."
 
 
-def _now_dt() -> datetime:
-    return datetime.now(UTC)
 
 
 def serve(config: Config) -> int:
