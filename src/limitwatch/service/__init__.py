@@ -30,7 +30,8 @@ Anything still queued but unacknowledged stays with the broker for the next star
 
 Layout: ``worker`` (:class:`Service`, its start, loop and stop, and :func:`serve`), ``batch``
 (parse, commit, acknowledge; polled sources), ``jobs`` (:class:`Job`, the scheduler and what
-each job does) and ``health`` (``/health``). Callers import from ``limitwatch.service``.
+each job does), ``health`` (``/health``) and ``lock`` (one service per database file;
+``limitwatch.instance`` still names it). Callers import from ``limitwatch.service``.
 """
 
 from __future__ import annotations

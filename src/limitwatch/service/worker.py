@@ -53,7 +53,6 @@ from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.base import Source, SourceContext
 from limitwatch.ingest.registry import build_source
 from limitwatch.ingest.reorder import ReorderBuffer
-from limitwatch.instance import InstanceLock
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken
 from limitwatch.refusals import RefusalLog
@@ -61,6 +60,7 @@ from limitwatch.service import batch as batch_step
 from limitwatch.service import health as health_report
 from limitwatch.service import jobs as job_plan
 from limitwatch.service.jobs import _STOP, Job
+from limitwatch.service.lock import InstanceLock
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
 from limitwatch.streamcap import StreamCap
