@@ -62,7 +62,6 @@ def _needs_type(what: str) -> str:
     return f'a {what} needs type = "..." naming what kind it is'
 
 
-
 def _unwrap(tp: Any) -> Any:
     while True:
         origin = typing.get_origin(tp)

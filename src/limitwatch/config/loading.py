@@ -36,8 +36,6 @@ def _problems(exc: ValidationError) -> list[Problem]:
     return problems
 
 
-
-
 def config_from_dict(
     data: Mapping[str, Any], *, base_dir: Path | None = None, source: str = "<config>"
 ) -> Config:

@@ -87,7 +87,6 @@ def split_address(text: str) -> tuple[str, int]:
     return match.group(1).strip("[]"), int(match.group(2))
 
 
-
 _POLICY = AlertPolicy()
 
 

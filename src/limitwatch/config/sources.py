@@ -33,7 +33,6 @@ class TlsSettings(_Section):
         return self
 
 
-
 class SourceSettings(_Section):
     """What every ``[[sources]]`` entry has. A source plugin's ``Settings`` derives from this,
     with ``type: Literal["<its entry-point name>"]`` and its own keys; unknown keys are refused
@@ -60,7 +59,6 @@ class SourceSettings(_Section):
     def describe(self) -> str:
         """One line for ``check``'s summary."""
         return f"{self.name} ({self.type})"
-
 
 
 def source_settings(entries: Any, context: Any) -> Any:

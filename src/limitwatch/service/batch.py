@@ -21,8 +21,6 @@ if TYPE_CHECKING:
 log = logging.getLogger("limitwatch.service")
 
 
-
-
 def _failure(exc: BaseException) -> str:
     """An unexpected exception in words, bounded: the kind and the start of its message."""
     text = f"{type(exc).__name__}: {exc}"

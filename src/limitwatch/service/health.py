@@ -18,8 +18,6 @@ if TYPE_CHECKING:
 log = logging.getLogger("limitwatch.service")
 
 
-
-
 def since_last_round(service: Service) -> float:
     beat = service._heartbeat
     return 0.0 if beat is None else time.monotonic() - beat

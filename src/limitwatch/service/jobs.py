@@ -49,7 +49,6 @@ JOB_GRACE_S = 60.0
 this and its interval (a file poll reading a long backlog holds the other jobs up a while)."""
 
 
-
 def _now_dt() -> datetime:
     return datetime.now(UTC)
 
