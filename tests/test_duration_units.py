@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import json
 
-from limitwatch.config_units import bare_durations, duration_keys
+from limitwatch.config.units import bare_durations, duration_keys
 from tests.helpers import run_cli, write_csv
 
 CONFIG = """

@@ -39,7 +39,7 @@ from limitwatch.config import (
     check_secrets,
     load_config,
 )
-from limitwatch.config_units import bare_durations_in
+from limitwatch.config.units import bare_durations_in
 from limitwatch.durations import format_duration
 from limitwatch.site_plan import expected_false_alarms, known_streams
 from limitwatch.textout import num

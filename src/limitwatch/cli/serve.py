@@ -16,7 +16,7 @@ from limitwatch.config import (
     check_secrets,
     load_config,
 )
-from limitwatch.config_units import bare_durations_in
+from limitwatch.config.units import bare_durations_in
 
 
 @click.command("serve")
@@ -61,8 +61,8 @@ def serve_cmd(config_path: str, log_level: str) -> None:
         raise InputProblem(str(exc)) from None
     except ValueError as exc:
         raise InputProblem(f"{config_path}: {exc}") from None
-    from limitwatch.instance import LockError
     from limitwatch.service import serve
+    from limitwatch.service.lock import LockError
 
     logging.getLogger("limitwatch").info(SAFETY_CAUTION)
     for warning in bare_durations_in(config_path):
