@@ -15,7 +15,7 @@ from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Fie
 
 from limitwatch.durations import format_duration, parse_duration
 from limitwatch.ingest.payload import field_path
-from limitwatch.stats.rules import DETECTORS
+from limitwatch.stats.rules import RULE_IDS
 
 # --------------------------------------------------------------------------- value types
 
@@ -150,8 +150,8 @@ FieldPath = Annotated[str, AfterValidator(_field_path)]
 
 Severity = Literal["info", "warning", "critical"]
 TimeFormat = Literal["epoch_s", "epoch_ms", "iso8601", "auto"]
-KNOWN_RULES: tuple[str, ...] = (*sorted(DETECTORS), "stale")
-"""Rule ids an alert can carry: every detector, plus ``stale`` from the stale-stream check."""
+KNOWN_RULES: tuple[str, ...] = RULE_IDS
+"""Rule ids an alert can carry (the rule registry's one list: every detector, plus ``stale``)."""
 
 
 class _Section(BaseModel):
