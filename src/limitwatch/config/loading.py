@@ -24,7 +24,7 @@ def _problems(exc: ValidationError) -> list[Problem]:
 
     def place(item: tuple[tuple[str | int, ...], str]) -> tuple[int, int]:
         loc = item[0]
-        section = order.get(loc[0], len(order)) if loc else -1
+        section = order.get(str(loc[0]), len(order)) if loc else -1
         entry = loc[1] if len(loc) > 1 and isinstance(loc[1], int) else -1
         return section, entry
 

@@ -152,7 +152,7 @@ class Config(_Section):
     def _entries(self) -> tuple[tuple[Any, StreamConfig], ...]:
         if self._resolved is None:
             base = {k: getattr(self.defaults, k) for k in StreamOptions.model_fields}
-            resolved = []
+            resolved: list[tuple[Any, StreamConfig]] = []
             for i, entry in enumerate(self.streams):
                 values = dict(base)
                 values.update(

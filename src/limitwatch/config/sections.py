@@ -10,7 +10,7 @@ import re
 from fnmatch import fnmatchcase
 from functools import partial
 from pathlib import Path
-from typing import Annotated, Literal
+from typing import Annotated, Literal, cast
 
 from pydantic import AfterValidator, Field, field_validator, model_validator
 
@@ -123,7 +123,7 @@ class Route(_Section):
 
     name: Name
     streams: Glob = "*"
-    severities: list[Severity] = Field(default_factory=lambda: list(SEVERITIES), min_length=1)
+    severities: list[Severity] = Field(default_factory=lambda: _all_severities(), min_length=1)
     notifiers: list[str] = []
     escalate_to: list[str] = []
     notify_on: list[Literal[NOTICE_KINDS]] = Field(  # type: ignore[valid-type]
@@ -146,3 +146,6 @@ class BudgetSection(_Section):
     false_alarms_per_week: float | None = Field(None, gt=0)
 
 
+def _all_severities() -> list[Severity]:
+    """Every severity, for a route that does not choose (the lifecycle's one list)."""
+    return cast("list[Severity]", list(SEVERITIES))

@@ -197,7 +197,10 @@ class SmtpNotifier(Notifier):
                 retryable=all(400 <= c < 500 for c in codes),
             ) from exc
         except smtplib.SMTPResponseException as exc:
-            text = exc.smtp_error.decode("utf-8", "replace") if exc.smtp_error else ""
+            error = exc.smtp_error
+            text = (
+                error.decode("utf-8", "replace") if isinstance(error, bytes) else str(error or "")
+            )
             raise DeliveryError(
                 f"{where} answered {exc.smtp_code} {text}".rstrip(),
                 retryable=400 <= exc.smtp_code < 500,
