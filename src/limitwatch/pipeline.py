@@ -128,7 +128,7 @@ class Pipeline:
                     log.error(
                         "stream %s: its checkpoint cannot be restored (%s); it starts afresh",
                         stream,
-                        _words(exc),
+                        failure_words(exc),
                     )
                     continue
                 self.monitors[monitor.stream] = monitor  # one copy of the id, the monitor's
@@ -201,7 +201,7 @@ class Pipeline:
                     "stream %s: the readings after its checkpoint cannot be applied (%s); "
                     "it starts afresh",
                     printable(stream),
-                    _words(exc),
+                    failure_words(exc),
                 )
                 del self.monitors[stream]
                 continue
@@ -305,11 +305,11 @@ class Pipeline:
         except Exception as exc:
             if store_failed(exc):
                 self.broken = True
-                raise PipelineBroken(f"batch commit failed: {_words(exc)}") from exc
+                raise PipelineBroken(f"batch commit failed: {failure_words(exc)}") from exc
             log.warning(
                 "a batch of %d items failed as a whole (%s); applying them one at a time",
                 len(items),
-                _words(exc),
+                failure_words(exc),
             )
             for stream in seen:
                 self._rebuild(stream)
@@ -447,7 +447,7 @@ class Pipeline:
         except Exception as exc:
             log.exception("stream %s: the engine failed on the reading at %s", stream, reading.time)
             self._rebuild(stream)
-            detail = f"stream {stream!r} at {reading.time}: {_words(exc)}"
+            detail = f"stream {stream!r} at {reading.time}: {failure_words(exc)}"
             self._dead_alone(item, "engine-error", detail, now, result)
             return
         if not outcome.accepted:
@@ -473,10 +473,10 @@ class Pipeline:
         except Exception as exc:
             if store_failed(exc):
                 self.broken = True
-                raise PipelineBroken(f"commit failed: {_words(exc)}") from exc
+                raise PipelineBroken(f"commit failed: {failure_words(exc)}") from exc
             log.warning("stream %s: the store refused the reading at %s", stream, reading.time)
             self._rebuild(stream)
-            detail = f"stream {stream!r} at {reading.time}: {_words(exc)}"
+            detail = f"stream {stream!r} at {reading.time}: {failure_words(exc)}"
             self._dead_alone(item, "store-refused", detail, now, result)
             return
         self._saved(due)
@@ -492,8 +492,8 @@ class Pipeline:
         said once in the log, and in every one of its dead letters."""
         if stream not in self._unusable_streams:
             self._unusable_streams.add(stream)
-            log.error("stream %s: no monitor can be made for it: %s", stream, _words(exc))
-        return f"stream {stream!r} at {reading.time}: {_words(exc)}"
+            log.error("stream %s: no monitor can be made for it: %s", stream, failure_words(exc))
+        return f"stream {stream!r} at {reading.time}: {failure_words(exc)}"
 
     def _dead_alone(
         self, item: Parsed, reason: str, detail: str, now: float, result: BatchResult
@@ -517,7 +517,7 @@ class Pipeline:
                 write()
         except Exception as exc:
             self.broken = True
-            raise PipelineBroken(f"commit failed: {_words(exc)}") from exc
+            raise PipelineBroken(f"commit failed: {failure_words(exc)}") from exc
 
     def _rebuild(self, stream: str) -> None:
         """Make the stream's monitor what the store says it is: its checkpoint plus the readings
@@ -538,7 +538,7 @@ class Pipeline:
             log.error(
                 "stream %s: its checkpoint cannot be restored (%s); it starts afresh",
                 stream,
-                _words(exc),
+                failure_words(exc),
             )
         self._new.discard(stream)
         self._unsaved.pop(stream, None)
@@ -718,7 +718,8 @@ def store_failed(exc: BaseException) -> bool:
     return isinstance(exc, sqlite3.Error | OSError | MemoryError)
 
 
-def _words(exc: BaseException) -> str:
+def failure_words(exc: BaseException) -> str:
+    """An unexpected exception in words, bounded: the kind and the start of its message."""
     text = f"{type(exc).__name__}: {exc}"
     return text if len(text) <= 300 else text[:297] + "..."
 

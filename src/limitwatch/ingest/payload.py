@@ -64,7 +64,12 @@ from collections.abc import Mapping, Sequence
 from typing import Any, Literal, Protocol
 
 from limitwatch.ingest.streamid import stream_id_problem
-from limitwatch.ingest.timeparse import TimeFormatError, format_time, parse_time
+from limitwatch.ingest.timeparse import (
+    PLAIN_DECIMAL,
+    TimeFormatError,
+    format_time,
+    parse_time,
+)
 from limitwatch.ingest.topics import TopicMapper
 from limitwatch.model import Reading
 
@@ -102,7 +107,6 @@ LATEST_TIME = 253402300800.0
 MAX_SEQ = 2**63 - 1
 """Largest sequence number SQLite stores as an INTEGER."""
 
-_DECIMAL = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
 _NON_FINITE = re.compile(r"[+-]?(?:nan|inf|infinity)", re.IGNORECASE)
 _DIGITS = re.compile(r"\+?0*(\d{1,19})")
 """A whole number in text; the group holds its significant digits (at most 19: ``MAX_SEQ`` has
@@ -197,7 +201,7 @@ def lookup(obj: Any, path: Sequence[str | int]) -> Any:
 
 def _decimal(raw: str, what: str) -> float:
     text = raw.strip()
-    if _DECIMAL.fullmatch(text):
+    if PLAIN_DECIMAL.fullmatch(text):
         number = float(text)
         if not math.isfinite(number):
             raise PayloadError("not-finite", f"{what} {_show(raw)} is too large for a number")
@@ -245,7 +249,7 @@ def _time(raw: Any, fmt: TimeFormat, what: str, earliest: float = 0.0) -> float:
     if isinstance(raw, bool) or raw is None or isinstance(raw, dict | list):
         raise PayloadError("bad-time", f"{what} {_show(raw)} is not a time stamp")
     is_number = isinstance(raw, int | float) or (
-        isinstance(raw, str) and _DECIMAL.fullmatch(raw.strip()) is not None
+        isinstance(raw, str) and PLAIN_DECIMAL.fullmatch(raw.strip()) is not None
     )
     try:
         if fmt == "iso8601":

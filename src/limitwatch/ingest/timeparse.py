@@ -22,7 +22,7 @@ from typing import Literal
 
 TimeUnit = Literal["s", "ms"]
 
-_PLAIN = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
+PLAIN_DECIMAL = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
 """A plain decimal number: what every reader of numbers in limitwatch accepts (no ``1_000``,
 which Python's ``float`` would read, and no hexadecimal)."""
 
@@ -43,7 +43,7 @@ def parse_time(text: str | float | int, unit: TimeUnit = "s") -> float:
             number = float(stripped)
         except ValueError:
             return _parse_iso(stripped)
-        if math.isfinite(number) and not _PLAIN.fullmatch(stripped):
+        if math.isfinite(number) and not PLAIN_DECIMAL.fullmatch(stripped):
             raise TimeFormatError(
                 f"{text!r} is not a plain decimal number of seconds (digits, a point and an "
                 "exponent only; no _ separators)"

@@ -36,7 +36,6 @@ each job does), ``health`` (``/health``) and ``lock`` (one service per database 
 
 from __future__ import annotations
 
-from limitwatch.service.batch import _failure as _failure
 from limitwatch.service.jobs import _STOP as _STOP
 from limitwatch.service.jobs import JOB_GRACE_S, RETENTION_EVERY_S, Job
 from limitwatch.service.jobs import _now_dt as _now_dt

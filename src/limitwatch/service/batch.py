@@ -12,19 +12,13 @@ import time
 from typing import TYPE_CHECKING, Any
 
 from limitwatch.ingest.base import Source
-from limitwatch.pipeline import BatchResult, Parsed
+from limitwatch.pipeline import BatchResult, Parsed, failure_words
 from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
 
 if TYPE_CHECKING:
     from limitwatch.service.worker import Service
 
 log = logging.getLogger("limitwatch.service")
-
-
-def _failure(exc: BaseException) -> str:
-    """An unexpected exception in words, bounded: the kind and the start of its message."""
-    text = f"{type(exc).__name__}: {exc}"
-    return text if len(text) <= 300 else text[:297] + "..."
 
 
 def parse(service: Service, source: Source, item: Any, received_at: float) -> list[Parsed]:
@@ -35,7 +29,7 @@ def parse(service: Service, source: Source, item: Any, received_at: float) -> li
         parsed = source.parse(item, received_at)
     except Exception as exc:  # a parser bug must not stop the service: a dead letter
         log.exception("source %s: an item could not be parsed", source.name)
-        return [source.refused(item, "parse-error", _failure(exc))]
+        return [source.refused(item, "parse-error", failure_words(exc))]
     if parsed is None:
         return []
     found = [parsed] if isinstance(parsed, Parsed) else list(parsed)
