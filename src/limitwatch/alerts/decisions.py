@@ -178,17 +178,8 @@ class _Work:
             signal=ctx,
             silent_since=last_reading if stale else None,
         )
-        alert.rules[signal.rule] = RuleTally(
-            signal.rule,
-            severity,
-            1,
-            signal.time,
-            signal.index,
-            value,
-            signal.time,
-            signal.index,
-            value,
-            ctx,
+        alert.rules[signal.rule] = RuleTally.first(
+            signal.rule, severity, signal.time, signal.index, value, ctx
         )
         self.next_id += 1
         self.current[signal.stream] = alert
@@ -213,17 +204,8 @@ class _Work:
         tally = alert.rules.get(signal.rule)
         if tally is None:
             severity = self.policy.severity_for(alert.stream, signal.rule)
-            alert.rules[signal.rule] = RuleTally(
-                signal.rule,
-                severity,
-                1,
-                signal.time,
-                signal.index,
-                value,
-                signal.time,
-                signal.index,
-                value,
-                ctx,
+            alert.rules[signal.rule] = RuleTally.first(
+                signal.rule, severity, signal.time, signal.index, value, ctx
             )
             self.report.joined += 1
             self.event(

@@ -180,6 +180,14 @@ class RuleTally:
     last_value: float | None
     signal: dict[str, Any]
 
+    @classmethod
+    def first(
+        cls, rule: str, severity: str, time: float, index: int | None, value: float | None,
+        signal: dict[str, Any],
+    ) -> RuleTally:  # fmt: skip
+        """A rule's tally at its first signal: one signal, first reading and last the same."""
+        return cls(rule, severity, 1, time, index, value, time, index, value, signal)
+
 
 @dataclass(slots=True)
 class Alert:
