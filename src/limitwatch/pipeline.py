@@ -41,7 +41,7 @@ import gc
 import logging
 import math
 import sqlite3
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, fields
 
 from limitwatch.alerts.lifecycle import AlertBook, BookReport
@@ -50,7 +50,7 @@ from limitwatch.ingest.base import Parsed
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError
-from limitwatch.store import CONFIG_AUTHOR, Store, same_numbers
+from limitwatch.store import CONFIG_AUTHOR, Fenced, Store, same_numbers
 from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.pipeline")
@@ -63,6 +63,12 @@ many seconds' worth)."""
 
 class PipelineBroken(RuntimeError):
     """A commit failed after monitors moved on; only a restart from the checkpoints is safe."""
+
+
+Within = Callable[[Sequence[Parsed]], None]
+"""Work a source does inside each transaction that commits its items (the Kafka source moves
+its partitions' offsets there, fenced); it may raise
+:class:`~limitwatch.store.errors.Fenced`, which rolls that transaction back."""
 
 
 @dataclass
@@ -102,6 +108,10 @@ class Pipeline:
         """Monitors created since the last commit, which have no checkpoint yet."""
         self._unusable_streams: set[str] = set()
         """Streams whose monitor could not be made, already reported in the log."""
+        self.restore_on_demand = False
+        """True when this worker holds only some streams' monitors (a Kafka worker owns its
+        partitions' streams): a stream without a monitor is then rebuilt from its checkpoint
+        and the readings after it before its first reading here, instead of starting afresh."""
 
     # -- state ---
 
@@ -211,6 +221,9 @@ class Pipeline:
 
     def monitor(self, stream: str, now: float = 0.0) -> StreamMonitor:
         monitor = self.monitors.get(stream)
+        if monitor is None and self.restore_on_demand:
+            self._rebuild(stream)
+            monitor = self.monitors.get(stream)
         if monitor is None:
             found = self.baseline_in_force(stream, now)
             baseline, version = (None, 1) if found is None else found
@@ -291,17 +304,25 @@ class Pipeline:
         items: Iterable[Parsed],
         now: float,
         file_offsets: dict[str, dict[str, int]] | None = None,
+        within: Within | None = None,
     ) -> BatchResult:
         """Evaluate and commit; raise :class:`PipelineBroken` only if the store itself fails.
 
         Any other failure (the engine raising for a reading, the database refusing a row)
-        makes that one item a dead letter; see the module's description."""
+        makes that one item a dead letter; see the module's description. ``within`` runs
+        inside every transaction that commits items, with those items; if it raises
+        :class:`~limitwatch.store.errors.Fenced`, the transaction rolls back, the monitors it
+        moved are rebuilt from the store, and the error goes to the caller."""
         if self.broken:
             raise PipelineBroken("an earlier commit failed; restart the service")
         items = list(items)
         seen: set[str] = set()
         try:
-            result, due, report = self._process_batch(items, now, file_offsets, seen)
+            result, due, report = self._process_batch(items, now, file_offsets, seen, within)
+        except Fenced:
+            for stream in seen:
+                self._rebuild(stream)
+            raise
         except Exception as exc:
             if store_failed(exc):
                 self.broken = True
@@ -313,7 +334,7 @@ class Pipeline:
             )
             for stream in seen:
                 self._rebuild(stream)
-            return self._one_by_one(items, now, file_offsets)
+            return self._one_by_one(items, now, file_offsets, within)
         # Committed: nothing after this point may send the batch round again.
         self._saved(due)
         result.opened = report.opened
@@ -327,6 +348,7 @@ class Pipeline:
         now: float,
         file_offsets: dict[str, dict[str, int]] | None,
         seen: set[str],
+        within: Within | None = None,
     ) -> tuple[BatchResult, list[str], BookReport]:
         """Evaluate the batch and commit it in one transaction; return the result, the streams
         whose checkpoints it wrote and the alert book's report."""
@@ -392,6 +414,8 @@ class Pipeline:
             for source, offsets in (file_offsets or {}).items():
                 if offsets:
                     self.store.save_file_offsets(source, offsets, now=now)
+            if within is not None:
+                within(items)
         return result, due, report
 
     # -- one item at a time, after a batch failed as a whole ---
@@ -401,10 +425,11 @@ class Pipeline:
         items: list[Parsed],
         now: float,
         file_offsets: dict[str, dict[str, int]] | None,
+        within: Within | None = None,
     ) -> BatchResult:
         result = BatchResult()
         for item in items:
-            self._apply_alone(item, now, result)
+            self._apply_alone(item, now, result, within)
         offsets = {source: o for source, o in (file_offsets or {}).items() if o}
         if offsets:
 
@@ -415,12 +440,23 @@ class Pipeline:
             self._commit_or_break(save)
         return result
 
-    def _apply_alone(self, item: Parsed, now: float, result: BatchResult) -> None:
+    def _apply_alone(
+        self, item: Parsed, now: float, result: BatchResult, within: Within | None = None
+    ) -> None:
+        def fence() -> None:
+            if within is not None:
+                within([item])
+
         if item.offline:
             gone = self.offline_signals(dict.fromkeys(item.offline, item.detail), now)
             if gone:
                 reports: list[BookReport] = []
-                self._commit_or_break(lambda: reports.append(self.book.apply_signals(gone, now)))
+
+                def apply() -> None:
+                    reports.append(self.book.apply_signals(gone, now))
+                    fence()
+
+                self._commit_or_break(apply)
                 result.signals.extend(gone)
                 for report in reports:
                     result.opened += report.opened
@@ -430,7 +466,7 @@ class Pipeline:
             return
         reading = item.reading
         if reading is None:
-            self._dead_alone(item, item.error or "unreadable", item.detail, now, result)
+            self._dead_alone(item, item.error or "unreadable", item.detail, now, result, fence)
             return
         stream = reading.stream
         try:
@@ -440,7 +476,7 @@ class Pipeline:
                 self.broken = True
                 raise PipelineBroken(f"reading stream {stream!r} failed: {exc}") from exc
             detail = self._unusable(stream, reading, exc)
-            self._dead_alone(item, "engine-error", detail, now, result)
+            self._dead_alone(item, "engine-error", detail, now, result, fence)
             return
         try:
             outcome = monitor.update(reading)
@@ -448,13 +484,13 @@ class Pipeline:
             log.exception("stream %s: the engine failed on the reading at %s", stream, reading.time)
             self._rebuild(stream)
             detail = f"stream {stream!r} at {reading.time}: {failure_words(exc)}"
-            self._dead_alone(item, "engine-error", detail, now, result)
+            self._dead_alone(item, "engine-error", detail, now, result, fence)
             return
         if not outcome.accepted:
             reason = outcome.reason or "refused"
             if reason in _ORDER_REASONS:
                 reason = self._refused_because(reading, monitor, reason, result)
-            self._dead_alone(item, reason, _where(reading), now, result)
+            self._dead_alone(item, reason, _where(reading), now, result, fence)
             return
         fitted = [stream] if outcome.baseline_fitted else []
         due: list[str] = []
@@ -470,6 +506,10 @@ class Pipeline:
                         {s: self.monitors[s].snapshot() for s in due}, now=now
                     )
                 self._save_position(item, now)
+                fence()
+        except Fenced:
+            self._rebuild(stream)
+            raise
         except Exception as exc:
             if store_failed(exc):
                 self.broken = True
@@ -477,7 +517,7 @@ class Pipeline:
             log.warning("stream %s: the store refused the reading at %s", stream, reading.time)
             self._rebuild(stream)
             detail = f"stream {stream!r} at {reading.time}: {failure_words(exc)}"
-            self._dead_alone(item, "store-refused", detail, now, result)
+            self._dead_alone(item, "store-refused", detail, now, result, fence)
             return
         self._saved(due)
         result.outcomes.append(outcome)
@@ -496,11 +536,19 @@ class Pipeline:
         return f"stream {stream!r} at {reading.time}: {failure_words(exc)}"
 
     def _dead_alone(
-        self, item: Parsed, reason: str, detail: str, now: float, result: BatchResult
+        self,
+        item: Parsed,
+        reason: str,
+        detail: str,
+        now: float,
+        result: BatchResult,
+        fence: Callable[[], None] | None = None,
     ) -> None:
         def write() -> None:
             self.store.add_dead_letter(item.source, item.raw, _reason(reason, detail), now=now)
             self._save_position(item, now)
+            if fence is not None:
+                fence()
 
         self._commit_or_break(write)
         result.dead.append((item.source, reason))
@@ -515,6 +563,8 @@ class Pipeline:
         try:
             with self.store.transaction():
                 write()
+        except Fenced:
+            raise
         except Exception as exc:
             self.broken = True
             raise PipelineBroken(f"commit failed: {failure_words(exc)}") from exc

@@ -43,11 +43,14 @@ ch. 3, "Transactional outbox".
 
 from __future__ import annotations
 
+import contextlib
+import fcntl
 import logging
+import os
 import random
 import threading
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -148,8 +151,15 @@ class OutboxWorker:
         batch_size: int = 100,
         poll_interval_s: float = 1.0,
         watch: DeliveryWatch | None = None,
+        shared: bool = False,
     ) -> None:
+        """``shared``: several services deliver from one database file (Kafka group workers);
+        each pass then runs only while it holds ``<database>.outbox.lock``, so two of them
+        never send the same row at once (a row is marked delivered before the lock goes)."""
         self._open = store if callable(store) else (lambda: Store.open(store))
+        self._pass_file = (
+            Path(f"{store}.outbox.lock") if shared and not callable(store) else None
+        )
         self.notifiers = dict(notifiers)
         self.routes = {name: tuple(targets) for name, targets in (routes or {}).items()}
         _check_routes(self.notifiers, self.routes)
@@ -188,7 +198,9 @@ class OutboxWorker:
 
     def deliver_due(self, now: float) -> DeliveryReport:
         """Try every row due at ``now`` (up to ``batch_size``) once, in the calling thread."""
-        with self._pass_lock:
+        with self._pass_lock, _pass_held(self._pass_file) as held:
+            if not held:  # another service on this file is delivering
+                return DeliveryReport()
             store = self._store()
             report = DeliveryReport()
             self._give_up_expired(store, now, report)
@@ -394,6 +406,25 @@ class OutboxWorker:
         if store is None:
             store = self._local.store = self._open()
         return store
+
+
+@contextlib.contextmanager
+def _pass_held(path: Path | None) -> Iterator[bool]:
+    """Hold ``path``'s exclusive lock for one pass (True), or yield False when another process
+    holds it; no file: always True. The kernel drops the lock with a killed process."""
+    if path is None:
+        yield True
+        return
+    fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o600)
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            yield False
+            return
+        yield True
+    finally:
+        os.close(fd)
 
 
 def _waiting(store: Store) -> dict[str, tuple[int, float | None]]:

@@ -20,6 +20,14 @@ dead letter, health and metrics. So a source only:
   nothing;
 * reports its **health** (:meth:`Source.health`) and **closes**.
 
+A source that hands the worker only some streams (a Kafka consumer-group member owns the
+streams of its partitions; set :attr:`Source.partial`) also gets a :class:`StreamKeeper` in
+its context, to take streams on and give them up on the worker's thread, and three hooks:
+:meth:`Source.within` does its part of each batch's transaction (the partition offsets, fenced
+by owner and generation), :meth:`Source.fenced` hears that a batch was refused because a
+partition was taken over, and :meth:`Source.stale_allowed` holds stale checks back while the
+source is not settled (just assigned, or behind).
+
 Sources are found by type name in the ``limitwatch.sources`` entry-point group
 (:mod:`limitwatch.ingest.registry`) and built from their validated settings
 (:meth:`Source.from_settings`); their settings model derives from
@@ -55,7 +63,7 @@ from abc import ABC, abstractmethod
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, ClassVar, NamedTuple, Self
+from typing import Any, ClassVar, NamedTuple, Protocol, Self
 
 from limitwatch.config import SourceSettings
 from limitwatch.model import Reading
@@ -67,6 +75,7 @@ __all__ = [
     "SourceContext",
     "SourceHealth",
     "SourceSettings",
+    "StreamKeeper",
 ]
 
 
@@ -90,6 +99,9 @@ class Parsed:
     stale incidents in the batch that commits this item, with ``detail`` as the words why,
     instead of waiting for the stale check. A reading of the stream later in the same batch
     cancels it. Not a dead letter: ``reading`` and ``error`` stay None."""
+    origin: Any = None
+    """The source's own note of where the item came from, handed back to
+    :meth:`Source.within` (a Kafka partition and offset); the worker never reads it."""
 
 
 class Item(NamedTuple):
@@ -111,6 +123,40 @@ class SourceContext:
     state_file: Path | None = None
     """A file of its own beside the database, for what a source must remember across
     restarts besides positions (the Sparkplug source's births); None: nowhere."""
+    keeper: StreamKeeper | None = None
+    """The worker's streams, for a :attr:`Source.partial` source; None in tools and tests
+    that run no worker."""
+
+
+class StreamKeeper(Protocol):
+    """What the worker lends a source that holds only some streams (see
+    :attr:`Source.partial`). Everything but :meth:`on_worker` must be called on the worker's
+    thread, i.e. from inside a function given to :meth:`on_worker` or from a hook the worker
+    calls."""
+
+    @property
+    def store(self) -> Any:
+        """The worker's store connection (for ownership rows)."""
+
+    def now(self) -> float:
+        """The service's time."""
+
+    def on_worker(self, task: Any) -> None:
+        """Run ``task()`` on the worker's thread after the batch it is working on has
+        committed, and wait for it; from any thread. Run at once when the worker has
+        stopped."""
+
+    def take_on(self, streams: Any) -> int:
+        """Build the monitors of ``streams`` from their checkpoints and the readings committed
+        after them (streams never seen are left to their first reading); return how many."""
+
+    def give_up(self, streams: Any, within: Any = None) -> int:
+        """Write the checkpoints of ``streams`` that changed (with ``within()`` in the same
+        transaction, which may raise a fence error: then nothing is written), then forget
+        their monitors; return how many were held."""
+
+    def held(self) -> Any:
+        """The streams whose monitors the worker holds now."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -149,6 +195,12 @@ class Source(ABC):
     :mod:`limitwatch.ingest.reorder`); acknowledgements still go in arrival order."""
     connection: ClassVar[bool] = False
     """True for a source with a connection whose state ``/health`` and ``/metrics`` show."""
+    partial: ClassVar[bool] = False
+    """True for a source that hands this worker only some streams, others going to other
+    workers on the same store (Kafka partitions): the worker then restores no monitor at
+    start, rebuilds a stream's monitor from the store before its first reading, shares the
+    store with other such workers, and lets the source take streams on and give them up
+    through ``context.keeper``. Such a source must be the service's only source."""
 
     def __init__(self, settings: SourceSettings) -> None:
         self.settings = settings
@@ -190,6 +242,28 @@ class Source(ABC):
     @abstractmethod
     def acknowledge(self, items: Sequence[Any]) -> None:
         """``items`` (in arrival order) are committed: tell the sender, or move on."""
+
+    def within(self, store: Any, parsed: Sequence[Parsed]) -> None:  # noqa: B027 -- optional
+        """Work of this source inside the transaction that commits ``parsed`` (its items of a
+        batch, in order, or one of them when a batch is applied an item at a time): a
+        position that must be durable with them and checked against another writer (a Kafka
+        partition's next offset, fenced by owner and generation). Raise the store's
+        ``Fenced`` to roll the whole transaction back. Default: nothing."""
+
+    def fenced(self, error: Exception) -> None:  # noqa: B027 -- optional hook
+        """A batch was rolled back because :meth:`within` found ``error`` (a ``Fenced``): give
+        up what it names; the worker then commits the rest of the batch without the items
+        :meth:`owns` now refuses."""
+
+    def owns(self, parsed: Parsed) -> bool:
+        """False for an item this source no longer wants committed (its partition was taken
+        over). Default: every item."""
+        return True
+
+    def stale_allowed(self, stream: str, now: float) -> bool:
+        """May the stale check open an incident for ``stream`` now? A source that was just
+        given the stream, or is behind on it, says no until it has settled. Default: yes."""
+        return True
 
     def health(self) -> SourceHealth:
         return SourceHealth()

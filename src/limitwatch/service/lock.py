@@ -34,9 +34,13 @@ class InstanceLock:
         self.path = self.database.with_name(self.database.name + ".lock")
         self._fd: int | None = None
 
-    def acquire(self) -> None:
+    def acquire(self, *, shared: bool = False) -> None:
         """Take the lock and write our process id into the file, or raise
-        :class:`AlreadyRunning` naming the process that has it."""
+        :class:`AlreadyRunning` naming the process that has it.
+
+        ``shared``: for the workers of one Kafka consumer group, which share the file (each
+        owns its partitions' streams, and the store fences every batch by owner and
+        generation). Shared holders exclude a lone service, and a lone service them."""
         folder = self.path.parent
         if not folder.is_dir():
             raise LockError(
@@ -51,7 +55,7 @@ class InstanceLock:
                 f"service's user needs to be able to write in {folder}"
             ) from None
         try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            fcntl.flock(fd, (fcntl.LOCK_SH if shared else fcntl.LOCK_EX) | fcntl.LOCK_NB)
         except BlockingIOError:
             holder = os.read(fd, 32).decode("ascii", "replace").strip() or "unknown"
             os.close(fd)
@@ -59,8 +63,9 @@ class InstanceLock:
                 f"another limitwatch service (process {holder}) is already running on "
                 f"{self.database}; stop it first, or give this one its own [store] path"
             ) from None
-        os.ftruncate(fd, 0)
-        os.write(fd, f"{os.getpid()}\n".encode())
+        if not shared:  # shared holders would overwrite each other's process id
+            os.ftruncate(fd, 0)
+            os.write(fd, f"{os.getpid()}\n".encode())
         self._fd = fd
 
     def release(self) -> None:

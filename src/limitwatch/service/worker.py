@@ -30,7 +30,7 @@ from limitwatch.clocks import CARRY_ON_AT_MOST_S, ServiceClock, describe_step
 from limitwatch.config import Config, SourceSettings
 from limitwatch.engine import MonitorSettings
 from limitwatch.ingest.base import Source, SourceContext
-from limitwatch.ingest.registry import build_source
+from limitwatch.ingest.registry import SOURCES, build_source
 from limitwatch.ingest.reorder import ReorderBuffer
 from limitwatch.metrics import Metrics, StatusServer
 from limitwatch.pipeline import BatchResult, Parsed, Pipeline, PipelineBroken
@@ -39,6 +39,7 @@ from limitwatch.service import batch as batch_step
 from limitwatch.service import health as health_report
 from limitwatch.service import jobs as job_plan
 from limitwatch.service.jobs import _STOP, Job
+from limitwatch.service.keeper import WorkerStreams, run_source_task
 from limitwatch.service.lock import InstanceLock
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
@@ -97,6 +98,15 @@ class Service:
         self.scheduler: BackgroundScheduler | None = None
         self.status: StatusServer | None = None
         self._lock: InstanceLock | None = None
+        self.worker_thread: threading.Thread | None = None
+        """The thread in :meth:`run` while it runs (sources hand it work, see
+        :mod:`limitwatch.service.keeper`)."""
+
+    @property
+    def partial(self) -> bool:
+        """True when a source hands this worker only some streams (Kafka partitions): other
+        workers share the store, and monitors are built as streams are taken on."""
+        return any(SOURCES.load(s.type).partial for s in self.config.sources)
 
     @property
     def mqtt(self) -> dict[str, Any]:
@@ -129,17 +139,30 @@ class Service:
         now = self.clock()
         self.started_at = now
         self._started_mono = self.monotonic()
+        partial = self.partial
+        if partial and len(cfg.sources) > 1:
+            raise ValueError(
+                "a source that shares its streams with other workers (type = \"kafka\") must "
+                "be the service's only source; run the other sources in a service of their own"
+            )
         lock = InstanceLock(cfg.store.path)
-        lock.acquire()  # before anything is read: a second service must not even restore
+        # before anything is read: a second service must not even restore. Workers of one
+        # consumer group share the file (each owns its partitions, fenced in the store); a
+        # lone service and group workers still exclude each other.
+        lock.acquire(shared=partial)
         self._lock = lock
         self.store = Store.open(cfg.store.path, now=now)
         self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
-        restored = self.pipeline.restore()
-        log.info("restored %d streams from %s", restored, cfg.store.path)
+        if partial:
+            # Streams arrive with the partitions the group assigns; none is held before.
+            self.pipeline.restore_on_demand = True
+        else:
+            restored = self.pipeline.restore()
+            log.info("restored %d streams from %s", restored, cfg.store.path)
 
-        self.outbox = OutboxWorker.from_config(cfg, clock=self.clock)
+        self.outbox = OutboxWorker.from_config(cfg, clock=self.clock, shared=partial)
         self.metrics.registry.register(DeliveryCollector(self.outbox.watch, self.clock))
         self.outbox.start()
 
@@ -191,6 +214,7 @@ class Service:
             state_file=self.config.store.path.with_name(
                 f"{self.config.store.path.name}.source-{settings.name}.json"
             ),
+            keeper=WorkerStreams(self, settings.name),
         )
         source = build_source(settings, context)
         self.sources[source.name] = source
@@ -267,6 +291,13 @@ class Service:
     def run(self) -> None:
         """Process intake until asked to stop; then write every stream's checkpoint, so the
         next start restores without applying any reading again."""
+        self.worker_thread = threading.current_thread()
+        try:
+            self._run()
+        finally:
+            self.worker_thread = None
+
+    def _run(self) -> None:
         while not self._stopping.is_set():
             self._heartbeat = time.monotonic()
             self._watch_clock()
@@ -275,7 +306,7 @@ class Service:
             if batch or self._holding():
                 self._process_deliveries(batch)
             for job in jobs:
-                if job is _STOP:
+                if job is _STOP or run_source_task(job):
                     continue
                 self._run_job_guarded(job)
         log.info("stopping: the last batch is committed and acknowledged")

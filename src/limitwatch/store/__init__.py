@@ -10,7 +10,8 @@ to survive power loss as well).
 Layout: ``schema`` (numbered migrations and the upgrade), ``records`` (the dataclasses handed out
 and taken in), ``errors``, ``base`` (opening, transactions) and one module per data area --
 ``readings`` (readings, streams, checkpoints), ``baselines``, ``incidents`` (incidents, their rules
-and events, floods), ``shelves``, ``outbox``, ``deadletters``, ``offsets`` (file sources). The
+and events, floods), ``shelves``, ``outbox``, ``deadletters``, ``offsets`` (file sources),
+``partitions`` (Kafka). The
 :class:`Store` below is composed of the areas; callers import everything from ``limitwatch.store``.
 
 Times are epoch seconds supplied by the caller (``now``); nothing here reads a clock, so replay and
@@ -45,6 +46,7 @@ from limitwatch.store.errors import (
     AlertAlreadyOpen,
     AlertNotFound,
     BaselineVersionConflict,
+    Fenced,
     NotADatabase,
     NotificationNotFound,
     NotShelved,
@@ -56,6 +58,7 @@ from limitwatch.store.errors import (
 from limitwatch.store.incidents import IncidentsArea
 from limitwatch.store.offsets import FileOffsetsArea
 from limitwatch.store.outbox import OutboxArea
+from limitwatch.store.partitions import PartitionRow, PartitionsArea
 from limitwatch.store.readings import ReadingsArea
 from limitwatch.store.records import (
     ALERT_BOOKKEEPING,
@@ -109,6 +112,7 @@ __all__ = [
     "ChangeSet",
     "DeadLetter",
     "EventRow",
+    "Fenced",
     "Flood",
     "Incident",
     "Migration",
@@ -117,6 +121,7 @@ __all__ = [
     "Notification",
     "NotificationNotFound",
     "OutboxRow",
+    "PartitionRow",
     "RuleTally",
     "SchemaTooNew",
     "SchemaTooOld",
@@ -142,6 +147,7 @@ class Store(
     ShelvesArea,
     IncidentsArea,
     OutboxArea,
+    PartitionsArea,
     StoreBase,
 ):
     """limitwatch's persistent state over one :class:`sqlite_utils.Database`.

@@ -58,3 +58,20 @@ def _no_alert(alert_id: int) -> str:
 
 def _no_notification(notification_id: int) -> str:
     return f"no outbox row has id {notification_id}; it may have been pruned or never existed."
+
+
+class Fenced(StoreError):
+    """A worker wrote for a Kafka partition it no longer owns: another worker took it (a
+    rebalance while this one stalled). The batch must roll back whole; the partition's streams
+    belong to the new owner now."""
+
+    def __init__(self, topic: str, partition: int, owner: str, generation: int) -> None:
+        self.topic = topic
+        self.partition = partition
+        self.owner = owner
+        self.generation = generation
+        super().__init__(
+            f"partition {partition} of topic {topic!r} is no longer owned by {owner!r} "
+            f"(generation {generation}): another worker took it over; this batch is rolled "
+            "back and the partition's streams are left to the new owner"
+        )
