@@ -639,7 +639,7 @@ def test_source_types_are_a_tagged_choice():
     found = problems({"sources": [{"type": "mqqt", "name": "x"}, {"name": "y"}, "z"]})
     # An unknown type lists the installed source plugins (the loader shared with notifiers).
     assert "unknown source type 'mqqt'" in found["sources[0].type"]
-    assert "file, mqtt" in found["sources[0].type"]
+    assert "file, kafka, mqtt" in found["sources[0].type"]
     assert "needs type" in found["sources[1].type"]
     assert "table" in found["sources[2]"]
 
@@ -824,7 +824,8 @@ def test_the_demo_config_matches_the_demo_scenario():
 def test_the_example_config_loads():
     config = load_config(EXAMPLE)
     assert config.warnings() == []
-    assert {s.type for s in config.sources} == {"mqtt", "file", "sparkplug"}
+    assert {s.type for s in config.sources} == {"mqtt", "file", "sparkplug", "kafka"}
+    assert config.bridge is not None and config.bridge.kafka.topic == "plant-readings"
     assert {type(s) for s in config.sources} >= {MqttSourceConfig, FileSourceConfig}
     assert config.alert_policy().escalate_after_s == 1800.0
 

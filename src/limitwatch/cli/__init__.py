@@ -17,6 +17,7 @@ from limitwatch import __version__
 from limitwatch.cli import (
     baseline,
     bench,
+    bridge,
     charts,
     check,
     deadletters,
@@ -33,6 +34,7 @@ from limitwatch.cli import (
 COMMANDS: tuple[click.Command, ...] = (
     demo.demo_cmd,
     serve.serve_cmd,
+    bridge.bridge_cmd,
     check.check,
     baseline.baseline,
     replay.replay_cmd,

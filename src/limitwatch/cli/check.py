@@ -151,6 +151,8 @@ def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:
         streams.append(f"{entry.match}: {_stream_line(merged)}")
     section("streams", streams)
     section("sources", [s.describe() for s in config.sources])
+    if config.bridge is not None:
+        section("bridge", [config.bridge.describe()])
     section("notifiers", [f"{n.get('name')} ({n.get('type')})" for n in config.notifiers])
     routes = [
         f"{r.name}: streams {r.streams!r}, {'/'.join(r.severities)}"

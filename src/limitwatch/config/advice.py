@@ -21,10 +21,12 @@ if TYPE_CHECKING:
 def config_warnings(config: Config) -> list[Problem]:
     """Things that are allowed but probably not meant; ``check`` prints them."""
     out: list[Problem] = []
-    if not config.sources:
+    if not config.sources and config.bridge is None:
         out.append(Problem("sources", "no sources: the service would read nothing"))
     for i, source in enumerate(config.sources):
         out.extend(source.advice(f"sources[{i}]"))
+    if config.bridge is not None:
+        out.extend(config.bridge.advice())
     seen: dict[str, int] = {}
     for i, entry in enumerate(config.streams):
         if entry.match in seen:
@@ -94,6 +96,8 @@ def check_files(config: Config) -> list[Problem]:
     wanted: list[tuple[str, Path]] = []
     for i, source in enumerate(config.sources):
         wanted.extend(source.files_needed(f"sources[{i}]"))
+    if config.bridge is not None:
+        wanted.extend(config.bridge.files_needed())
     for i, entry in enumerate(config.notifiers):
         for key, value in entry.items():
             if key.endswith("_file") and not _SECRET_KEY.search(key[:-5]) and value is not None:

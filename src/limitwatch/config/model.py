@@ -45,6 +45,9 @@ class Config(_Section):
     notifiers: list[dict[str, Any]] = []
     routes: list[Route] = []
     budget: BudgetSection = _section()
+    bridge: Any = None
+    """``[bridge]`` for ``limitwatch bridge`` (MQTT -> Kafka), validated by its own model
+    (:mod:`limitwatch.ingest.kafka.bridge_settings`), imported only when the file has one."""
 
     _path: Path | None = PrivateAttr(default=None)
     _resolved: tuple[tuple[Any, StreamConfig], ...] | None = PrivateAttr(default=None)
@@ -76,6 +79,18 @@ class Config(_Section):
     @classmethod
     def _sources(cls, entries: Any, info: ValidationInfo) -> Any:
         return source_settings(entries, info.context)
+
+    @field_validator("bridge", mode="before")
+    @classmethod
+    def _bridge(cls, value: Any, info: ValidationInfo) -> Any:
+        if value is None:
+            return None
+        from limitwatch.ingest.kafka.bridge_settings import BridgeSettings
+
+        try:
+            return BridgeSettings.model_validate(value, context=info.context)
+        except ValidationError as exc:
+            raise _fail(*_as_problems(exc, BridgeSettings)) from None
 
     @field_validator("notifiers")
     @classmethod
@@ -249,6 +264,8 @@ class Config(_Section):
         refs: list[SecretRef] = []
         for i, source in enumerate(self.sources):
             refs.extend(source.secret_refs(f"sources[{i}]"))
+        if self.bridge is not None:
+            refs.extend(self.bridge.secret_refs())
         for i, entry in enumerate(self.notifiers):
             bases = dict.fromkeys(
                 key.rsplit("_", 1)[0]

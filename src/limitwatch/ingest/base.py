@@ -151,9 +151,10 @@ class StreamKeeper(Protocol):
         after them (streams never seen are left to their first reading); return how many."""
 
     def give_up(self, streams: Any, within: Any = None) -> int:
-        """Write the checkpoints of ``streams`` that changed (with ``within()`` in the same
-        transaction, which may raise a fence error: then nothing is written), then forget
-        their monitors; return how many were held."""
+        """Forget the monitors of ``streams``; return how many were held. With ``within``,
+        first write the checkpoints of those that changed, with ``within()`` in the same
+        transaction (it may raise a fence error: then nothing is written, and the monitors
+        are forgotten all the same)."""
 
     def held(self) -> Any:
         """The streams whose monitors the worker holds now."""

@@ -9,10 +9,12 @@ from __future__ import annotations
 
 import logging
 import time
+from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
 from limitwatch.ingest.base import Source
-from limitwatch.pipeline import BatchResult, Parsed, failure_words
+from limitwatch.pipeline import BatchResult, Parsed, PipelineBroken, failure_words
+from limitwatch.store import Fenced
 from limitwatch.streamcap import REASON as TOO_MANY_STREAMS
 
 if TYPE_CHECKING:
@@ -124,7 +126,7 @@ def commit(
     assert service.pipeline is not None
     started = time.perf_counter()
     now = service.clock()
-    result = service.pipeline.process(items, now, file_offsets=offsets)
+    result = _commit_owned(service, items, now, offsets)
     service.last_commit = now
     service._heartbeat = time.monotonic()
     m = service.metrics
@@ -142,6 +144,40 @@ def commit(
     if result.queued and service.outbox is not None:
         service.outbox.wake()
     return result
+
+
+FENCED_RETRIES = 16
+"""Most times one batch is committed again without the items of partitions taken over."""
+
+
+def _commit_owned(
+    service: Service, items: list[Parsed], now: float, offsets: dict[str, dict[str, int]] | None
+) -> BatchResult:
+    """Commit ``items`` with each source's :meth:`~limitwatch.ingest.base.Source.within` work
+    in the transaction. A batch refused by a fence (a partition another worker took over)
+    rolled back whole; the source gives that partition up, and the rest is committed again."""
+    assert service.pipeline is not None and service.store is not None
+    store = service.store
+    sources = service.sources
+
+    def within(parsed: Sequence[Parsed]) -> None:
+        by_source: dict[str, list[Parsed]] = {}
+        for p in parsed:
+            by_source.setdefault(p.source, []).append(p)
+        for name, mine in by_source.items():
+            source = sources.get(name)
+            if source is not None:
+                source.within(store, mine)
+
+    for _ in range(FENCED_RETRIES):
+        try:
+            return service.pipeline.process(items, now, file_offsets=offsets, within=within)
+        except Fenced as exc:
+            log.warning("a batch of %d items was rolled back: %s", len(items), exc)
+            for source in sources.values():
+                source.fenced(exc)
+            items = [p for p in items if (s := sources.get(p.source)) is None or s.owns(p)]
+    raise PipelineBroken(f"a batch was refused by the store's fence {FENCED_RETRIES} times")
 
 
 def poll_source(service: Service, name: str) -> int:

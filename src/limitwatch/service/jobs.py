@@ -129,6 +129,13 @@ def run_job(service: Service, job: Job) -> None:
         service.poll_source(job.source)
     elif job.kind == "stale-check":
         signals = service.pipeline.stale_signals(now, service._cadence_for)
+        # A source that shares streams with other workers holds checks back while it settles
+        # after a rebalance (a pause is not a silent sensor).
+        signals = [
+            s
+            for s in signals
+            if all(src.stale_allowed(s.stream, now) for src in service.sources.values())
+        ]
         if signals:
             report = service.book.apply_signals(signals, now)
             service.metrics.alerts_opened.inc(report.opened)

@@ -24,9 +24,13 @@ log = logging.getLogger("limitwatch.service")
 
 
 class SourceTask(Job):
-    """Work a source asked the worker to do between batches (see :meth:`WorkerStreams.on_worker`)."""
+    """Work a source asked the worker to do between batches (see
+    :meth:`WorkerStreams.on_worker`)."""
 
     __slots__ = ("done", "error", "task")
+    task: Callable[[], None]
+    done: threading.Event
+    error: Exception | None
 
     def __init__(self, source: str, task: Callable[[], None]) -> None:
         object.__setattr__(self, "kind", "source-task")
@@ -92,7 +96,7 @@ class WorkerStreams:
         held = [s for s in streams if s in pipeline.monitors]
         changed = [s for s in held if s in pipeline._unsaved]
         try:
-            if changed or within is not None:
+            if within is not None:  # without: dropped unwritten (the partition is gone)
                 store = self.store
                 with store.transaction():
                     if changed:

@@ -25,7 +25,8 @@ PostgreSQL backend can run it after adapting placeholders.
 ...             store.advance_partition("readings", 0, "worker-a", first.generation, 7, now=4.0)
 ...         except Fenced as exc:
 ...             fenced = exc.owner
-...         (first.generation, second.generation, fenced, store.partition("readings", 0).next_offset)
+...         row = store.partition("readings", 0)
+...         (first.generation, second.generation, fenced, row.next_offset)
 (1, 2, 'worker-a', 42)
 
 References

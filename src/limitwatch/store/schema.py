@@ -282,7 +282,16 @@ MIGRATIONS: tuple[Migration, ...] = (
         9,
         "Kafka partitions: owner, generation and the next offset, fenced per batch",
         (
-            """CREATE TABLE partitions (topic TEXT NOT NULL, partition INTEGER NOT NULL, owner TEXT, generation INTEGER NOT NULL DEFAULT 0, next_offset INTEGER, taken_at REAL, committed_at REAL, PRIMARY KEY (topic, partition))""",
+            """CREATE TABLE partitions (
+                topic TEXT NOT NULL,
+                partition INTEGER NOT NULL,
+                owner TEXT,
+                generation INTEGER NOT NULL DEFAULT 0,
+                next_offset INTEGER,
+                taken_at REAL,
+                committed_at REAL,
+                PRIMARY KEY (topic, partition)
+            )""",
         ),
     ),
 )

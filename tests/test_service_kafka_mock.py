@@ -1,0 +1,257 @@
+"""The Kafka source and the partition fence, in process on librdkafka's built-in mock cluster
+(``test.mock.num.brokers``: a broker inside the client library, on a loopback port) and a real
+SQLite file. The multi-process failover test with a real broker is ``test_service_kafka.py``."""
+
+from __future__ import annotations
+
+import json
+import threading
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import pytest
+from confluent_kafka import Producer
+
+from limitwatch.config import load_config
+from limitwatch.ingest.kafka.partitioner import partition_of
+from limitwatch.ingest.kafka.settings import RECEIVED_HEADER, TOPIC_HEADER, KafkaSourceConfig
+from limitwatch.ingest.kafka.source import KafkaSource
+from limitwatch.service import Service
+from limitwatch.store import Fenced, Store
+from tests.service_harness import count, query, wait_until
+
+T0 = 1_767_225_600.0
+TOPIC = "plant-readings"
+
+
+@pytest.fixture
+def mock_cluster() -> Iterator[tuple[Producer, str]]:
+    """A producer that owns a one-broker mock cluster, and the cluster's bootstrap address."""
+    producer = Producer(
+        {"test.mock.num.brokers": 1, "partitioner": "murmur2_random", "log_level": 3}
+    )
+    brokers = producer.list_topics(timeout=10).brokers.values()
+    yield producer, ",".join(f"{b.host}:{b.port}" for b in brokers)
+    producer.flush(5)
+
+
+def produce(producer: Producer, stream: str, t: float, value: float) -> None:
+    """A record as the bridge writes it: key = stream id, the MQTT payload, headers."""
+    producer.produce(
+        TOPIC,
+        key=stream,
+        value=json.dumps({"value": value, "time": t}).encode(),
+        headers=[(TOPIC_HEADER, f"plant/{stream}".encode()), (RECEIVED_HEADER, repr(t).encode())],
+    )
+
+
+def write_config(folder: Path, brokers: str, member: str) -> Path:
+    path = folder / f"{member}.toml"
+    path.write_text(
+        f"""
+[store]
+path = "plant.db"
+
+[service]
+batch_wait = "50ms"
+stale_check_every = "1s"
+
+[[sources]]
+type = "kafka"
+name = "readings"
+bootstrap_servers = "{brokers}"
+topic = "{TOPIC}"
+group_id = "limitwatch"
+member = "{member}"
+session_timeout = "6s"
+max_poll_interval = "30s"
+settle = "1s"
+client_options = {{ "topic.metadata.refresh.interval.ms" = 1000 }}
+
+[[sources.topics]]
+filter = "plant/+/+"
+stream = "{{2}}/{{3}}"
+payload = "json"
+time = "time"
+
+[[notifiers]]
+name = "terminal"
+type = "console"
+"""
+    )
+    return path
+
+
+@contextmanager
+def running(service: Service) -> Iterator[Service]:
+    """The service on a worker thread of its own (the store belongs to the thread that opened
+    it), as `limitwatch serve` runs it on its main thread."""
+    started = threading.Event()
+    failed: list[BaseException] = []
+
+    def work() -> None:
+        try:
+            service.start()
+            started.set()
+            service.run()
+        except BaseException as exc:  # reported below
+            failed.append(exc)
+        finally:
+            started.set()
+            service.close()
+
+    worker = threading.Thread(target=work, daemon=True)
+    worker.start()
+    started.wait(30)
+    try:
+        if failed:
+            raise failed[0]
+        yield service
+    finally:
+        service.request_stop()
+        worker.join(60)
+    if failed:
+        raise failed[0]
+
+
+def kafka_source(service: Service) -> KafkaSource:
+    source = service.sources["readings"]
+    assert isinstance(source, KafkaSource)
+    return source
+
+
+def test_partitioner_matches_librdkafkas_murmur2(mock_cluster: tuple[Producer, str]) -> None:
+    """Independent check: librdkafka's own ``murmur2_random`` partitioner (the Java client's
+    default for keyed records) puts every key where :func:`partition_of` says."""
+    producer, _ = mock_cluster
+    landed: dict[str, int] = {}
+    keys = [f"line-{i % 7}/sensor-{i}" for i in range(120)] + ["a", "21", "kiln-2/temp" * 9]
+    for key in keys:
+        producer.produce(
+            "partitioner-check",
+            key=key,
+            value=b"1",
+            on_delivery=lambda err, msg: landed.__setitem__(msg.key().decode(), msg.partition()),
+        )
+    assert producer.flush(10) == 0
+    partitions = len(producer.list_topics("partitioner-check", timeout=5).topics[
+        "partitioner-check"].partitions)
+    assert partitions > 1 and len(landed) == len(keys)
+    assert {k: partition_of(k, partitions) for k in keys} == landed
+
+
+def test_fence_refuses_a_late_owner_and_rolls_its_batch_back(tmp_path: Path) -> None:
+    with Store.open(tmp_path / "plant.db", now=T0) as store:
+        first = store.take_partition(TOPIC, 3, "worker-a", now=T0)
+        with store.transaction():
+            store.add_dead_letter("readings", b"x", "unreadable", now=T0)
+            store.advance_partition(TOPIC, 3, "worker-a", first.generation, 10, now=T0)
+        second = store.take_partition(TOPIC, 3, "worker-b", now=T0 + 1)
+        assert second.generation == first.generation + 1 and second.next_offset == 10
+        with pytest.raises(Fenced, match="no longer owned by 'worker-a'"), store.transaction():
+            store.add_dead_letter("readings", b"y", "unreadable", now=T0 + 2)
+            store.advance_partition(TOPIC, 3, "worker-a", first.generation, 20, now=T0 + 2)
+        assert len(store.dead_letters()) == 1  # the late batch left nothing behind
+        assert store.partition(TOPIC, 3).next_offset == 10
+        with pytest.raises(Fenced):
+            store.check_partition(TOPIC, 3, "worker-a", first.generation)
+        assert not store.release_partition(TOPIC, 3, "worker-a", first.generation)
+        assert store.release_partition(TOPIC, 3, "worker-b", second.generation)
+        row = store.partition(TOPIC, 3)
+        assert row.owner is None and row.next_offset == 10 and row.generation == 2
+
+
+def test_settings_refuse_what_kafka_would_and_choose_eager_manual_commits() -> None:
+    base = {
+        "type": "kafka", "name": "r", "bootstrap_servers": "127.0.0.1:9092", "topic": TOPIC,
+        "group_id": "g", "topics": [{"filter": "#", "stream": "{#}", "payload": "number"}],
+    }
+    config = KafkaSourceConfig.model_validate(base).client_config("w-1")
+    assert config["enable.auto.commit"] is False
+    assert config["partition.assignment.strategy"] == "range"
+    for bad, words in (
+        ({"topic": "plant readings"}, "letters, digits"),
+        ({"security_protocol": "sasl_ssl"}, "needs sasl_mechanism"),
+        ({"session_timeout": "60s", "max_poll_interval": "10s"}, "at least session_timeout"),
+    ):
+        with pytest.raises(ValueError, match=words):
+            KafkaSourceConfig.model_validate({**base, **bad})
+
+
+def test_worker_commits_readings_with_partition_offsets_and_a_second_worker_goes_on(
+    tmp_path: Path, mock_cluster: tuple[Producer, str]
+) -> None:
+    producer, brokers = mock_cluster
+    streams = [f"oven-{i}/temp" for i in range(6)]
+    for n in range(30):
+        for s in streams:
+            produce(producer, s, T0 + 60 * n, 20.0 + (n * 7 % 5))
+    assert producer.flush(10) == 0
+    db = tmp_path / "plant.db"
+    config = load_config(write_config(tmp_path, brokers, "worker-a"))
+    with running(Service(config)) as service:
+        wait_until(lambda: count(db, "readings") == 180, 60, "the first 180 readings")
+        source = kafka_source(service)
+        owned = source.owned
+        assert set(owned) == {0, 1, 2, 3} and set(owned.values()) == {1}
+    rows = {p: (owner, nxt) for p, owner, nxt in query(
+        db, "SELECT partition, owner, next_offset FROM partitions")}
+    per_partition: dict[int, int] = {}
+    for s in streams:
+        per_partition[partition_of(s, 4)] = per_partition.get(partition_of(s, 4), 0) + 30
+    # Released at the clean stop, each offset just past what was applied.
+    assert {p: nxt for p, (_, nxt) in rows.items() if nxt is not None} == per_partition
+    assert all(owner is None for owner, _ in rows.values())
+    before = query(db, "SELECT stream, state_json FROM checkpoints ORDER BY stream")
+
+    for s in streams:  # more while no worker runs, and the first readings again (a repeat)
+        produce(producer, s, T0 + 60 * 30, 22.0)
+    assert producer.flush(10) == 0
+    config_b = load_config(write_config(tmp_path, brokers, "worker-b"))
+    with running(Service(config_b)) as service:
+        wait_until(lambda: count(db, "readings") == 186, 60, "the next 6 readings")
+        time.sleep(0.5)
+        assert set(kafka_source(service).owned.values()) == {2}
+        assert set(service.pipeline.monitors) == set(streams)
+    assert count(db, "readings") == 186 and count(db, "dead_letters") == 0
+    assert before and len(before) == len(streams)
+    for stream, index in query(db, "SELECT stream, max(idx) FROM readings GROUP BY stream"):
+        assert index == 30, stream  # in order, each applied once, numbered on from 0
+
+
+def test_a_batch_for_a_partition_taken_over_is_refused_and_the_rest_goes_on(
+    tmp_path: Path, mock_cluster: tuple[Producer, str]
+) -> None:
+    producer, brokers = mock_cluster
+    streams = [f"press-{i}/force" for i in range(8)]
+    assert len({partition_of(s, 4) for s in streams}) >= 2
+    for s in streams:
+        produce(producer, s, T0, 5.0)
+    assert producer.flush(10) == 0
+    db = tmp_path / "plant.db"
+    config = load_config(write_config(tmp_path, brokers, "worker-a"))
+    with running(Service(config)) as service:
+        wait_until(lambda: count(db, "readings") == 8, 60, "the first readings")
+        source = kafka_source(service)
+        taken = partition_of(streams[0], 4)
+        # Another worker takes the partition over while this one still thinks it owns it
+        # (as after a stall past max.poll.interval.ms).
+        with Store.open(db) as other:
+            other.take_partition(TOPIC, taken, "worker-b", now=T0)
+        for s in streams:
+            produce(producer, s, T0 + 60, 6.0)
+        assert producer.flush(10) == 0
+        lost = [s for s in streams if partition_of(s, 4) == taken]
+        wait_until(lambda: count(db, "readings") == 16 - len(lost), 60, "the other partitions")
+        wait_until(lambda: source.fenced_batches >= 1, 10, "the fenced batch")
+        assert taken not in source.owned
+        assert not set(lost) & set(service.pipeline.monitors)
+        health = service.health()
+        assert health["source_state"]["readings"]["fenced_batches"] >= 1
+    for s in lost:  # nothing of the late batch landed
+        assert count(db, "readings", "stream = ?", (s,)) == 1
+    assert query(db, "SELECT owner FROM partitions WHERE partition = ?", (taken,)) == [
+        ("worker-b",)
+    ]
