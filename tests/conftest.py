@@ -82,7 +82,7 @@ def broker(tmp_path: Path) -> Iterator[Broker]:
 
 # -- the integration marker, put on by what a test uses ---------------------------------------
 
-INTEGRATION_FIXTURES = {"broker"}
+INTEGRATION_FIXTURES = {"broker", "kafka_broker"}
 """Fixtures that start a process or a server: every test that uses one is an integration test."""
 
 INTEGRATION_MODULES = (
@@ -92,6 +92,7 @@ INTEGRATION_MODULES = (
     "socketserver",
     "aiosmtpd",
     "tests.broker",
+    "tests.kafka_broker",
     "tests.receivers",
     "tests.service_harness",
     "limitwatch.localbroker",
@@ -170,3 +171,18 @@ def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
         seen: set[object] = set()
         if any(_uses_integration_parts(f, seen) for f in funcs):
             item.add_marker(pytest.mark.integration)
+
+
+# -- a real Kafka-protocol broker (Tansu) on loopback ------------------------------------------
+
+
+@pytest.fixture
+def kafka_broker(tmp_path: Path) -> Iterator[Any]:
+    """Tansu on a free 127.0.0.1 port; skips (fails under CI=true) without the binary."""
+    from tests.kafka_broker import KafkaBroker
+
+    instance = KafkaBroker(tmp_path / "kafka").start()
+    try:
+        yield instance
+    finally:
+        instance.stop()
