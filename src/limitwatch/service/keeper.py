@@ -67,16 +67,20 @@ class WorkerStreams:
         return self.service.clock()
 
     def on_worker(self, task: Callable[[], None]) -> None:
+        """Queued for the worker and waited for; a task asked for before the worker's loop
+        began waits for it. Run here at once when this is the worker's thread, or when the
+        worker's loop has ended (at close, on the thread that ran it)."""
         service = self.service
-        if service.worker_thread is None or threading.current_thread() is service.worker_thread:
-            task()  # the worker is not running (or this is it): nobody else touches the store
+        if threading.current_thread() is service.worker_thread:
+            task()
             return
+        if service.worker_finished:
+            raise RuntimeError("the worker has stopped; its store is closed to other threads")
         job = SourceTask(self.source, task)
         service.intake.put(job)
         while not job.done.wait(0.5):
-            if service.worker_thread is None:  # the worker left before it got to the task
-                task()
-                return
+            if service.worker_finished:
+                raise RuntimeError("the worker stopped before it got to the task")
         if job.error is not None:
             raise RuntimeError(f"the worker failed the task: {job.error}")
 

@@ -99,8 +99,10 @@ class Service:
         self.status: StatusServer | None = None
         self._lock: InstanceLock | None = None
         self.worker_thread: threading.Thread | None = None
-        """The thread in :meth:`run` while it runs (sources hand it work, see
-        :mod:`limitwatch.service.keeper`)."""
+        """The thread that runs (or ran) :meth:`run`: sources hand it work (see
+        :mod:`limitwatch.service.keeper`), and at close it gives up what they hold."""
+        self.worker_finished = False
+        """True once :meth:`run` has returned."""
 
     @property
     def partial(self) -> bool:
@@ -269,6 +271,7 @@ class Service:
 
     def close(self) -> None:
         """Disconnect and release everything; safe to call after a failed start."""
+        self.worker_finished = True  # a source's last give-up runs here, or not at all
         if self.scheduler is not None and self.scheduler.running:
             self.scheduler.shutdown(wait=False)
         for source in self.sources.values():
@@ -295,7 +298,7 @@ class Service:
         try:
             self._run()
         finally:
-            self.worker_thread = None
+            self.worker_finished = True
 
     def _run(self) -> None:
         while not self._stopping.is_set():
