@@ -255,3 +255,50 @@ def test_a_batch_for_a_partition_taken_over_is_refused_and_the_rest_goes_on(
     assert query(db, "SELECT owner FROM partitions WHERE partition = ?", (taken,)) == [
         ("worker-b",)
     ]
+
+
+def test_stale_checks_wait_for_settle_and_catching_up_and_only_on_the_owner() -> None:
+    """A rebalance pause must not look like a silent sensor: a stream's stale check waits
+    ``settle`` after its partition's assignment and until the worker caught up (the consumer
+    came back empty, or read a record the bridge received recently); a stream of a partition
+    owned elsewhere is never checked here."""
+    from limitwatch.ingest.kafka.source import Owned
+    from limitwatch.ingest.payload import SourceParser
+
+    settings = KafkaSourceConfig.model_validate(
+        {
+            "type": "kafka", "name": "readings", "bootstrap_servers": "127.0.0.1:9",
+            "topic": TOPIC, "group_id": "g", "settle": "10s",
+            "topics": [{"filter": "plant/+/+", "stream": "{2}/{3}", "payload": "number"}],
+        }
+    )
+    source = KafkaSource(settings, SourceParser(settings), "w-1", {}, None)
+    source.partitions = 4
+    mine, elsewhere = "oven-1/temp", next(
+        s for s in (f"oven-{i}/temp" for i in range(2, 50))
+        if partition_of(s, 4) != partition_of("oven-1/temp", 4)
+    )
+    now = T0 + 1000.0
+    source._owned[partition_of(mine, 4)] = Owned(generation=3, assigned_at=now - 5, assigned_mono=0)
+    assert not source.stale_allowed(mine, now)  # within settle
+    assert not source.stale_allowed(mine, now + 20)  # settled, but not known to be caught up
+    source._owned[partition_of(mine, 4)].last_received = now + 15  # read a fresh record
+    assert source.stale_allowed(mine, now + 20)
+    assert not source.stale_allowed(elsewhere, now + 20)  # not ours: its owner checks it
+
+
+def test_group_workers_share_the_lock_and_keep_a_lone_service_out(tmp_path: Path) -> None:
+    from limitwatch.service.lock import AlreadyRunning, InstanceLock
+
+    first, second = InstanceLock(tmp_path / "plant.db"), InstanceLock(tmp_path / "plant.db")
+    first.acquire(shared=True)
+    second.acquire(shared=True)  # two workers of one group on one file
+    with pytest.raises(AlreadyRunning):
+        InstanceLock(tmp_path / "plant.db").acquire()
+    first.release()
+    second.release()
+    lone = InstanceLock(tmp_path / "plant.db")
+    lone.acquire()
+    with pytest.raises(AlreadyRunning):
+        InstanceLock(tmp_path / "plant.db").acquire(shared=True)
+    lone.release()

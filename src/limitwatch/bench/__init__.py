@@ -23,6 +23,9 @@ returns :class:`Figure` objects that ``limitwatch bench`` prints or writes as JS
 ``latency``
     Delay from publish to commit while a publisher in another process sends at a fixed rate; the
     publish time travels in each message as the reading's time.
+``cluster`` (only with ``--only cluster``)
+    Kafka consumer-group workers sharing one store, the bridge in front, and a failover: see
+    :mod:`limitwatch.bench.cluster`.
 ``memory`` / ``restore``
     Resident memory (what an operator sees in ``ps``) gained per stream once many streams are
     restored from their checkpoints, with the Python memory tracemalloc counts beside it, and
@@ -58,6 +61,7 @@ from pathlib import Path
 
 from limitwatch.bench.common import (
     ALL_DETECTORS,
+    EXTRA_PARTS,
     FULL,
     LATENCY_BATCH_WAITS,
     PARTS,
@@ -81,6 +85,7 @@ from limitwatch.bench.mqtt import measure_mqtt
 
 __all__ = [
     "ALL_DETECTORS",
+    "EXTRA_PARTS",
     "FULL",
     "LATENCY_BATCH_WAITS",
     "PARTS",
@@ -128,6 +133,10 @@ def run(
                 figures += measure_latency(sizes, workdir)
             elif part == "memory":
                 figures += measure_memory(sizes, workdir / "memory")
+            elif part == "cluster":
+                from limitwatch.bench.cluster import measure_cluster
+
+                figures += measure_cluster(sizes, workdir)
             else:
                 raise ValueError(f"unknown part {part!r}; parts: {', '.join(PARTS)}")
     return figures

@@ -76,6 +76,9 @@ QUICK = Sizes(
 )
 
 PARTS = ("engine", "file", "mqtt", "latency", "memory")
+EXTRA_PARTS = ("cluster",)
+"""Parts measured only when asked for (``--only cluster``): they start several processes and a
+Kafka-protocol broker, and take minutes."""
 
 LATENCY_BATCH_WAITS = (("200ms", "the default"), ("50ms", "a lower setting"))
 """The delay is mostly ``batch_wait`` (how long the worker may wait to fill a batch), so it is

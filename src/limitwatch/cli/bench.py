@@ -11,7 +11,7 @@ import sys
 
 import click
 
-from limitwatch.bench import PARTS, describe, machine, run
+from limitwatch.bench import EXTRA_PARTS, PARTS, describe, machine, run
 
 
 @click.command("bench")
@@ -19,9 +19,10 @@ from limitwatch.bench import PARTS, describe, machine, run
 @click.option("--json", "as_json", is_flag=True, help="One JSON document instead of text.")
 @click.option(
     "--only",
-    type=click.Choice(PARTS),
+    type=click.Choice(PARTS + EXTRA_PARTS),
     help="Measure one part only: engine, file, mqtt (with the bare subscriber), latency, "
-    "or memory (with restore time).",
+    "memory (with restore time), or cluster (Kafka workers, the bridge and a failover; "
+    "only when asked for).",
 )
 def bench_cmd(quick: bool, as_json: bool, only: str | None) -> None:
     """Measure readings per second, publish-to-commit delay and memory per stream here.
@@ -39,6 +40,7 @@ def bench_cmd(quick: bool, as_json: bool, only: str | None) -> None:
     Examples:
       limitwatch bench --quick
       limitwatch bench --only engine --json > engine.json
+      limitwatch bench --quick --only cluster
     """
 
     def progress(text: str) -> None:

