@@ -302,3 +302,23 @@ def test_group_workers_share_the_lock_and_keep_a_lone_service_out(tmp_path: Path
     with pytest.raises(AlreadyRunning):
         InstanceLock(tmp_path / "plant.db").acquire(shared=True)
     lone.release()
+
+
+def test_a_kafka_source_beside_another_source_is_refused_before_anything_is_read(
+    tmp_path: Path,
+) -> None:
+    from limitwatch.service.lock import CannotShare
+
+    path = write_config(tmp_path, "127.0.0.1:9", "worker-a")
+    path.write_text(
+        path.read_text()
+        + '\n[[sources]]\ntype = "file"\nname = "export"\nglob = "data/*.csv"\nformat = "csv"\n'
+        'value = "value"\ntime = "time"\nstream = "stream"\n'
+    )
+    service = Service(load_config(path))
+    try:
+        with pytest.raises(CannotShare, match="must be the service's only source"):
+            service.start()
+    finally:
+        service.close()
+    assert not (tmp_path / "plant.db").exists()

@@ -26,6 +26,11 @@ class AlreadyRunning(LockError):
     """Another service holds the database's lock."""
 
 
+class CannotShare(LockError):
+    """A source that shares its store with other workers (Kafka) was configured beside
+    other sources, which assume the service is the store's only writer."""
+
+
 class InstanceLock:
     """The lock for one database file; ``acquire`` once, ``release`` at the end."""
 

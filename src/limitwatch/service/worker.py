@@ -40,7 +40,7 @@ from limitwatch.service import health as health_report
 from limitwatch.service import jobs as job_plan
 from limitwatch.service.jobs import _STOP, Job
 from limitwatch.service.keeper import WorkerStreams, run_source_task
-from limitwatch.service.lock import InstanceLock
+from limitwatch.service.lock import CannotShare, InstanceLock
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
 from limitwatch.streamcap import StreamCap
@@ -143,8 +143,8 @@ class Service:
         self._started_mono = self.monotonic()
         partial = self.partial
         if partial and len(cfg.sources) > 1:
-            raise ValueError(
-                "a source that shares its streams with other workers (type = \"kafka\") must "
+            raise CannotShare(
+                "a source that shares its store with other workers (type = \"kafka\") must "
                 "be the service's only source; run the other sources in a service of their own"
             )
         lock = InstanceLock(cfg.store.path)
