@@ -87,6 +87,10 @@ class WorkerStreams:
     def take_on(self, streams: Iterable[str]) -> int:
         pipeline = self.service.pipeline
         assert pipeline is not None
+        if self.service.book is not None:
+            # What the alert book remembers of these streams' incidents may be another
+            # worker's past by now (on a store that does not say when others commit).
+            self.service.book.forget()
         taken = 0
         for stream in streams:
             if stream not in pipeline.monitors:
