@@ -29,7 +29,8 @@ committed, and the caller acknowledges only after :meth:`Pipeline.process` retur
 arrival order, as before.
 
 A failure of the store itself (an I/O error, a full disk, a locked or damaged database: any
-``sqlite3.OperationalError`` or ``DatabaseError`` other than a refused row) leaves the monitors
+``sqlite3.OperationalError``, ``psycopg.OperationalError`` or another database error
+than a refused row) leaves the monitors
 ahead of the database; the pipeline then refuses to go on (:class:`PipelineBroken`) and the
 service exits, so a restart resumes from the last commit and the broker redelivers what was
 never acknowledged.
@@ -40,7 +41,6 @@ from __future__ import annotations
 import gc
 import logging
 import math
-import sqlite3
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, fields
 
@@ -51,6 +51,7 @@ from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import Baseline, BaselineError
 from limitwatch.store import CONFIG_AUTHOR, Store, same_numbers
+from limitwatch.store.connection import database_failed
 from limitwatch.textout import printable
 
 log = logging.getLogger("limitwatch.pipeline")
@@ -567,7 +568,7 @@ class Pipeline:
     def _time_at(self, stream: str, index: int, last_time: float) -> float | None:
         """The time of the stream's reading at ``index`` (stored in this transaction already,
         with the batch's readings), for the first reading of a learned baseline."""
-        row = self.store.db.conn.execute(
+        row = self.store.sql.execute(
             "SELECT time FROM readings WHERE stream = ? AND idx = ? AND time <= ?",
             (stream, index, last_time),
         ).fetchone()
@@ -700,22 +701,11 @@ def _added(a: BookReport, b: BookReport) -> BookReport:
     )
 
 
-_ROW_REFUSED = (
-    sqlite3.IntegrityError,
-    sqlite3.DataError,
-    sqlite3.ProgrammingError,
-    sqlite3.InterfaceError,
-)
-"""What the database says about a row it will not take, as opposed to failing itself."""
-
-
 def store_failed(exc: BaseException) -> bool:
-    """True when the store itself failed (I/O, disk full, locked, damaged), so that applying
-    the items again one at a time could not help; False for a refused row or any failure of
-    our own code, which one item may cause."""
-    if isinstance(exc, _ROW_REFUSED):
-        return False
-    return isinstance(exc, sqlite3.Error | OSError | MemoryError)
+    """True when the store itself failed (I/O, disk full, locked, damaged, the server gone),
+    so that applying the items again one at a time could not help; False for a refused row or
+    any failure of our own code, which one item may cause."""
+    return database_failed(exc)
 
 
 def failure_words(exc: BaseException) -> str:

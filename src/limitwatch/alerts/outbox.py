@@ -29,6 +29,7 @@ The contract with the rows (written by :class:`limitwatch.alerts.lifecycle.Alert
   gets ``next_attempt_at`` = :data:`PARKED_AT` and a ``last_error`` starting ``"gave up: "``.
 
 >>> import random
+import socket
 >>> delays = [backoff_delay(n, random.Random(1)) for n in (0, 3, 20)]
 >>> 0 <= delays[0] <= 5.0, 0 <= delays[1] <= 40.0, 0 <= delays[2] <= 900.0
 (True, True, True)
@@ -44,7 +45,9 @@ ch. 3, "Transactional outbox".
 from __future__ import annotations
 
 import logging
+import os
 import random
+import socket
 import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
@@ -56,7 +59,7 @@ from limitwatch.alerts.delivery_watch import DeliveryWatch
 from limitwatch.alerts.messages import iso_time
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier
 from limitwatch.alerts.notifiers.registry import build_notifier
-from limitwatch.store import Notification, Store
+from limitwatch.store import Notification, Store, open_store
 
 log = logging.getLogger(__name__)
 
@@ -125,8 +128,11 @@ class DeliveryReport:
 class OutboxWorker:
     """Delivers due outbox rows to notifiers, in a background thread or one pass at a time.
 
-    ``store`` is a database path or a callable returning a new :class:`Store`; the worker opens
-    one connection per thread that uses it (SQLite connections are bound to their thread).
+    ``store`` is a database path or store URL, or a callable returning a new :class:`Store`; the
+    worker opens one connection per thread that uses it (SQLite connections are bound to their
+    thread). On PostgreSQL several services' workers share the outbox: each pass claims its rows
+    for ``lease_s`` seconds (longer than a pass takes), so no row is sent by two at once and the
+    rows of a worker that died are sent by another once their lease runs out.
     ``clock`` gives the time for the background loop only; :meth:`deliver_due` takes ``now``.
     ``rng`` draws the jitter (pass a seeded ``random.Random`` in tests).
 
@@ -148,8 +154,12 @@ class OutboxWorker:
         batch_size: int = 100,
         poll_interval_s: float = 1.0,
         watch: DeliveryWatch | None = None,
+        lease_s: float = 600.0,
     ) -> None:
-        self._open = store if callable(store) else (lambda: Store.open(store))
+        self._open = store if callable(store) else (lambda: open_store(store))
+        self.claimant = f"{socket.gethostname()}:{os.getpid()}:{id(self):x}"
+        """Who this worker is in an outbox row's lease (PostgreSQL, where services share it)."""
+        self.lease_s = lease_s
         self.notifiers = dict(notifiers)
         self.routes = {name: tuple(targets) for name, targets in (routes or {}).items()}
         _check_routes(self.notifiers, self.routes)
@@ -182,7 +192,7 @@ class OutboxWorker:
         for raw in config.notifiers:
             notifier = build_notifier(raw)
             notifiers[notifier.name] = notifier
-        return cls(config.store.path, notifiers, **kwargs)
+        return cls(config.store.location, notifiers, **kwargs)
 
     # ---- one pass
 
@@ -192,7 +202,9 @@ class OutboxWorker:
             store = self._store()
             report = DeliveryReport()
             self._give_up_expired(store, now, report)
-            rows = store.due_notifications(now, limit=self.batch_size)
+            rows = store.claim_notifications(
+                now, by=self.claimant, lease_s=self.lease_s, limit=self.batch_size
+            )
             report.picked, report.full = len(rows), len(rows) == self.batch_size
             failed: dict[str, str] = {}  # notifier -> its retryable failure in this pass
             for row in rows:
@@ -204,7 +216,7 @@ class OutboxWorker:
                 if r.result != "handed-on":
                     name = r.notifier or r.route
                     self.watch.record(name, r.result, now, r.message, attempted=r.attempted)
-            self.watch.observe_queue(_waiting(store))
+            self.watch.observe_queue(store.waiting_by_route(PARKED_AT))
             return report
 
     run_once = deliver_due
@@ -301,28 +313,14 @@ class OutboxWorker:
         return RowResult(row.id, row.route, "gave-up", notifier, reason, PARKED_AT)
 
     def _give_up_expired(self, store: Store, now: float, report: DeliveryReport) -> None:
-        """Record why rows that expired while waiting (e.g. the service was down) end here.
-
-        The store offers no query for these yet, so this reads and updates the outbox table
-        directly; it changes only ``last_error`` and ``next_attempt_at`` (no attempt was made).
-        """
-        rows = store.db.execute(
-            """SELECT id, route, attempts, last_error, expires_at FROM outbox
-            WHERE delivered_at IS NULL AND next_attempt_at < ? AND expires_at IS NOT NULL
-                AND expires_at <= ?
-            ORDER BY id LIMIT ?""",
-            (PARKED_AT, now, self.batch_size),
-        ).fetchall()
-        for row_id, route, attempts, last_error, expires_at in rows:
-            reason = f"expired at {iso_time(expires_at)} after {attempts} attempt(s)" + (
-                f"; last error: {last_error}" if last_error else ""
+        """Record why rows that expired while waiting (e.g. the service was down) end here; only
+        ``last_error`` and ``next_attempt_at`` change (no attempt was made)."""
+        for row in store.expired_waiting(now, parked_at=PARKED_AT, limit=self.batch_size):
+            row_id, route = row.id, row.route
+            reason = f"expired at {iso_time(row.expires_at)} after {row.attempts} attempt(s)" + (
+                f"; last error: {row.last_error}" if row.last_error else ""
             )
-            with store.transaction():
-                store.db.execute(
-                    """UPDATE outbox SET last_error = ?, next_attempt_at = ?
-                    WHERE id = ? AND delivered_at IS NULL""",
-                    (GAVE_UP + reason, PARKED_AT, row_id),
-                )
+            store.park_notification(row_id, GAVE_UP + reason, PARKED_AT)
             log.warning("outbox row %s (%s) given up: %s", row_id, route, reason)
             report.rows.append(
                 RowResult(row_id, route, "gave-up", None, reason, PARKED_AT, attempted=False)
@@ -394,16 +392,6 @@ class OutboxWorker:
         if store is None:
             store = self._local.store = self._open()
         return store
-
-
-def _waiting(store: Store) -> dict[str, tuple[int, float | None]]:
-    """Route -> (rows still to deliver, the oldest one's queue time); given-up rows excluded."""
-    rows = store.db.execute(
-        """SELECT route, count(*), min(created_at) FROM outbox
-        WHERE delivered_at IS NULL AND next_attempt_at < ? GROUP BY route""",
-        (PARKED_AT,),
-    ).fetchall()
-    return {route: (int(n), oldest) for route, n, oldest in rows}
 
 
 def _event_id(row: Notification) -> str:

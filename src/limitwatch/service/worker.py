@@ -41,7 +41,8 @@ from limitwatch.service import jobs as job_plan
 from limitwatch.service.jobs import _STOP, Job
 from limitwatch.service.lock import InstanceLock
 from limitwatch.stats.baseline import Baseline
-from limitwatch.store import Store
+from limitwatch.store import Store, open_store, parse_location
+from limitwatch.store.location import redacted
 from limitwatch.streamcap import StreamCap
 
 log = logging.getLogger("limitwatch.service")
@@ -129,15 +130,21 @@ class Service:
         now = self.clock()
         self.started_at = now
         self._started_mono = self.monotonic()
-        lock = InstanceLock(cfg.store.path)
-        lock.acquire()  # before anything is read: a second service must not even restore
-        self._lock = lock
-        self.store = Store.open(cfg.store.path, now=now)
+        where = parse_location(cfg.store.location)
+        if where.path is not None:
+            lock = InstanceLock(where.path)
+            lock.acquire()  # before anything is read: a second service must not even restore
+            self._lock = lock
+        else:
+            # Several services share one PostgreSQL database (each owning its own streams, or
+            # Kafka partitions); the store's own locks and leases keep them apart.
+            log.info("store %s is shared: no single-instance lock", redacted(str(where)))
+        self.store = open_store(where, now=now)
         self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
         restored = self.pipeline.restore()
-        log.info("restored %d streams from %s", restored, cfg.store.path)
+        log.info("restored %d streams from %s", restored, self.store.path)
 
         self.outbox = OutboxWorker.from_config(cfg, clock=self.clock)
         self.metrics.registry.register(DeliveryCollector(self.outbox.watch, self.clock))
@@ -188,9 +195,9 @@ class Service:
         context = SourceContext(
             future_tolerance=self.config.service.future_tolerance,
             positions=self.store.file_offsets(settings.name),
-            state_file=self.config.store.path.with_name(
-                f"{self.config.store.path.name}.source-{settings.name}.json"
-            ),
+            state_file=None
+            if (file := self.config.store.file) is None
+            else file.with_name(f"{file.name}.source-{settings.name}.json"),
         )
         source = build_source(settings, context)
         self.sources[source.name] = source

@@ -10,6 +10,8 @@ matching, claiming outbox rows -- lives behind this small interface, one class p
 
 from __future__ import annotations
 
+import sqlite3
+import sys
 from abc import ABC, abstractmethod
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import AbstractContextManager
@@ -133,3 +135,25 @@ def literal_prefix(pattern: str) -> str:
         if c in "*?[":
             return pattern[:i]
     return pattern
+
+
+_SQLITE_REFUSED = (
+    sqlite3.IntegrityError,
+    sqlite3.DataError,
+    sqlite3.ProgrammingError,
+    sqlite3.InterfaceError,
+)
+
+
+def database_failed(exc: BaseException) -> bool:
+    """True when the database itself failed (I/O, disk full, locked, damaged, the server
+    gone), False for a row it refused (a broken constraint, a value it cannot hold) and for
+    anything else. psycopg is looked at only once something has imported it."""
+    if isinstance(exc, _SQLITE_REFUSED):
+        return False
+    if isinstance(exc, sqlite3.Error | OSError | MemoryError):
+        return True
+    psycopg = sys.modules.get("psycopg")
+    if psycopg is not None and isinstance(exc, psycopg.Error):
+        return not isinstance(exc, psycopg.IntegrityError | psycopg.DataError)
+    return False

@@ -11,7 +11,7 @@ from typing import Any
 
 import sqlite_utils
 
-from limitwatch.store.connection import Connection, Cursor, Params
+from limitwatch.store.connection import _SQLITE_REFUSED, Connection, Cursor, Params
 from limitwatch.store.schema import _immediate, _recorded_version
 
 
@@ -19,12 +19,7 @@ class SqliteConnection(Connection):
     """A :class:`sqlite_utils.Database` in autocommit mode, as the store opens it."""
 
     dialect = "sqlite"
-    refused_row = (
-        sqlite3.IntegrityError,
-        sqlite3.DataError,
-        sqlite3.ProgrammingError,
-        sqlite3.InterfaceError,
-    )
+    refused_row = _SQLITE_REFUSED
     integrity = (sqlite3.IntegrityError,)
     busy = (sqlite3.OperationalError,)
 
