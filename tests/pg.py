@@ -118,8 +118,20 @@ def start_cluster() -> Cluster:
     prefix, user = _as_postgres(folder)
     data = folder / "data"
     subprocess.run(
-        [*prefix, str(binaries / "initdb"), "-D", str(data), "-U", user, "-A", "trust",
-         "-E", "UTF8", "--locale=C", "--no-sync"],
+        [
+            *prefix,
+            str(binaries / "initdb"),
+            "-D",
+            str(data),
+            "-U",
+            user,
+            "-A",
+            "trust",
+            "-E",
+            "UTF8",
+            "--locale=C",
+            "--no-sync",
+        ],
         check=True,
         capture_output=True,
     )
@@ -128,10 +140,26 @@ def start_cluster() -> Cluster:
         port = _free_port()
         log = open(folder / "postgres.log", "ab")  # noqa: SIM115 (kept open for the server's life)
         process = subprocess.Popen(
-            [*prefix, str(binaries / "postgres"), "-D", str(data), "-p", str(port),
-             "-h", "127.0.0.1", "-k", str(folder), "-c", "fsync=off",
-             "-c", "synchronous_commit=off", "-c", "full_page_writes=off",
-             "-c", "max_connections=200"],
+            [
+                *prefix,
+                str(binaries / "postgres"),
+                "-D",
+                str(data),
+                "-p",
+                str(port),
+                "-h",
+                "127.0.0.1",
+                "-k",
+                str(folder),
+                "-c",
+                "fsync=off",
+                "-c",
+                "synchronous_commit=off",
+                "-c",
+                "full_page_writes=off",
+                "-c",
+                "max_connections=200",
+            ],
             stdout=log,
             stderr=subprocess.STDOUT,
         )

@@ -100,9 +100,7 @@ class Connection(ABC):
         """A value for a binary column."""
         return value
 
-    def claim_outbox(
-        self, now: float, *, by: str, lease_s: float, limit: int
-    ) -> list[int] | None:
+    def claim_outbox(self, now: float, *, by: str, lease_s: float, limit: int) -> list[int] | None:
         """Claim up to ``limit`` due outbox rows for ``by`` for ``lease_s`` seconds and return
         their ids, or None when this backend has one sender per database and no claims."""
         return None

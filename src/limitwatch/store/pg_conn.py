@@ -98,9 +98,11 @@ class PgConnection(Connection):
         options = "-c default_transaction_read_only=on" if read_only else ""
         try:
             conn = psycopg.connect(
-                url, autocommit=True, options=options, connect_timeout=10, application_name=(
-                    "limitwatch (read-only)" if read_only else "limitwatch"
-                )
+                url,
+                autocommit=True,
+                options=options,
+                connect_timeout=10,
+                application_name=("limitwatch (read-only)" if read_only else "limitwatch"),
             )
         except psycopg.OperationalError as exc:
             words = " ".join(str(exc).split())
@@ -172,9 +174,7 @@ class PgConnection(Connection):
     def blob(self, value: bytes | str | None) -> bytes | str | None:
         return value.encode() if isinstance(value, str) else value
 
-    def claim_outbox(
-        self, now: float, *, by: str, lease_s: float, limit: int
-    ) -> list[int] | None:
+    def claim_outbox(self, now: float, *, by: str, lease_s: float, limit: int) -> list[int] | None:
         with self.transaction():
             rows = self.execute(
                 """WITH due AS (
