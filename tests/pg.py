@@ -134,6 +134,7 @@ def start_cluster() -> Cluster:
         ],
         check=True,
         capture_output=True,
+        cwd=folder,  # the server user may not be allowed into the caller's folder
     )
     last_error = ""
     for _ in range(5):
@@ -162,6 +163,7 @@ def start_cluster() -> Cluster:
             ],
             stdout=log,
             stderr=subprocess.STDOUT,
+            cwd=folder,
         )
         log.close()
         cluster = Cluster(folder, port, process, user)
