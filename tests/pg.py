@@ -28,8 +28,19 @@ from pathlib import Path
 
 import pytest
 
-PG_BIN = Path(os.environ.get("LIMITWATCH_PG_BIN", "/usr/lib/postgresql/15/bin"))
 TEMPLATE = "limitwatch_template"
+
+
+def _newest_debian_bin() -> Path:
+    """Debian keeps each major version's server in /usr/lib/postgresql/<major>/bin."""
+    found = sorted(
+        Path("/usr/lib/postgresql").glob("*/bin/initdb"),
+        key=lambda p: int(p.parent.parent.name) if p.parent.parent.name.isdigit() else 0,
+    )
+    return found[-1].parent if found else Path("/usr/lib/postgresql/15/bin")
+
+
+PG_BIN = Path(os.environ.get("LIMITWATCH_PG_BIN") or _newest_debian_bin())
 
 
 def pg_binaries() -> Path | None:

@@ -29,7 +29,6 @@ The contract with the rows (written by :class:`limitwatch.alerts.lifecycle.Alert
   gets ``next_attempt_at`` = :data:`PARKED_AT` and a ``last_error`` starting ``"gave up: "``.
 
 >>> import random
-import socket
 >>> delays = [backoff_delay(n, random.Random(1)) for n in (0, 3, 20)]
 >>> 0 <= delays[0] <= 5.0, 0 <= delays[1] <= 40.0, 0 <= delays[2] <= 900.0
 (True, True, True)
