@@ -157,6 +157,9 @@ class PgConnection(Connection):
         self.execute("SELECT pg_notify(?, ?)", (CHANNEL, str(row[0])))
 
     def lock_numbering(self) -> None:
+        # The change counter first, as every batch takes it: locks always in the same order,
+        # so an acknowledgement waiting for one batch cannot deadlock with another.
+        self.data_version()
         self.execute("SELECT pg_advisory_xact_lock(?)", (_NUMBERING_LOCK,))
 
     def next_alert_id(self) -> int:
