@@ -31,6 +31,7 @@ acknowledged or shelved what, when and why.
 
 from __future__ import annotations
 
+import contextlib
 import getpass
 import glob
 import json
@@ -58,6 +59,7 @@ from limitwatch.durations import DurationError, parse_duration, short_duration
 from limitwatch.ingest.csvfile import InputFileError, read_rows
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.store import (
+    SchemaTooOld,
     Store,
     StoreError,
     StoreLocation,
@@ -314,6 +316,10 @@ def _open(target: Target, *, write: bool, now: float) -> Store:
     path = target.path
     if path is None:  # PostgreSQL: the server says whether the database is there
         if write:
+            # As for a file: a command never makes a limitwatch database out of a wrong one.
+            # An older schema is fine: opening to write upgrades it, as the service would.
+            with contextlib.suppress(SchemaTooOld):
+                open_store_read_only(target.location).close()
             return open_store(target.location, now=now)
         return open_store_read_only(target.location)
     if not path.exists():
