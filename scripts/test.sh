@@ -48,6 +48,23 @@ else
     step "mosquitto is installed"
 fi
 
+# The PostgreSQL store tests initdb a throwaway cluster (tests/pg.py) with Debian's server
+# binaries; the service never needs them unless a store URL names PostgreSQL.
+if [ -n "${LIMITWATCH_PG_BIN:-}" ]; then PG_INITDB="$LIMITWATCH_PG_BIN/initdb"
+else PG_INITDB="$(ls -d /usr/lib/postgresql/*/bin/initdb 2>/dev/null | sort -V | tail -n 1)"; fi
+if [ ! -x "${PG_INITDB:-/nonexistent}" ]; then
+    if [ "$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then
+        step "installing Debian's postgresql"
+        apt-get update -qq
+        DEBIAN_FRONTEND=noninteractive apt-get install -y -qq postgresql >/dev/null
+    else
+        echo "note: PostgreSQL is not installed (no initdb); its store tests will be skipped" >&2
+        echo "      (Debian/Ubuntu: sudo apt-get install postgresql)" >&2
+    fi
+else
+    step "postgresql is installed"
+fi
+
 step "ruff check"
 .venv/bin/ruff check src tests
 step "mypy over src/"

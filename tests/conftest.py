@@ -53,13 +53,51 @@ for _kind in (Reading, Signal):
 
 
 @pytest.fixture
-def fresh_db(tmp_path: Path) -> Iterator[Store]:
-    """A :class:`~limitwatch.store.Store` on a new file at ``tmp_path / "limitwatch.db"``."""
-    store = Store.open(tmp_path / "limitwatch.db", now=0.0)
+def fresh_db(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Store]:
+    """A :class:`~limitwatch.store.Store` on a new file at ``tmp_path / "limitwatch.db"``; in a
+    module that sets ``BOTH_BACKENDS = True`` also (as a second run of each test) on a new
+    database of a throwaway PostgreSQL cluster (``tests/pg.py``)."""
+    if getattr(request, "param", "sqlite") == "postgresql":
+        store = Store.open_postgresql(request.getfixturevalue("pg_url"), now=0.0)
+    else:
+        store = Store.open(tmp_path / "limitwatch.db", now=0.0)
     try:
         yield store
     finally:
         store.close()
+
+
+# -- a real PostgreSQL from Debian's packages ------------------------------------------------------
+
+from tests.pg import Cluster, start_cluster  # noqa: E402
+
+
+@pytest.fixture(scope="session")
+def pg_cluster() -> Iterator[Cluster]:
+    """One throwaway PostgreSQL cluster for the session (initdb in a temporary folder, a free
+    127.0.0.1 port), removed at the end. Skips without PostgreSQL, fails under ``CI=true``."""
+    cluster = start_cluster()
+    try:
+        yield cluster
+    finally:
+        cluster.stop()
+
+
+@pytest.fixture
+def pg_url(pg_cluster: Cluster) -> str:
+    """The URL of a new database holding limitwatch's schema, for this test alone."""
+    return pg_cluster.new_database()
+
+
+def pytest_generate_tests(metafunc: pytest.Metafunc) -> None:
+    """Run a store test on both backends where its module asks for it (``BOTH_BACKENDS``)."""
+    if "fresh_db" not in metafunc.fixturenames:
+        return
+    if not getattr(metafunc.module, "BOTH_BACKENDS", False):
+        return
+    if metafunc.definition.get_closest_marker("sqlite_only") is not None:
+        return
+    metafunc.parametrize("fresh_db", ["sqlite", "postgresql"], indirect=True)
 
 
 # -- a real Mosquitto broker on loopback -------------------------------------------------------
@@ -82,7 +120,7 @@ def broker(tmp_path: Path) -> Iterator[Broker]:
 
 # -- the integration marker, put on by what a test uses ---------------------------------------
 
-INTEGRATION_FIXTURES = {"broker", "kafka_broker"}
+INTEGRATION_FIXTURES = {"broker", "kafka_broker", "pg_cluster", "pg_url"}
 """Fixtures that start a process or a server: every test that uses one is an integration test."""
 
 INTEGRATION_MODULES = (
@@ -163,6 +201,10 @@ def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
         if not isinstance(item, pytest.Function):
             continue
         if INTEGRATION_FIXTURES & set(item.fixturenames):
+            item.add_marker(pytest.mark.integration)
+            continue
+        callspec = getattr(item, "callspec", None)
+        if callspec is not None and callspec.params.get("fresh_db") == "postgresql":
             item.add_marker(pytest.mark.integration)
             continue
         funcs: list[object] = [item.function]

@@ -32,7 +32,7 @@ from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy, SeverityRule
 from limitwatch.model import Outcome, Reading, StreamSignal
 from limitwatch.stats.baseline import fit_baseline
-from limitwatch.store import Store
+from limitwatch.store import Store, open_store
 from tests.helpers import CLI, CliResult, cli
 
 D2 = 1.128  # Montgomery, Introduction to SQC, Appendix VI, n = 2
@@ -87,10 +87,19 @@ def fits_80(text: str) -> bool:
 
 @dataclass
 class Plant:
-    path: Path
+    path: Path | str
+    """The SQLite file, or the PostgreSQL URL, as ``--db`` takes it."""
     base: float
+    folder: Path = Path(".")
+    """Where a test writes config files (the SQLite file's folder)."""
     values: dict[str, list[float]] = field(default_factory=dict)
     alerts: dict[str, int] = field(default_factory=dict)
+
+    @property
+    def store_value(self) -> str:
+        """What a config in :attr:`folder` writes as ``store.path``: the file's name (a relative
+        path is taken from the config's folder), or the URL."""
+        return self.path.name if isinstance(self.path, Path) else self.path
 
     def time_of(self, index: int) -> float:
         return self.base + 60.0 * index
@@ -170,10 +179,10 @@ def _feed(
     return center, sigma
 
 
-def _build(path: Path) -> Plant:
-    plant = Plant(path, base=time.time() - 3 * 3600)
+def _build(path: Path | str, folder: Path) -> Plant:
+    plant = Plant(path, base=time.time() - 3 * 3600, folder=folder)
     rng = np.random.default_rng(20270105)
-    with Store.open(path, now=plant.base) as store:
+    with open_store(path, now=plant.base) as store:
         book = AlertBook(store, POLICY)
 
         # Kiln: beyond-limits three times in a row, then a trend signal on the last reading,
@@ -212,9 +221,13 @@ def _build(path: Path) -> Plant:
     return plant
 
 
-@pytest.fixture
-def plant(tmp_path: Path) -> Plant:
-    return _build(tmp_path / "plant.db")
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.integration)])
+def plant(request: pytest.FixtureRequest, tmp_path: Path) -> Plant:
+    """The plant in an SQLite file, and again in a PostgreSQL database (``--db
+    postgresql://...``): every operator command here runs against both."""
+    if request.param == "postgresql":
+        return _build(request.getfixturevalue("pg_url"), tmp_path)
+    return _build(tmp_path / "plant.db", tmp_path)
 
 
 def alert_id(plant: Plant, stream: str, rule: str) -> int:
@@ -420,7 +433,7 @@ def test_shelve_and_unshelve_round_trip(plant: Plant) -> None:
 
     # ... and a new incident on a shelved stream is recorded but its notification held.
     assert plant.cli("shelve", PRESS, "--for", "1h", "--reason", "die change").returncode == 0
-    with Store.open(plant.path) as store:
+    with open_store(plant.path) as store:
         book = AlertBook(store, POLICY)
         t = time.time()
         sig = StreamSignal(
@@ -530,12 +543,12 @@ def test_streams_reports_last_value_zone_version_and_alerts(plant: Plant) -> Non
 
 
 def test_streams_shows_expected_false_alarms_from_the_config(plant: Plant) -> None:
-    config = plant.path.parent / "site.toml"
+    config = plant.folder / "site.toml"
     config.write_text(
         "\n".join(
             [
                 "[store]",
-                f'path = "{plant.path.name}"',
+                f'path = "{plant.store_value}"',
                 "[defaults]",
                 'rules = "western-electric"',  # no cadence: unknown
                 "[[streams]]",
@@ -733,8 +746,8 @@ def test_not_a_database_and_a_foreign_database_are_refused(tmp_path: Path) -> No
 
 def test_config_file_names_the_database(plant: Plant, tmp_path: Path) -> None:
     # A relative store.path is taken from the config file's folder, wherever the command runs.
-    config = plant.path.parent / "site.toml"
-    config.write_text(f'[store]\npath = "{plant.path.name}"\n', encoding="utf-8")
+    config = plant.folder / "site.toml"
+    config.write_text(f'[store]\npath = "{plant.store_value}"\n', encoding="utf-8")
     elsewhere = tmp_path / "elsewhere"
     elsewhere.mkdir()
     result = cli("alerts", "--config", str(config), "--format", "json", cwd=elsewhere)
@@ -751,6 +764,8 @@ def test_config_file_names_the_database(plant: Plant, tmp_path: Path) -> None:
 
 
 def test_reading_commands_leave_the_file_untouched(plant: Plant) -> None:
+    if not isinstance(plant.path, Path):
+        pytest.skip("about the SQLite file's bytes; test_store_backends checks PostgreSQL's look")
     before = hashlib.sha256(plant.path.read_bytes()).hexdigest()
     number = alert_id(plant, KILN, "beyond-limits")
     for args in (["alerts"], ["streams"], ["log", str(number)]):
@@ -804,7 +819,7 @@ def test_streams_and_alerts_escape_control_characters_in_stream_ids(tmp_path: Pa
     rng = np.random.default_rng(7)
     values = [round(float(v), 2) for v in rng.normal(50.0, 1.0, 30)]
     values[28] = 80.0
-    with Store.open(plant.path, now=plant.base) as store:
+    with open_store(plant.path, now=plant.base) as store:
         _feed(plant, store, AlertBook(store, POLICY), HOSTILE, values, {28: ["beyond-limits"]})
     for command in (["streams"], ["alerts"], ["alerts", "--state", "all"]):
         result = plant.cli(*command)
@@ -873,7 +888,7 @@ def test_shelve_by_glob_lists_and_records_the_streams_and_refuses_too_long(plant
     assert forced.returncode == 0, forced.stderr
     assert "Streams covered (2):" in forced.stdout
     assert f"  {KILN}" in forced.stdout and f"  {LONG}" in forced.stdout
-    with Store.open(plant.path) as store:
+    with open_store(plant.path) as store:
         shelves = store.active_shelves(time.time())
     assert {(s.stream, s.pattern) for s in shelves} == {(KILN, "*temp*"), (LONG, "*temp*")}
     # A second shelf over the same streams replaces the first, and says which way it goes.
@@ -885,9 +900,9 @@ def test_shelve_by_glob_lists_and_records_the_streams_and_refuses_too_long(plant
     longer = plant.cli("shelve", KILN, "--for", "3h", "--reason", "not yet", "--by", "sam")
     assert "extends it" in longer.stdout
     # A config can set a different maximum.
-    config = plant.path.parent / "site.toml"
+    config = plant.folder / "site.toml"
     config.write_text(
-        f'[store]\npath = "{plant.path.name}"\n[alerts]\nmax_shelf = "1h"\n', encoding="utf-8"
+        f'[store]\npath = "{plant.store_value}"\n[alerts]\nmax_shelf = "1h"\n', encoding="utf-8"
     )
     capped = cli("shelve", OVEN, "--for", "2h", "--reason", "x", "--config", str(config))
     assert capped.returncode == 1 and "maximum of 1h" in capped.stderr
@@ -898,9 +913,9 @@ def test_shelve_by_glob_lists_and_records_the_streams_and_refuses_too_long(plant
 
 
 def test_with_a_config_the_tables_name_each_streams_unit_and_description(plant: Plant) -> None:
-    config = plant.path.parent / "site.toml"
+    config = plant.folder / "site.toml"
     config.write_text(
-        f'[store]\npath = "{plant.path.name}"\n'
+        f'[store]\npath = "{plant.store_value}"\n'
         f'[[streams]]\nmatch = "{KILN}"\ndescription = "kiln 2 crown temperature"\n'
         'unit = "degC"\n',
         encoding="utf-8",

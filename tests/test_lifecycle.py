@@ -36,6 +36,8 @@ from limitwatch.store import Alert, Shelf, Store
 from tests.helpers import examples
 
 T0 = 1_700_000_000.0
+
+BOTH_BACKENDS = True  # tests taking fresh_db run on SQLite and on PostgreSQL
 STREAM = "line-2/gearbox-temp"
 POLICY = AlertPolicy(clear_after=3, repeat_every_s=600.0, escalate_after_s=1800.0)
 

@@ -31,6 +31,8 @@ from tests.test_notifiers import payload
 
 T0 = 1_900_000_000.0
 
+BOTH_BACKENDS = True  # tests taking fresh_db run on SQLite and on PostgreSQL
+
 
 def hook(receiver: WebhookReceiver, name: str = "ops-hook", **kw: float) -> WebhookNotifier:
     return WebhookNotifier(

@@ -1,6 +1,6 @@
 """Failover on real parts: Mosquitto -> `limitwatch bridge` -> Tansu (a Kafka-protocol broker)
--> two `limitwatch serve` workers of one consumer group on one shared SQLite store, with a real
-local webhook receiver.
+-> two `limitwatch serve` workers of one consumer group on one shared store (an SQLite file, and
+a throwaway PostgreSQL cluster), with a real local webhook receiver.
 
 While a publisher sends readings, a worker joins, one leaves (SIGTERM), one is killed
 (SIGKILL), and one stalls (SIGSTOP) until the group has given its partitions to the other, then
@@ -12,6 +12,7 @@ an uninterrupted monitor, and every notification arrived, repeats only with the 
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import json
 import os
@@ -31,15 +32,7 @@ from tests.broker import Broker
 from tests.helpers import cli
 from tests.kafka_broker import KafkaBroker
 from tests.receivers import WebhookReceiver
-from tests.service_harness import (
-    CLI,
-    Publisher,
-    ServiceProcess,
-    checkpoints,
-    count,
-    query,
-    wait_until,
-)
+from tests.service_harness import CLI, Publisher, ServiceProcess, query, wait_until
 
 pytestmark = pytest.mark.integration
 
@@ -68,10 +61,38 @@ def messages() -> tuple[list[tuple[str, str]], dict[str, list[tuple[float, float
     return sent, per_stream
 
 
-def write_configs(folder: Path, mqtt_port: int, kafka: str, hook: str) -> tuple[Path, Path]:
+class StoreLook:
+    """Read-only queries on the workers' store, SQLite file or PostgreSQL URL alike."""
+
+    def __init__(self, where: Path | str) -> None:
+        self.where = where
+
+    def rows(self, sql: str, params: tuple = ()) -> list[tuple]:
+        if isinstance(self.where, Path):
+            return query(self.where, sql, params)
+        import psycopg
+
+        try:
+            with psycopg.connect(self.where, autocommit=True) as conn:
+                return list(conn.execute(sql.replace("?", "%s"), params).fetchall())
+        except psycopg.errors.UndefinedTable:
+            return []
+
+    def count(self, table: str, where: str = "1=1", params: tuple = ()) -> int:
+        found = self.rows(f"SELECT count(*) FROM {table} WHERE {where}", params)
+        return int(found[0][0]) if found else 0
+
+    def checkpoints(self) -> dict[str, dict]:
+        found = self.rows("SELECT stream, state_json FROM checkpoints")
+        return {s: json.loads(j) for s, j in found}
+
+
+def write_configs(
+    folder: Path, store: Path | str, mqtt_port: int, kafka: str, hook: str
+) -> tuple[Path, Path]:
     common = f"""
 [store]
-path = "{folder / "plant.db"}"
+path = "{store}"
 
 [service]
 # Long batches, cut by no job, so that a worker stopped at a random moment holds one.
@@ -159,26 +180,35 @@ class Worker(ServiceProcess):
         return f"{socket.gethostname()}-{self.process.pid}"
 
 
-def owners(db: Path) -> list[str | None]:
-    return [r[0] for r in query(db, "SELECT owner FROM partitions ORDER BY partition")]
+def owners(db: StoreLook) -> list[str | None]:
+    return [r[0] for r in db.rows("SELECT owner FROM partitions ORDER BY partition")]
 
 
-def owned_by(db: Path, *workers: Worker) -> bool:
+def owned_by(db: StoreLook, *workers: Worker) -> bool:
     """Every partition owned, each by one of ``workers``, and each of them owning some."""
     found = owners(db)
     members = {w.member for w in workers}
     return len(found) == 4 and set(found) == members
 
 
+@pytest.mark.parametrize("backend", ["sqlite", "postgresql"])
 def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
-    tmp_path: Path, broker: Broker, kafka_broker: KafkaBroker
+    tmp_path: Path,
+    broker: Broker,
+    kafka_broker: KafkaBroker,
+    backend: str,
+    request: pytest.FixtureRequest,
 ) -> None:
     sent, per_stream = messages()
     kafka_broker.create_topic(TOPIC, 4)
-    db = tmp_path / "plant.db"
+    store: Path | str = (
+        tmp_path / "plant.db" if backend == "sqlite" else request.getfixturevalue("pg_url")
+    )
+    db = StoreLook(store)
+    count = db.count
     with WebhookReceiver() as hook:
         worker_config, bridge_config = write_configs(
-            tmp_path, broker.port, kafka_broker.bootstrap, hook.url
+            tmp_path, store, broker.port, kafka_broker.bootstrap, hook.url
         )
         with (tmp_path / "bridge.log").open("ab") as log:
             bridge = subprocess.Popen(
@@ -196,20 +226,26 @@ def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
             sender.start()  # about 60 s of steady publishing
 
             def more(n: int) -> None:
-                seen = count(db, "readings")
+                seen = count("readings")
                 target = min(seen + n, len(sent))
-                wait_until(lambda: count(db, "readings") >= target, 60, f"{target} readings")
+                wait_until(lambda: count("readings") >= target, 60, f"{target} readings")
 
             more(20)
             b = Worker(worker_config).start()  # joins
             running.append(b)
             wait_until(lambda: owned_by(db, a, b), 60, "A and B sharing the partitions")
             assert a.process is not None
+            everything = "the group assigns partitions [0, 1, 2, 3]"
             for _ in range(3):  # stalls, until a stall catches A with a batch in hand
                 more(20)
+                given = b.logs().count(everything)
                 os.kill(a.process.pid, signal.SIGSTOP)
                 try:
-                    wait_until(lambda: owned_by(db, b), 60, "B taking A's partitions")
+                    # The group gives B everything; B takes it in the store at once, unless A
+                    # stopped mid-commit and holds the store (then only after A goes on).
+                    wait_until(lambda g=given: b.logs().count(everything) > g, 60, "A put out")
+                    with contextlib.suppress(TimeoutError):
+                        wait_until(lambda: owned_by(db, b), 3, "B owning everything")
                 finally:
                     os.kill(a.process.pid, signal.SIGCONT)
                 wait_until(lambda: owned_by(db, a, b), 60, "A back in the group")
@@ -230,10 +266,8 @@ def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
             wait_until(lambda: owned_by(db, a2, b2), 60, "A2 and B2 sharing")
             sender.join()
             publisher.close()
-            wait_until(lambda: count(db, "readings") == len(sent), 90, "every reading")
-            wait_until(
-                lambda: count(db, "outbox", "delivered_at IS NULL") == 0, 60, "outbox drained"
-            )
+            wait_until(lambda: count("readings") == len(sent), 90, "every reading")
+            wait_until(lambda: count("outbox", "delivered_at IS NULL") == 0, 60, "outbox drained")
             for worker in (a2, b2):
                 assert worker.stop() == 0
         finally:
@@ -244,14 +278,14 @@ def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
             bridge.wait(30)
 
     # Exactly once, in order: every (stream, time) once, numbered 0.. in time order.
-    assert count(db, "readings") == len(sent)
+    assert count("readings") == len(sent)
     for stream in STREAMS:
-        rows = query(
-            db, "SELECT idx, time, value FROM readings WHERE stream = ? ORDER BY idx", (stream,)
+        rows = db.rows(
+            "SELECT idx, time, value FROM readings WHERE stream = ? ORDER BY idx", (stream,)
         )
         assert [(t, v) for _, t, v in rows] == per_stream[stream], stream
         assert [i for i, _, _ in rows] == list(range(PER_STREAM)), stream
-    assert count(db, "dead_letters") == 0
+    assert count("dead_letters") == 0
 
     # The same signals as one process replaying the same readings, and the same final state.
     table = tmp_path / "readings.csv"
@@ -270,8 +304,8 @@ def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
     )
     stored = sorted(
         (stream, idx, rule)
-        for stream, idx, signals in query(
-            db, "SELECT stream, idx, signals FROM readings WHERE signals != ''"
+        for stream, idx, signals in db.rows(
+            "SELECT stream, idx, signals FROM readings WHERE signals != ''"
         )
         for rule in signals.split()
     )
@@ -281,14 +315,14 @@ def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
         monitor = StreamMonitor(stream, settings.stream_settings(stream).monitor_settings())
         for t, v in per_stream[stream]:
             monitor.update(Reading(stream, t, v))
-        assert checkpoints(db)[stream] == json.loads(json.dumps(monitor.snapshot())), stream
-    incidents = {s for (s,) in query(db, "SELECT DISTINCT stream FROM alerts")}
+        assert db.checkpoints()[stream] == json.loads(json.dumps(monitor.snapshot())), stream
+    incidents = {s for (s,) in db.rows("SELECT DISTINCT stream FROM alerts")}
     assert incidents == {s for s, _, _ in expected}
 
     # Every notification arrived; a repeat carries the same event id and body.
     accepted = hook.accepted()
     ids = [r.headers["X-Limitwatch-Event"] for r in accepted]
-    keys = {k.rsplit(":", 1)[0] for (k,) in query(db, "SELECT idempotency_key FROM outbox")}
+    keys = {k.rsplit(":", 1)[0] for (k,) in db.rows("SELECT idempotency_key FROM outbox")}
     assert ids and set(ids) == keys
     bodies: dict[str, bytes] = {}
     for r in accepted:

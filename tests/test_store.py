@@ -13,6 +13,7 @@ import math
 import sqlite3
 import struct
 from pathlib import Path
+from typing import Any
 
 import pytest
 import sqlite_utils
@@ -40,6 +41,10 @@ from limitwatch.store import (
 )
 
 T0 = 1_700_000_000.0
+
+BOTH_BACKENDS = True
+"""Every test here that takes ``fresh_db`` runs on SQLite and on PostgreSQL, except those
+marked ``sqlite_only`` (about the file, its pragmas and its migrations)."""
 
 
 def commit_batch(
@@ -93,18 +98,29 @@ def signal(
     )
 
 
-def raw(store: Store) -> sqlite3.Connection:
-    """A second connection to the same file: it sees committed data only."""
+def raw(store: Store) -> Any:
+    """A second connection to the same database: it sees committed data only."""
+    if store.backend == "postgresql":
+        import psycopg
+
+        return psycopg.connect(store.path, autocommit=True)
     return sqlite3.connect(store.path)
 
 
-def count(conn: sqlite3.Connection, table: str) -> int:
+def as_text(payload: bytes | str | None) -> str | None:
+    """A dead letter's payload as text: SQLite gives back text stored as text, PostgreSQL
+    keeps every payload as bytes (``bytea``)."""
+    return payload.decode() if isinstance(payload, bytes) else payload
+
+
+def count(conn: Any, table: str) -> int:
     return conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
 
 
 # --------------------------------------------------------------------------- opening
 
 
+@pytest.mark.sqlite_only
 def test_open_sets_wal_synchronous_normal_busy_timeout_and_foreign_keys(fresh_db: Store):
     conn = fresh_db.db.conn
     assert fresh_db.journal_mode == "wal"
@@ -126,6 +142,7 @@ def test_open_creates_missing_parent_directories(tmp_path: Path):
         assert store.schema_version() == MIGRATIONS[-1].version
 
 
+@pytest.mark.sqlite_only
 def test_every_table_and_the_outbox_columns_exist(fresh_db: Store):
     tables = set(fresh_db.db.table_names())
     assert {
@@ -280,7 +297,7 @@ def test_a_failure_mid_batch_leaves_nothing_written(fresh_db: Store):
     other = raw(fresh_db)
     for table in ("readings", "streams", "checkpoints"):
         assert count(other, table) == 0, table
-    assert not fresh_db.db.conn.in_transaction
+    assert not fresh_db.sql.in_transaction
 
 
 def test_an_outer_transaction_rolls_back_the_batch_and_the_alerts_together(fresh_db: Store):
@@ -293,6 +310,7 @@ def test_an_outer_transaction_rolls_back_the_batch_and_the_alerts_together(fresh
         assert count(other, table) == 0, table
 
 
+@pytest.mark.sqlite_only
 def test_a_transaction_takes_the_write_lock_at_begin_and_readers_still_read(fresh_db: Store):
     fresh_db.add_dead_letter("test", "x", "seed", now=T0)
     other = sqlite3.connect(fresh_db.path, timeout=0, isolation_level=None)
@@ -315,7 +333,7 @@ def test_a_nested_block_that_fails_rolls_back_only_itself(fresh_db: Store):
         with pytest.raises(ValueError), fresh_db.transaction():
             fresh_db.add_dead_letter("test", "dropped", "inner", now=T0)
             raise ValueError("inner step failed")
-    assert [d.payload for d in fresh_db.dead_letters()] == ["kept"]
+    assert [as_text(d.payload) for d in fresh_db.dead_letters()] == ["kept"]
 
 
 # --------------------------------------------------------------------------- readings
@@ -447,7 +465,7 @@ def test_dead_letters_keep_the_raw_payload(fresh_db: Store):
     fresh_db.add_dead_letter("mqtt:plant/line-1", b"\xff\x00temp", "not UTF-8", now=T0)
     fresh_db.add_dead_letter("file:/exports/a.csv", "12;;", "no value column", now=T0 + 1)
     newest, oldest = fresh_db.dead_letters()
-    assert (newest.payload, newest.reason) == ("12;;", "no value column")
+    assert (as_text(newest.payload), newest.reason) == ("12;;", "no value column")
     assert (oldest.payload, oldest.source) == (b"\xff\x00temp", "mqtt:plant/line-1")
 
 
@@ -465,7 +483,7 @@ def test_a_10_mb_dead_letter_keeps_a_bounded_prefix_with_its_size_and_hash(fresh
     assert cut_text.payload == text.encode()[:DEAD_LETTER_KEEP_BYTES]
     assert cut_text.payload_size == 6000 and cut_text.truncated
     assert cut_text.payload_sha256 == hashlib.sha256(text.encode()).hexdigest()
-    assert (short.payload, short.payload_size, short.truncated) == ("12;;", 4, False)
+    assert (as_text(short.payload), short.payload_size, short.truncated) == ("12;;", 4, False)
     # what the file holds, read by another connection
     stored = raw(fresh_db).execute("SELECT max(length(payload)) FROM dead_letters").fetchone()[0]
     assert stored <= DEAD_LETTER_KEEP_BYTES
@@ -534,10 +552,10 @@ def test_only_one_live_incident_per_stream(fresh_db: Store):
     with pytest.raises(AlertAlreadyOpen, match=f"already has live incident {alert.id}"):
         fresh_db.open_alert(signal(rule="trend"), severity="warning", now=T0)
     # The database enforces it too, whoever writes.
-    with pytest.raises(sqlite3.IntegrityError):
-        fresh_db.db.execute(
-            """INSERT INTO alerts (stream, rule, state, severity, opened_at, first_time,
-                last_time, seen_time) VALUES ('line-1/temp', 'trend', 'acknowledged',
+    with pytest.raises(fresh_db.sql.integrity, match=r"(?i)unique"):
+        fresh_db.sql.execute(
+            """INSERT INTO alerts (id, stream, rule, state, severity, opened_at, first_time,
+                last_time, seen_time) VALUES (999, 'line-1/temp', 'trend', 'acknowledged',
                 'warning', 0, 0, 0, 0)"""
         )
     fresh_db.open_alert(signal("line-2/temp"), severity="warning", now=T0)
@@ -573,10 +591,10 @@ def test_acknowledge_then_again_then_after_clearing(fresh_db: Store):
 
 def test_alert_events_are_append_only(fresh_db: Store):
     alert = fresh_db.open_alert(signal(), severity="warning", now=T0)
-    with pytest.raises(sqlite3.DatabaseError, match="append-only"):
-        fresh_db.db.execute("UPDATE alert_events SET actor = 'someone else'")
-    with pytest.raises(sqlite3.DatabaseError, match="append-only"):
-        fresh_db.db.execute("DELETE FROM alert_events")
+    with pytest.raises(Exception, match="append-only"):
+        fresh_db.sql.execute("UPDATE alert_events SET actor = 'someone else'")
+    with pytest.raises(Exception, match="append-only"):
+        fresh_db.sql.execute("DELETE FROM alert_events")
     assert len(fresh_db.alert_events(alert.id)) == 1
     with pytest.raises(AlertNotFound):
         fresh_db.add_alert_event(999, "notified", now=T0)

@@ -14,7 +14,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from fnmatch import fnmatchcase
 from functools import partial
-from pathlib import Path
 
 from limitwatch.config import (
     Config,
@@ -198,10 +197,23 @@ def _matched(config: Config, known: Sequence[str]) -> dict[int, int]:
     return counts
 
 
+def _server_streams(url: str) -> list[str]:
+    """Stream ids in a PostgreSQL store, read-only; none when it cannot be read."""
+    from limitwatch.store import StoreError, open_store_read_only
+
+    try:
+        with open_store_read_only(url) as store:
+            return [s.id for s in store.streams()]
+    except (StoreError, OSError):
+        return []
+
+
 def known_streams(config: Config) -> list[str]:
     """Stream ids in the database the config names, read-only; none when there is no such
     database yet (or it cannot be read: the count then falls back to one per entry)."""
-    path = Path(config.store.path)
+    path = config.store.file
+    if path is None:
+        return _server_streams(str(config.store.location))
     if not path.is_file():
         return []
     try:

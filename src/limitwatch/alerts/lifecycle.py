@@ -240,6 +240,9 @@ class AlertBook:
     def tick(self, now: float) -> BookReport:
         """Queue the reminders, escalations and announcements due at ``now``."""
         with self.store.transaction():
+            # Before reading: on a shared (PostgreSQL) store an acknowledgement now waits for
+            # this transaction, so what is written back below cannot undo one.
+            self.store.data_version()
             live = {a.stream: a for a in self.store.live_alerts()}
             decision = decide_tick(
                 live,

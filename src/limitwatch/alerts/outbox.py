@@ -48,6 +48,7 @@ import fcntl
 import logging
 import os
 import random
+import socket
 import threading
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -59,7 +60,7 @@ from limitwatch.alerts.delivery_watch import DeliveryWatch
 from limitwatch.alerts.messages import iso_time
 from limitwatch.alerts.notifiers.base import DeliveryError, Notifier
 from limitwatch.alerts.notifiers.registry import build_notifier
-from limitwatch.store import Notification, Store
+from limitwatch.store import Notification, Store, open_store, parse_location
 
 log = logging.getLogger(__name__)
 
@@ -128,8 +129,11 @@ class DeliveryReport:
 class OutboxWorker:
     """Delivers due outbox rows to notifiers, in a background thread or one pass at a time.
 
-    ``store`` is a database path or a callable returning a new :class:`Store`; the worker opens
-    one connection per thread that uses it (SQLite connections are bound to their thread).
+    ``store`` is a database path or store URL, or a callable returning a new :class:`Store`; the
+    worker opens one connection per thread that uses it (SQLite connections are bound to their
+    thread). On PostgreSQL several services' workers share the outbox: each pass claims its rows
+    for ``lease_s`` seconds (longer than a pass takes), so no row is sent by two at once and the
+    rows of a worker that died are sent by another once their lease runs out.
     ``clock`` gives the time for the background loop only; :meth:`deliver_due` takes ``now``.
     ``rng`` draws the jitter (pass a seeded ``random.Random`` in tests).
 
@@ -151,15 +155,19 @@ class OutboxWorker:
         batch_size: int = 100,
         poll_interval_s: float = 1.0,
         watch: DeliveryWatch | None = None,
+        lease_s: float = 600.0,
         shared: bool = False,
     ) -> None:
-        """``shared``: several services deliver from one database file (Kafka group workers);
+        """``shared``: several services deliver from one SQLite file (Kafka group workers);
         each pass then runs only while it holds ``<database>.outbox.lock``, so two of them
-        never send the same row at once (a row is marked delivered before the lock goes)."""
-        self._open = store if callable(store) else (lambda: Store.open(store))
-        self._pass_file = (
-            Path(f"{store}.outbox.lock") if shared and not callable(store) else None
-        )
+        never send the same row at once (a row is marked delivered before the lock goes). On
+        PostgreSQL the rows' leases do that."""
+        self._open = store if callable(store) else (lambda: open_store(store))
+        self.claimant = f"{socket.gethostname()}:{os.getpid()}:{id(self):x}"
+        """Who this worker is in an outbox row's lease (PostgreSQL, where services share it)."""
+        self.lease_s = lease_s
+        file = None if callable(store) else parse_location(str(store)).path
+        self._pass_file = Path(f"{file}.outbox.lock") if shared and file is not None else None
         self.notifiers = dict(notifiers)
         self.routes = {name: tuple(targets) for name, targets in (routes or {}).items()}
         _check_routes(self.notifiers, self.routes)
@@ -192,7 +200,7 @@ class OutboxWorker:
         for raw in config.notifiers:
             notifier = build_notifier(raw)
             notifiers[notifier.name] = notifier
-        return cls(config.store.path, notifiers, **kwargs)
+        return cls(config.store.location, notifiers, **kwargs)
 
     # ---- one pass
 
@@ -204,7 +212,9 @@ class OutboxWorker:
             store = self._store()
             report = DeliveryReport()
             self._give_up_expired(store, now, report)
-            rows = store.due_notifications(now, limit=self.batch_size)
+            rows = store.claim_notifications(
+                now, by=self.claimant, lease_s=self.lease_s, limit=self.batch_size
+            )
             report.picked, report.full = len(rows), len(rows) == self.batch_size
             failed: dict[str, str] = {}  # notifier -> its retryable failure in this pass
             for row in rows:
@@ -216,7 +226,7 @@ class OutboxWorker:
                 if r.result != "handed-on":
                     name = r.notifier or r.route
                     self.watch.record(name, r.result, now, r.message, attempted=r.attempted)
-            self.watch.observe_queue(_waiting(store))
+            self.watch.observe_queue(store.waiting_by_route(PARKED_AT))
             return report
 
     run_once = deliver_due
@@ -313,28 +323,14 @@ class OutboxWorker:
         return RowResult(row.id, row.route, "gave-up", notifier, reason, PARKED_AT)
 
     def _give_up_expired(self, store: Store, now: float, report: DeliveryReport) -> None:
-        """Record why rows that expired while waiting (e.g. the service was down) end here.
-
-        The store offers no query for these yet, so this reads and updates the outbox table
-        directly; it changes only ``last_error`` and ``next_attempt_at`` (no attempt was made).
-        """
-        rows = store.db.execute(
-            """SELECT id, route, attempts, last_error, expires_at FROM outbox
-            WHERE delivered_at IS NULL AND next_attempt_at < ? AND expires_at IS NOT NULL
-                AND expires_at <= ?
-            ORDER BY id LIMIT ?""",
-            (PARKED_AT, now, self.batch_size),
-        ).fetchall()
-        for row_id, route, attempts, last_error, expires_at in rows:
-            reason = f"expired at {iso_time(expires_at)} after {attempts} attempt(s)" + (
-                f"; last error: {last_error}" if last_error else ""
+        """Record why rows that expired while waiting (e.g. the service was down) end here; only
+        ``last_error`` and ``next_attempt_at`` change (no attempt was made)."""
+        for row in store.expired_waiting(now, parked_at=PARKED_AT, limit=self.batch_size):
+            row_id, route = row.id, row.route
+            reason = f"expired at {iso_time(row.expires_at)} after {row.attempts} attempt(s)" + (
+                f"; last error: {row.last_error}" if row.last_error else ""
             )
-            with store.transaction():
-                store.db.execute(
-                    """UPDATE outbox SET last_error = ?, next_attempt_at = ?
-                    WHERE id = ? AND delivered_at IS NULL""",
-                    (GAVE_UP + reason, PARKED_AT, row_id),
-                )
+            store.park_notification(row_id, GAVE_UP + reason, PARKED_AT)
             log.warning("outbox row %s (%s) given up: %s", row_id, route, reason)
             report.rows.append(
                 RowResult(row_id, route, "gave-up", None, reason, PARKED_AT, attempted=False)
@@ -425,16 +421,6 @@ def _pass_held(path: Path | None) -> Iterator[bool]:
         yield True
     finally:
         os.close(fd)
-
-
-def _waiting(store: Store) -> dict[str, tuple[int, float | None]]:
-    """Route -> (rows still to deliver, the oldest one's queue time); given-up rows excluded."""
-    rows = store.db.execute(
-        """SELECT route, count(*), min(created_at) FROM outbox
-        WHERE delivered_at IS NULL AND next_attempt_at < ? GROUP BY route""",
-        (PARKED_AT,),
-    ).fetchall()
-    return {route: (int(n), oldest) for route, n, oldest in rows}
 
 
 def _event_id(row: Notification) -> str:

@@ -131,7 +131,7 @@ def summary(config: Config, *, secrets_checked: bool = True) -> list[str]:
     section(
         "store",
         [
-            f"{store.path}",
+            f"{store.location}" + (" (shared by every service using it)" if store.shared else ""),
             f"state checkpointed every 30 s and at stop; readings kept {kept}",
         ],
     )

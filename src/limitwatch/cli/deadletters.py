@@ -78,13 +78,11 @@ def find_dead_letters(
         where.append("received_at >= ?")
         params.append(since)
     clause = " AND ".join(where)
-    cursor = store.db.execute(
+    rows = store.sql.query(
         f"SELECT * FROM dead_letters WHERE {clause} ORDER BY id DESC LIMIT ?", [*params, last]
     )
-    names = [c[0] for c in cursor.description]
-    rows = [dict(zip(names, r, strict=True)) for r in cursor.fetchall()]
     counts: Counter[tuple[str, str]] = Counter()
-    for src, stored, n in store.db.execute(
+    for src, stored, n in store.sql.execute(
         f"SELECT source, reason, count(*) FROM dead_letters WHERE {clause} GROUP BY 1, 2",
         params,
     ):

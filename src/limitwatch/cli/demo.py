@@ -156,7 +156,8 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
     worker = threading.Thread(target=work, name="demo-worker", daemon=True)
     worker.start()
     ready.wait(timeout=30)
-    store_path = config.store.path
+    store_path = config.store.file
+    assert store_path is not None  # the demo's own config names an SQLite file
 
     def alive() -> bool:
         if failure or not worker.is_alive():

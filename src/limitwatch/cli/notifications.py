@@ -136,9 +136,7 @@ def notifications_cmd(
     now = clock()
     with opened(db_path, config_file, now=now) as store:
         where, params = ("WHERE route = ?", (notifier,)) if notifier else ("", ())
-        cursor = store.db.execute(f"SELECT * FROM outbox {where} ORDER BY id DESC", params)
-        names = [c[0] for c in cursor.description]
-        rows = [dict(zip(names, r, strict=True)) for r in cursor.fetchall()]
+        rows = store.sql.query(f"SELECT * FROM outbox {where} ORDER BY id DESC", params)
     summary = summarise(rows, now)
     chosen = [r for r in rows if state == "all" or row_state(r) == state][:last]
     if fmt == "json":

@@ -7,11 +7,14 @@ lives here, and a change to how the database is found or opened is made once.
 
 Conventions:
 
-* The database is ``--db PATH``, else ``store.path`` of ``--config FILE``, else the environment
-  variable ``LIMITWATCH_DB``, else ``./limitwatch.db``. A missing file is an error: a typo must
-  never create an empty database that then shows "no alerts".
-* Commands that only read open the file read-only (SQLite ``mode=ro``), so a look at the alerts
-  cannot change anything the service depends on, nor upgrade its schema behind its back.
+* The database is ``--db PATH|URL``, else ``store.path`` (a path or URL) of ``--config FILE``,
+  else the environment variable ``LIMITWATCH_DB``, else ``./limitwatch.db``. A URL names a
+  PostgreSQL database (``postgresql://user@host:port/db``) or an SQLite file (``sqlite:///path``).
+  A missing file is an error: a typo must never create an empty database that then shows "no
+  alerts".
+* Commands that only read open the database read-only (SQLite ``mode=ro``, a PostgreSQL session
+  with ``default_transaction_read_only``), so a look at the alerts cannot change anything the
+  service depends on, nor upgrade its schema behind its back.
 * "Now" is read once per command, here at the edge (:func:`clock`), and passed to the store.
 * Problems the operator can fix exit with status 1 and one line starting ``Error:``; option
   mistakes exit with status 2 (click's convention).
@@ -28,6 +31,7 @@ acknowledged or shelved what, when and why.
 
 from __future__ import annotations
 
+import contextlib
 import getpass
 import glob
 import json
@@ -35,6 +39,7 @@ import math
 import os
 import re
 import sqlite3
+import sys
 import textwrap
 import time
 from collections.abc import Callable, Iterator, Sequence
@@ -54,11 +59,17 @@ from limitwatch.durations import DurationError, parse_duration, short_duration
 from limitwatch.ingest.csvfile import InputFileError, read_rows
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.store import (
+    SchemaTooOld,
     Store,
     StoreError,
+    StoreLocation,
     StreamRow,
+    open_store,
+    open_store_read_only,
+    parse_location,
 )
 from limitwatch.store.base import connect_checked
+from limitwatch.store.location import redacted
 from limitwatch.textout import AUTO, num, output_width, printable, table
 
 FORMATS = click.Choice(["table", "json"])
@@ -220,10 +231,18 @@ def emit_json(data: Any) -> None:
 
 @dataclass(frozen=True, slots=True)
 class Target:
-    """The database file a command works on, and where that choice came from (for messages)."""
+    """The database a command works on, and where that choice came from (for messages)."""
 
-    path: Path
+    location: StoreLocation
     origin: str
+
+    @property
+    def path(self) -> Path | None:
+        """The SQLite file, or None for a PostgreSQL database."""
+        return self.location.path
+
+    def __str__(self) -> str:
+        return redacted(str(self.location))
 
 
 def db_options(func: Callable[..., Any]) -> Callable[..., Any]:
@@ -237,8 +256,11 @@ def db_options(func: Callable[..., Any]) -> Callable[..., Any]:
     return click.option(
         "--db",
         "db_path",
-        metavar="PATH",
-        help=f"The limitwatch database file [default: ${DB_ENV}, else ./{DEFAULT_DB}].",
+        metavar="PATH|URL",
+        help=(
+            "The limitwatch database: an SQLite file (a path or sqlite:///path) or "
+            f"postgresql://user@host:port/database [default: ${DB_ENV}, else ./{DEFAULT_DB}]."
+        ),
     )(func)
 
 
@@ -253,33 +275,53 @@ def format_option(
 
 
 def locate(db_path: str | None, config_file: str | None) -> Target:
-    """Which file to open: ``--db``, else the config's ``store.path``, else ``$LIMITWATCH_DB``,
-    else ``./limitwatch.db``."""
+    """Which database to open: ``--db``, else the config's ``store.path`` (a path or URL),
+    else ``$LIMITWATCH_DB``, else ``./limitwatch.db``."""
     if db_path is not None and config_file is not None:
         raise click.UsageError("give --db or --config, not both")
     if db_path is not None:
-        return Target(Path(db_path), "--db")
+        return Target(_parsed(db_path, "--db"), "--db")
     if config_file is not None:
-        return Target(_config_store_path(config_file), f"store.path in {config_file}")
+        return _config_store(config_file)
     env = os.environ.get(DB_ENV)
     if env:
-        return Target(Path(env), f"${DB_ENV}")
-    return Target(Path(DEFAULT_DB), "the default location")
+        return Target(_parsed(env, f"${DB_ENV}"), f"${DB_ENV}")
+    return Target(parse_location(Path(DEFAULT_DB)), "the default location")
 
 
-def _config_store_path(config_file: str) -> Path:
-    """``store.path`` of the config (relative paths are taken from the config file's folder).
-    Only the file's structure is checked: reading the alerts needs none of its secrets."""
+def _parsed(text: str, origin: str) -> StoreLocation:
     try:
-        return Path(load_config(config_file).store.path)
+        return parse_location(text)
+    except StoreError as exc:
+        raise InputProblem(f"{exc} (from {origin})") from None
+
+
+def _config_store(config_file: str) -> Target:
+    """The config's store (relative paths are taken from the config file's folder). Only the
+    file's structure is checked: reading the alerts needs none of its secrets."""
+    try:
+        store = load_config(config_file).store
     except ConfigError as exc:
         raise InputProblem(str(exc)) from None
+    origin = f"store.path in {config_file}"
+    location = store.location
+    return Target(
+        _parsed(location, origin) if isinstance(location, str) else parse_location(location), origin
+    )
 
 
 def _open(target: Target, *, write: bool, now: float) -> Store:
     """The store named by ``target``; the store checks it is a limitwatch database it can read
     (:func:`limitwatch.store.base.connect_checked`), and its errors become ``Error:`` lines."""
     path = target.path
+    if path is None:  # PostgreSQL: the server says whether the database is there
+        if write:
+            # As for a file: a command never makes a limitwatch database out of a wrong one.
+            # An older schema is fine: opening to write upgrades it, as the service would.
+            with contextlib.suppress(SchemaTooOld):
+                open_store_read_only(target.location).close()
+            return open_store(target.location, now=now)
+        return open_store_read_only(target.location)
     if not path.exists():
         raise InputProblem(
             f"no database at {path} (from {target.origin}). Check the path; the service "
@@ -316,10 +358,20 @@ def _explained(target: Target) -> Iterator[None]:
         yield
     except StoreError as exc:
         raise InputProblem(str(exc)) from None
-    except sqlite3.OperationalError as exc:
+    except _busy_errors() as exc:
+        words = " ".join(str(exc).split())
         raise InputProblem(
-            f"{target.path}: {exc}; if the service is busy writing, try again"
+            f"{target}: {words}; if the service is busy writing, try again"
         ) from None
+
+
+def _busy_errors() -> tuple[type[Exception], ...]:
+    """SQLite's operational errors, and PostgreSQL's once psycopg is loaded (an SQLite-only
+    command never loads it)."""
+    psycopg = sys.modules.get("psycopg")
+    if psycopg is None:
+        return (sqlite3.OperationalError,)
+    return (sqlite3.OperationalError, psycopg.OperationalError)
 
 
 def actor_name(by: str | None) -> str:

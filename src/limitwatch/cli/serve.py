@@ -41,6 +41,10 @@ def serve_cmd(config_path: str, log_level: str) -> None:
     to the configured notifiers. On SIGTERM the batch in hand is committed and acknowledged,
     then the service disconnects and exits 0.
 
+    One service per SQLite file: a second one on the same file exits at once. A PostgreSQL
+    store (store.path = "postgresql://...") is shared instead: several services may run on it,
+    each with its own streams, and no lock is taken.
+
     \b
     Example:
       limitwatch serve --config /etc/limitwatch/site.toml
@@ -63,12 +67,13 @@ def serve_cmd(config_path: str, log_level: str) -> None:
         raise InputProblem(f"{config_path}: {exc}") from None
     from limitwatch.service import serve
     from limitwatch.service.lock import LockError
+    from limitwatch.store import StoreError
 
     logging.getLogger("limitwatch").info(SAFETY_CAUTION)
     for warning in bare_durations_in(config_path):
         logging.getLogger("limitwatch").warning("%s: %s", config_path, warning)
     try:
         status = serve(config)
-    except LockError as exc:
+    except (LockError, StoreError) as exc:
         raise InputProblem(str(exc)) from None
     sys.exit(status)

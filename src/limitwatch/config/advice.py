@@ -107,7 +107,7 @@ def check_files(config: Config) -> list[Problem]:
         for path, file in wanted
         if not file.is_file()
     ]
-    folder = config.store.path.parent
-    if not folder.is_dir():
-        problems.append(Problem("store.path", f"the folder {folder} does not exist"))
+    file = config.store.file
+    if file is not None and not file.parent.is_dir():
+        problems.append(Problem("store.path", f"the folder {file.parent} does not exist"))
     return problems

@@ -10,16 +10,23 @@ import re
 from fnmatch import fnmatchcase
 from functools import partial
 from pathlib import Path
-from typing import Annotated, Literal, cast
+from typing import Annotated, Any, Literal, cast
+from urllib.parse import urlsplit
 
-from pydantic import AfterValidator, Field, field_validator, model_validator
+from pydantic import (
+    AfterValidator,
+    Field,
+    ValidationInfo,
+    WrapValidator,
+    field_validator,
+    model_validator,
+)
 
 from limitwatch.alerts.lifecycle import DEFAULT_NOTICES, NOTICE_KINDS, SEVERITIES, AlertPolicy
 from limitwatch.config.errors import _fail
 from limitwatch.config.value_types import (
     KNOWN_RULES,
     MAX_COUNT,
-    ConfigPath,
     Glob,
     Name,
     OffDuration,
@@ -27,22 +34,65 @@ from limitwatch.config.value_types import (
     RetentionDuration,
     Severity,
     _bounded,
+    _resolve_path,
     _Section,
 )
 
 # --------------------------------------------------------------------------- [store] [service]
 
 
-class StoreSection(_Section):
-    """``[store]``: the SQLite file and retention."""
+def _store_location(value: Any, handler: Any, info: ValidationInfo) -> Path | str:
+    """A file path as before, or a store URL: ``postgresql://`` stays a string (never a
+    password in it: that goes in PGPASSWORD or ~/.pgpass), ``sqlite:///path`` becomes the path."""
+    if isinstance(value, str) and value.lower().startswith(("postgresql://", "postgres://")):
+        try:
+            password = urlsplit(value).password
+        except ValueError as exc:
+            raise ValueError(f"{value!r} is not a usable URL ({exc})") from None
+        if password is not None:
+            raise ValueError(
+                "the URL carries a password; put it in PGPASSWORD or ~/.pgpass instead, so the "
+                "config file holds no secret"
+            )
+        return value
+    if isinstance(value, str) and "://" in value:
+        if not value.lower().startswith("sqlite:///"):
+            raise ValueError(
+                f"{value!r} is not a store URL: write a file path, sqlite:///path or "
+                "postgresql://user@host:port/database"
+            )
+        value = value[len("sqlite://") :]
+    if not isinstance(value, str | Path):
+        raise ValueError("give a file path or a store URL as text")
+    return _resolve_path(Path(value), info)
 
-    path: ConfigPath = Path("limitwatch.db")
+
+class StoreSection(_Section):
+    """``[store]``: where the store lives (an SQLite file, or a PostgreSQL URL) and retention."""
+
+    path: Annotated[Path | str, WrapValidator(_store_location)] = Path("limitwatch.db")
+    """An SQLite file (a path or ``sqlite:///path``), or ``postgresql://user@host:port/db``."""
     keep_readings_for: RetentionDuration | None = None
     keep_readings_per_stream: int | None = Field(None, ge=1, le=1_000_000_000)
     keep_dead_letters_for: PositiveDuration = 30 * 86400.0
     """Dead letters older than this are dropped by the hourly retention job."""
     keep_dead_letters: int = Field(100_000, ge=1, le=1_000_000_000)
     """At most this many dead letters are kept (the newest)."""
+
+    @property
+    def location(self) -> Path | str:
+        """What :func:`limitwatch.store.open_store` opens."""
+        return self.path
+
+    @property
+    def file(self) -> Path | None:
+        """The SQLite file, or None when the store is a PostgreSQL database."""
+        return self.path if isinstance(self.path, Path) else None
+
+    @property
+    def shared(self) -> bool:
+        """True for PostgreSQL, which several services may share (no single-instance lock)."""
+        return self.file is None
 
 
 class ServiceSection(_Section):

@@ -29,7 +29,8 @@ committed, and the caller acknowledges only after :meth:`Pipeline.process` retur
 arrival order, as before.
 
 A failure of the store itself (an I/O error, a full disk, a locked or damaged database: any
-``sqlite3.OperationalError`` or ``DatabaseError`` other than a refused row) leaves the monitors
+``sqlite3.OperationalError``, ``psycopg.OperationalError`` or another database error
+than a refused row) leaves the monitors
 ahead of the database; the pipeline then refuses to go on (:class:`PipelineBroken`) and the
 service exits, so a restart resumes from the last commit and the broker redelivers what was
 never acknowledged.

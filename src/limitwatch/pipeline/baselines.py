@@ -85,7 +85,7 @@ def record_unnumbered(
 def _time_at(store: Store, stream: str, index: int, last_time: float) -> float | None:
     """The time of the stream's reading at ``index`` (stored in this transaction already,
     with the batch's readings), for the first reading of a learned baseline."""
-    row = store.db.conn.execute(
+    row = store.sql.execute(
         "SELECT time FROM readings WHERE stream = ? AND idx = ? AND time <= ?",
         (stream, index, last_time),
     ).fetchone()

@@ -1,4 +1,4 @@
-"""One running service per database file.
+"""One running service per database file (SQLite; a PostgreSQL store is shared and takes none).
 
 Two services on one file would each evaluate the same streams from their own memory, and their
 outbox workers would deliver the same notifications twice. ``limitwatch serve`` therefore holds

@@ -42,7 +42,8 @@ from limitwatch.service.jobs import _STOP, Job
 from limitwatch.service.keeper import WorkerStreams, run_source_task
 from limitwatch.service.lock import CannotShare, InstanceLock
 from limitwatch.stats.baseline import Baseline
-from limitwatch.store import Store
+from limitwatch.store import Store, open_store, parse_location
+from limitwatch.store.location import redacted
 from limitwatch.streamcap import StreamCap
 
 log = logging.getLogger("limitwatch.service")
@@ -147,13 +148,19 @@ class Service:
                 "a source that shares its store with other workers (type = \"kafka\") must "
                 "be the service's only source; run the other sources in a service of their own"
             )
-        lock = InstanceLock(cfg.store.path)
-        # before anything is read: a second service must not even restore. Workers of one
-        # consumer group share the file (each owns its partitions, fenced in the store); a
-        # lone service and group workers still exclude each other.
-        lock.acquire(shared=partial)
-        self._lock = lock
-        self.store = Store.open(cfg.store.path, now=now)
+        where = parse_location(cfg.store.location)
+        if where.path is not None:
+            lock = InstanceLock(where.path)
+            # before anything is read: a second service must not even restore. Workers of one
+            # consumer group share the file (each owns its partitions, fenced in the store); a
+            # lone service and group workers still exclude each other.
+            lock.acquire(shared=partial)
+            self._lock = lock
+        else:
+            # Several services share one PostgreSQL database (each owning its own streams, or
+            # Kafka partitions); the store's own locks and leases keep them apart.
+            log.info("store %s is shared: no single-instance lock", redacted(str(where)))
+        self.store = open_store(where, now=now)
         self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
@@ -162,7 +169,7 @@ class Service:
             self.pipeline.restore_on_demand = True
         else:
             restored = self.pipeline.restore()
-            log.info("restored %d streams from %s", restored, cfg.store.path)
+            log.info("restored %d streams from %s", restored, self.store.path)
 
         self.outbox = OutboxWorker.from_config(cfg, clock=self.clock, shared=partial)
         self.metrics.registry.register(DeliveryCollector(self.outbox.watch, self.clock))
@@ -213,9 +220,9 @@ class Service:
         context = SourceContext(
             future_tolerance=self.config.service.future_tolerance,
             positions=self.store.file_offsets(settings.name),
-            state_file=self.config.store.path.with_name(
-                f"{self.config.store.path.name}.source-{settings.name}.json"
-            ),
+            state_file=None
+            if (file := self.config.store.file) is None
+            else file.with_name(f"{file.name}.source-{settings.name}.json"),
             keeper=WorkerStreams(self, settings.name),
         )
         source = build_source(settings, context)

@@ -1,4 +1,5 @@
-"""The one SQLite file that holds everything limitwatch must not forget.
+"""The one database that holds everything limitwatch must not forget: an SQLite file (the
+default, nothing to set up) or a PostgreSQL database that several services share.
 
 Why one file and one writer: a batch of readings, the alert changes it causes and the
 notifications those changes owe must land together or not at all, so a crash between them can
@@ -13,6 +14,12 @@ and taken in), ``errors``, ``base`` (opening, transactions) and one module per d
 and events, floods), ``shelves``, ``outbox``, ``deadletters``, ``offsets`` (file sources),
 ``partitions`` (Kafka). The
 :class:`Store` below is composed of the areas; callers import everything from ``limitwatch.store``.
+
+Open one with :func:`open_store` (a file path, ``sqlite:///path`` or ``postgresql://...``; the
+service, the outbox worker and every command go through it) or :func:`open_store_read_only`. The
+areas keep one copy of their logic over a small connection adapter per backend
+(``connection``, ``sqlite_conn``, ``pg_conn``); each backend has its own numbered migrations
+(``schema``, ``pgschema``).
 
 Times are epoch seconds supplied by the caller (``now``); nothing here reads a clock, so replay and
 tests behave exactly like the live service.
@@ -37,6 +44,8 @@ takes the write lock at the start, so reads made inside a batch see no concurren
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from limitwatch.store.base import StoreBase
 from limitwatch.store.baselines import BaselinesArea
 from limitwatch.store.deadletters import DeadLettersArea
@@ -54,8 +63,10 @@ from limitwatch.store.errors import (
     SchemaTooOld,
     ShelfRejected,
     StoreError,
+    StoreUnavailable,
 )
 from limitwatch.store.incidents import IncidentsArea
+from limitwatch.store.location import StoreLocation, is_postgresql, parse_location
 from limitwatch.store.offsets import FileOffsetsArea
 from limitwatch.store.outbox import OutboxArea
 from limitwatch.store.partitions import PartitionRow, PartitionsArea
@@ -129,9 +140,15 @@ __all__ = [
     "ShelfRejected",
     "Store",
     "StoreError",
+    "StoreLocation",
+    "StoreUnavailable",
     "StoredReading",
     "StreamRow",
+    "is_postgresql",
     "migrate",
+    "open_store",
+    "open_store_read_only",
+    "parse_location",
     "read_json",
     "same_numbers",
     "signal_context",
@@ -162,3 +179,27 @@ class Store(
     ...         store.load_checkpoints()
     {'line-1/scrap': {'n': 3}}
     """
+
+
+def open_store(
+    location: str | Path | StoreLocation, *, now: float | None = None, busy_timeout_s: float = 5.0
+) -> Store:
+    """Open (creating if needed) and upgrade the store at ``location``: a file path,
+    ``sqlite:///path`` or ``postgresql://user@host:port/database``. ``now`` is recorded as the
+    time any migration was applied."""
+    where = location if isinstance(location, StoreLocation) else parse_location(location)
+    if where.url is not None:
+        return Store.open_postgresql(where.url, now=now)
+    assert where.path is not None
+    return Store.open(where.path, now=now, busy_timeout_s=busy_timeout_s)
+
+
+def open_store_read_only(
+    location: str | Path | StoreLocation, *, described: str | None = None
+) -> Store:
+    """Open an existing store to read only; see :meth:`Store.open_read_only`."""
+    where = location if isinstance(location, StoreLocation) else parse_location(location)
+    if where.url is not None:
+        return Store.open_postgresql(where.url, read_only=True)
+    assert where.path is not None
+    return Store.open_read_only(where.path, described=described)

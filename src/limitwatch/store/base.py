@@ -1,5 +1,10 @@
 """The connection under every store area: opening (pragmas, migrations), transactions and
-the two query helpers the areas share."""
+the two query helpers the areas share.
+
+The areas speak to the database only through :attr:`StoreBase.sql`, a
+:class:`~limitwatch.store.connection.Connection` for SQLite or PostgreSQL, so each area's logic
+exists once; :meth:`StoreBase.open` opens an SQLite file and :meth:`StoreBase.open_postgresql` a
+PostgreSQL database (``limitwatch.store.open_store`` picks one from a store URL)."""
 
 from __future__ import annotations
 
@@ -12,6 +17,7 @@ from typing import Any, Self
 
 import sqlite_utils
 
+from limitwatch.store.connection import Connection
 from limitwatch.store.errors import (
     NotADatabase,
     SchemaTooNew,
@@ -21,10 +27,9 @@ from limitwatch.store.errors import (
 from limitwatch.store.schema import (
     MIGRATIONS,
     _create_private,
-    _immediate,
-    _recorded_version,
     migrate,
 )
+from limitwatch.store.sqlite_conn import SqliteConnection
 
 _CHUNK = 500  # parameters per IN (...) list; far below SQLite's limit, keeps statements small
 
@@ -32,10 +37,23 @@ _CHUNK = 500  # parameters per IN (...) list; far below SQLite's limit, keeps st
 class StoreBase:
     """Opening, transactions and query helpers; the data areas are mixins over this."""
 
-    def __init__(self, db: sqlite_utils.Database, path: str) -> None:
-        self.db = db
-        self.path = path
+    def __init__(self, sql: Connection) -> None:
+        self.sql = sql
+        self.path = sql.location
+        """The SQLite file, or the PostgreSQL URL without its password (for messages)."""
         self._rollback_listeners: list[Callable[[], None]] = []
+
+    @property
+    def backend(self) -> str:
+        """``sqlite`` or ``postgresql``."""
+        return self.sql.dialect
+
+    @property
+    def db(self) -> sqlite_utils.Database:
+        """The SQLite database under an SQLite store (for tests and SQLite-only tools)."""
+        if not isinstance(self.sql, SqliteConnection):
+            raise StoreError(f"{self.path} is a {self.sql.dialect} store, not an SQLite file")
+        return self.sql.db
 
     # ---- opening and transactions
 
@@ -75,7 +93,28 @@ class StoreBase:
         except BaseException:
             db.close()
             raise
-        return cls(db, path)
+        return cls(SqliteConnection(db, path))
+
+    @classmethod
+    def open_postgresql(
+        cls, url: str, *, now: float | None = None, read_only: bool = False
+    ) -> Self:
+        """Connect to the PostgreSQL database at ``url``; upgrade its schema unless
+        ``read_only`` (then a schema older or newer than this code is refused, as for a
+        read-only look at an SQLite file)."""
+        from limitwatch.store.pg_conn import PgConnection
+        from limitwatch.store.pgschema import PG_MIGRATIONS, pg_migrate
+
+        conn = PgConnection.connect(url, read_only=read_only)
+        try:
+            if read_only:
+                conn.check_readable(PG_MIGRATIONS[-1].version)
+            else:
+                pg_migrate(conn, now=now, source=conn.location)
+        except BaseException:
+            conn.close()
+            raise
+        return cls(conn)
 
     @classmethod
     def open_read_only(cls, path: str | Path, *, described: str | None = None) -> Self:
@@ -96,10 +135,10 @@ class StoreBase:
             )
         db = sqlite_utils.Database(conn, execute_plugins=False)
         db.register_function(fnmatchcase, deterministic=True, name="glob_match")
-        return cls(db, str(path))
+        return cls(SqliteConnection(db, str(path)))
 
     def close(self) -> None:
-        self.db.close()
+        self.sql.close()
 
     def __enter__(self) -> Self:
         return self
@@ -115,7 +154,7 @@ class StoreBase:
         first read and the batch sees no concurrent writer; nested blocks become savepoints.
         """
         try:
-            with _immediate(self.db.conn):
+            with self.sql.transaction():
                 yield self
         except BaseException:
             # Whatever the block wrote is gone (rolled back to its savepoint, or the whole
@@ -129,20 +168,21 @@ class StoreBase:
         self._rollback_listeners.append(forget)
 
     def data_version(self) -> int:
-        """A number that changes whenever another connection (an operator's command, the
-        outbox worker) commits to the database; this connection's own commits leave it alone.
-        What this connection remembers of the database is good while it stays the same."""
-        return int(self.db.conn.execute("PRAGMA data_version").fetchone()[0])
+        """A number that changes whenever another connection commits a change this one may
+        keep a copy of: on SQLite any commit by another connection (an operator's command, the
+        outbox worker), on PostgreSQL an operator's acknowledge, shelve or unshelve. What this
+        connection remembers of the database is good while it stays the same."""
+        return self.sql.data_version()
 
     @property
     def journal_mode(self) -> str:
-        return self.db.journal_mode
+        return self.db.journal_mode if self.sql.dialect == "sqlite" else self.sql.dialect
 
     def schema_version(self) -> int:
-        return _recorded_version(self.db)
+        return self.sql.schema_version()
 
     def _all(self, sql: str, params: Sequence[Any] | dict[str, Any] = ()) -> list[dict]:
-        return list(self.db.query(sql, params))
+        return self.sql.query(sql, params)
 
     def _one(self, sql: str, params: Sequence[Any] | dict[str, Any] = ()) -> dict | None:
         rows = self._all(sql, params)
@@ -158,13 +198,11 @@ class StoreBase:
             forget()
 
 
-def inserted_id(cursor: sqlite3.Cursor) -> int:
-    """The rowid the INSERT just run on ``cursor`` made. sqlite3 types it as optional because it
-    is None before any INSERT; after one it is the new row's id."""
-    rowid = cursor.lastrowid
-    if rowid is None:
+def inserted(row_id: int | None) -> int:
+    """The id an INSERT ... RETURNING id made (it always makes one where this is used)."""
+    if row_id is None:
         raise StoreError("the INSERT made no row; this is a bug in limitwatch, please report it")
-    return rowid
+    return row_id
 
 
 def connect_checked(

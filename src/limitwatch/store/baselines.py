@@ -40,7 +40,7 @@ class BaselinesArea(StoreBase):
         baselines), it must be newer than the current version.
         """
         with self.transaction():
-            row = self.db.execute(
+            row = self.sql.execute(
                 "SELECT max(version) FROM baselines WHERE stream = ?", (stream,)
             ).fetchone()
             current = int(row[0] or 0)
@@ -52,7 +52,7 @@ class BaselinesArea(StoreBase):
                     f"needs a higher version than {version}, or leave the version out to take "
                     "the next one."
                 )
-            self.db.execute(
+            self.sql.execute(
                 """INSERT INTO baselines (stream, version, created_at, created_by, reason,
                     method, first_index, last_index, first_time, last_time, excluded_json,
                     numbers_json)

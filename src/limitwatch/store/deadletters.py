@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import hashlib
 
-from limitwatch.store.base import StoreBase, inserted_id
+from limitwatch.store.base import StoreBase, inserted
 from limitwatch.store.records import (
     DEAD_LETTER_KEEP_BYTES,
     DeadLetter,
@@ -30,13 +30,14 @@ class DeadLettersArea(StoreBase):
             digest = hashlib.sha256(whole).hexdigest()
             if size > DEAD_LETTER_KEEP_BYTES:
                 payload = whole[:DEAD_LETTER_KEEP_BYTES]
-        cur = self.db.execute(
-            """INSERT INTO dead_letters
-                (source, received_at, reason, payload, payload_size, payload_sha256)
-            VALUES (?, ?, ?, ?, ?, ?)""",
-            (source, now, reason, payload, size, digest),
+        return inserted(
+            self.sql.insert_id(
+                """INSERT INTO dead_letters
+                    (source, received_at, reason, payload, payload_size, payload_sha256)
+                VALUES (?, ?, ?, ?, ?, ?)""",
+                (source, now, reason, self.sql.blob(payload), size, digest),
+            )
         )
-        return inserted_id(cur)
 
     def prune_dead_letters(
         self, now: float, *, max_age_s: float | None = None, max_count: int | None = None
@@ -50,13 +51,13 @@ class DeadLettersArea(StoreBase):
         deleted = 0
         with self.transaction():
             if max_age_s is not None:
-                cur = self.db.execute(
+                cur = self.sql.execute(
                     "DELETE FROM dead_letters WHERE received_at < ?", (now - max_age_s,)
                 )
                 deleted += cur.rowcount
             if max_count is not None:
                 # ids grow with arrival (AUTOINCREMENT), so the newest are the highest ids
-                cur = self.db.execute(
+                cur = self.sql.execute(
                     """DELETE FROM dead_letters WHERE id <= (
                         SELECT id FROM dead_letters ORDER BY id DESC LIMIT 1 OFFSET ?
                     )""",

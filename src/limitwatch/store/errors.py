@@ -11,6 +11,10 @@ class NotADatabase(StoreError):
     """The path exists but is not an SQLite file."""
 
 
+class StoreUnavailable(StoreError):
+    """The database server cannot be reached, or refused the connection."""
+
+
 class SchemaTooNew(StoreError):
     """The file was written by a newer limitwatch than this one."""
 

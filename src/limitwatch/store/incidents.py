@@ -4,15 +4,15 @@ or by an operator's acknowledgement."""
 from __future__ import annotations
 
 import json
-import sqlite3
 from collections.abc import Iterable, Mapping
+from fnmatch import fnmatchcase
 from typing import Any
 
 from limitwatch.model import StreamSignal
 from limitwatch.store.base import (
     _CHUNK,
     StoreBase,
-    inserted_id,
+    inserted,
 )
 from limitwatch.store.errors import (
     AlertAlreadyAcknowledged,
@@ -67,12 +67,14 @@ class IncidentsArea(StoreBase):
                     f"further signal ({signal.rule}) should join that incident, not open another."
                 )
             value = _finite(signal.value)
-            cur = self.db.execute(
-                """INSERT INTO alerts (stream, rule, state, severity, opened_at, first_time,
+            alert_id = self.next_alert_id()
+            self.sql.execute(
+                """INSERT INTO alerts (id, stream, rule, state, severity, opened_at, first_time,
                     first_index, first_value, last_time, last_index, last_value, signal_count,
                     quiet_count, seen_time, signal_json)
-                VALUES (?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?, 1, 0, ?, ?)""",
+                VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?, 1, 0, ?, ?)""",
                 (
+                    alert_id,
                     signal.stream,
                     signal.rule,
                     severity,
@@ -87,8 +89,7 @@ class IncidentsArea(StoreBase):
                     json.dumps(signal_context(signal)),
                 ),
             )
-            alert_id = inserted_id(cur)
-            self.db.execute(
+            self.sql.execute(
                 """INSERT INTO incident_rules (alert_id, rule, severity, signal_count, first_time,
                     first_index, first_value, last_time, last_index, last_value, signal_json)
                 VALUES (?, ?, ?, 1, ?, ?, ?, ?, ?, ?, ?)""",
@@ -128,7 +129,7 @@ class IncidentsArea(StoreBase):
         if "signal" in changes:
             changes["signal_json"] = json.dumps(changes.pop("signal"))
         sets = ", ".join(f"{column} = ?" for column in changes)
-        cur = self.db.execute(
+        cur = self.sql.execute(
             f"UPDATE alerts SET {sets} WHERE id = ?", (*changes.values(), alert_id)
         )
         if cur.rowcount == 0:
@@ -144,7 +145,7 @@ class IncidentsArea(StoreBase):
                 raise AlertAlreadyCleared(
                     f"alert {alert_id} already cleared at {_iso(alert.cleared_at)}."
                 )
-            self.db.execute(
+            self.sql.execute(
                 "UPDATE alerts SET state = 'cleared', cleared_at = ? WHERE id = ?",
                 (now, alert_id),
             )
@@ -156,6 +157,7 @@ class IncidentsArea(StoreBase):
         stop. Raises :class:`AlertNotFound`, :class:`AlertAlreadyCleared` or
         :class:`AlertAlreadyAcknowledged` with a message fit to show the operator."""
         with self.transaction():
+            self.sql.announce_change()  # first: waits for batches in flight (PostgreSQL)
             alert = self.alert(alert_id)
             if alert.state == "cleared":
                 raise AlertAlreadyCleared(
@@ -169,7 +171,7 @@ class IncidentsArea(StoreBase):
                     f"alert {alert_id} was already acknowledged by {alert.acknowledged_by} at "
                     f"{_iso(alert.acknowledged_at)}; its event log shows who did what."
                 )
-            self.db.execute(
+            self.sql.execute(
                 """UPDATE alerts SET state = 'acknowledged', acknowledged_at = ?,
                     acknowledged_by = ?, ack_note = ? WHERE id = ?""",
                 (now, by, note, alert_id),
@@ -203,17 +205,13 @@ class IncidentsArea(StoreBase):
         """The id the next incident gets. Call inside the batch's transaction, which holds the
         write lock, so the lifecycle can name new incidents (and their event ids) before the
         store writes them."""
-        row = self.db.execute(
-            """SELECT max(coalesce((SELECT seq FROM sqlite_sequence WHERE name = 'alerts'), 0),
-                coalesce((SELECT max(id) FROM alerts), 0))"""
-        ).fetchone()
-        return int(row[0]) + 1
+        return self.sql.next_alert_id()
 
     def write_changes(self, changes: ChangeSet) -> int:
         """Write one lifecycle decision: changed incidents, new incidents, rule tallies, events
         and outbox rows, each with one ``executemany``; return how many outbox rows are new
         (a row whose key exists already is a replay and changes nothing)."""
-        conn = self.db.conn
+        conn = self.sql
         with self.transaction():
             if changes.changed:
                 sets = ", ".join(f"{c} = ?" for c in _UPDATED_COLUMNS)
@@ -273,8 +271,7 @@ class IncidentsArea(StoreBase):
                 )
             queued = 0
             if changes.outbox:
-                before = conn.total_changes
-                conn.executemany(
+                queued = conn.executemany(
                     """INSERT INTO outbox (idempotency_key, alert_id, route, payload_json,
                         created_at, next_attempt_at, expires_at)
                     VALUES (?, ?, ?, ?, ?, ?, ?)
@@ -292,7 +289,6 @@ class IncidentsArea(StoreBase):
                         for r in changes.outbox
                     ],
                 )
-                queued = conn.total_changes - before
         return queued
 
     def alerts(
@@ -314,17 +310,22 @@ class IncidentsArea(StoreBase):
                 )
             where.append(f"state IN ({', '.join('?' * len(states))})")
             params.extend(states)
+        recheck = False
         if stream_glob is not None:
-            where.append("glob_match(stream, ?)")
-            params.append(stream_glob)
+            fragment, more, recheck = self.sql.glob_filter("stream", stream_glob)
+            where.append(fragment)
+            params.extend(more)
         sql = "SELECT * FROM alerts"
         if where:
             sql += " WHERE " + " AND ".join(where)
         sql += " ORDER BY id DESC"
-        if limit is not None:
+        if limit is not None and not recheck:
             sql += " LIMIT ?"
             params.append(limit)
-        return self._with_rules([Alert._from_row(r) for r in self._all(sql, params)])
+        rows = self._all(sql, params)
+        if recheck:
+            rows = [r for r in rows if fnmatchcase(r["stream"], stream_glob or "")][:limit]
+        return self._with_rules([Alert._from_row(r) for r in rows])
 
     def live_alerts(self, streams: Iterable[str] | None = None) -> list[Alert]:
         """Open and acknowledged alerts, for the given streams only when given."""
@@ -350,7 +351,7 @@ class IncidentsArea(StoreBase):
     def changes_since(self, since: float) -> list[str]:
         """The stream of every incident opened, and of every one cleared, after ``since`` (a
         flood's measure), oldest first."""
-        rows = self.db.execute(
+        rows = self.sql.execute(
             """SELECT stream, opened_at AS t, id FROM alerts WHERE opened_at > ?
             UNION ALL
             SELECT stream, cleared_at AS t, id FROM alerts WHERE cleared_at > ?
@@ -369,7 +370,8 @@ class IncidentsArea(StoreBase):
         return [_flood(r) for r in self._all("SELECT * FROM floods ORDER BY id")]
 
     def next_flood_id(self) -> int:
-        row = self.db.execute("SELECT coalesce(max(id), 0) + 1 FROM floods").fetchone()
+        self.sql.lock_numbering()
+        row = self.sql.execute("SELECT coalesce(max(id), 0) + 1 FROM floods").fetchone()
         return int(row[0])
 
     def last_seen_times(self, streams: Iterable[str]) -> dict[str, float]:
@@ -378,7 +380,7 @@ class IncidentsArea(StoreBase):
         found: dict[str, float] = {}
         for i in range(0, len(wanted), _CHUNK):
             chunk = wanted[i : i + _CHUNK]
-            rows = self.db.execute(
+            rows = self.sql.execute(
                 f"""SELECT stream, max(seen_time) FROM alerts
                 WHERE stream IN ({", ".join("?" * len(chunk))}) GROUP BY stream""",
                 chunk,
@@ -407,14 +409,17 @@ class IncidentsArea(StoreBase):
         if kind not in EVENT_KINDS:
             raise ValueError(f"unknown alert event kind {kind!r}; kinds are {EVENT_KINDS}")
         try:
-            cur = self.db.execute(
-                """INSERT INTO alert_events (alert_id, kind, time, actor, note, data_json)
-                VALUES (?, ?, ?, ?, ?, ?)""",
-                (alert_id, kind, now, actor, note, None if data is None else json.dumps(data)),
-            )
-        except sqlite3.IntegrityError as exc:
+            # a savepoint of its own: on PostgreSQL a refused statement would otherwise spoil
+            # the whole transaction around it
+            with self.transaction():
+                event_id = self.sql.insert_id(
+                    """INSERT INTO alert_events (alert_id, kind, time, actor, note, data_json)
+                    VALUES (?, ?, ?, ?, ?, ?)""",
+                    (alert_id, kind, now, actor, note, None if data is None else json.dumps(data)),
+                )
+        except self.sql.integrity as exc:
             raise AlertNotFound(_no_alert(alert_id)) from exc
-        return inserted_id(cur)
+        return inserted(event_id)
 
     def alert_events(self, alert_id: int) -> list[AlertEvent]:
         """The alert's audit trail, oldest first."""

@@ -20,7 +20,7 @@ class FileOffsetsArea(StoreBase):
     def save_file_offsets(self, source: str, offsets: Mapping[str, int], *, now: float) -> None:
         """Upsert offsets; call inside the batch transaction that used the lines before them."""
         with self.transaction():
-            self.db.conn.executemany(
+            self.sql.executemany(
                 """INSERT INTO file_offsets (source, file_id, byte_offset, updated_at)
                 VALUES (?, ?, ?, ?)
                 ON CONFLICT (source, file_id) DO UPDATE SET

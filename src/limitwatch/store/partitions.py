@@ -38,7 +38,6 @@ tokens": a resource refuses writes carrying an older token than one it has seen.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 from limitwatch.store.base import StoreBase
 from limitwatch.store.errors import Fenced
@@ -61,20 +60,12 @@ class PartitionRow:
 class PartitionsArea(StoreBase):
     """Ownership and positions of Kafka partitions (see the module's description)."""
 
-    def _execute(self, sql: str, params: tuple[object, ...]) -> Any:
-        """One statement on the store's connection (the backend adapter's, where the store
-        has one, which adapts placeholders), giving a cursor with ``rowcount``."""
-        adapter = getattr(self, "sql", None)
-        if adapter is not None:
-            return adapter.execute(sql, params)
-        return self.db.conn.execute(sql, params)
-
     def take_partition(self, topic: str, partition: int, owner: str, *, now: float) -> PartitionRow:
         """Make ``owner`` the partition's owner under a new generation, whoever held it;
         return the row (with the next offset to read from). The group coordinator decides who
         owns what; this only makes the previous owner's late writes fail."""
         with self.transaction():
-            self._execute(
+            self.sql.execute(
                 """INSERT INTO partitions (topic, partition, owner, generation, taken_at)
                 VALUES (?, ?, ?, 1, ?)
                 ON CONFLICT (topic, partition) DO UPDATE SET
@@ -94,7 +85,7 @@ class PartitionsArea(StoreBase):
         partition under ``generation``; raise :class:`Fenced` otherwise, and the caller's
         transaction rolls back."""
         with self.transaction():
-            cursor = self._execute(
+            cursor = self.sql.execute(
                 """UPDATE partitions SET next_offset = ?, committed_at = ?
                 WHERE topic = ? AND partition = ? AND owner = ? AND generation = ?""",
                 (next_offset, now, topic, partition, owner, generation),
@@ -116,7 +107,7 @@ class PartitionsArea(StoreBase):
     def release_partition(self, topic: str, partition: int, owner: str, generation: int) -> bool:
         """Give the partition up (owner cleared, offset kept), if still ours; True if it was."""
         with self.transaction():
-            cursor = self._execute(
+            cursor = self.sql.execute(
                 """UPDATE partitions SET owner = NULL
                 WHERE topic = ? AND partition = ? AND owner = ? AND generation = ?""",
                 (topic, partition, owner, generation),

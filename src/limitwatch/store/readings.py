@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Iterator, Mapping
+from fnmatch import fnmatchcase
 from typing import Any
 
 from limitwatch.model import Outcome, Reading
@@ -35,14 +36,13 @@ class ReadingsArea(StoreBase):
         if not rows:
             return 0
         with self.transaction():
-            cur = self.db.conn.executemany(
+            stored = self.sql.executemany(
                 """INSERT INTO readings (stream, time, value, seq, idx, phase, z, mr, signals)
                 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)
                 ON CONFLICT (stream, time) DO NOTHING""",
                 rows,
             )
-            stored = cur.rowcount
-            self.db.conn.executemany(
+            self.sql.executemany(
                 """INSERT INTO streams
                     (id, first_seen, last_seen, last_time, last_value, last_index, phase)
                 VALUES (?, ?, ?, ?, ?, ?, ?)
@@ -101,17 +101,17 @@ class ReadingsArea(StoreBase):
         deleted = 0
         with self.transaction():
             if max_age_s is not None:
-                cur = self.db.execute("DELETE FROM readings WHERE time < ?", (now - max_age_s,))
+                cur = self.sql.execute("DELETE FROM readings WHERE time < ?", (now - max_age_s,))
                 deleted += cur.rowcount
             if max_per_stream is not None:
-                cur = self.db.execute(
-                    """DELETE FROM readings WHERE rowid IN (
-                        SELECT rowid FROM (
-                            SELECT rowid, row_number() OVER (
+                cur = self.sql.execute(
+                    """DELETE FROM readings WHERE (stream, time) IN (
+                        SELECT stream, time FROM (
+                            SELECT stream, time, row_number() OVER (
                                 PARTITION BY stream ORDER BY time DESC
                             ) AS newest_first
                             FROM readings
-                        ) WHERE newest_first > ?
+                        ) AS ranked WHERE newest_first > ?
                     )""",
                     (max_per_stream,),
                 )
@@ -122,7 +122,7 @@ class ReadingsArea(StoreBase):
         """The stream's kept readings later than ``time`` (all when None), oldest first, as
         the engine first saw them: what a monitor restored from an older checkpoint needs
         again to stand where the last commit left it."""
-        rows = self.db.conn.execute(
+        rows = self.sql.execute(
             "SELECT time, value, seq FROM readings WHERE stream = ? AND time > ? ORDER BY time",
             (stream, -math.inf if time is None else time),
         )
@@ -132,7 +132,7 @@ class ReadingsArea(StoreBase):
         """The latest service time at which a batch with accepted readings committed (the
         newest ``last_seen``), or None for an empty store: a restart goes on from it if the
         wall clock was stepped back meanwhile."""
-        row = self.db.conn.execute("SELECT max(last_seen) FROM streams").fetchone()
+        row = self.sql.execute("SELECT max(last_seen) FROM streams").fetchone()
         return None if row[0] is None else float(row[0])
 
     def has_reading(self, reading: Reading, *, seq_horizon_s: float = 86400.0) -> bool:
@@ -140,14 +140,14 @@ class ReadingsArea(StoreBase):
         sequence number) the same sequence number within ``seq_horizon_s`` before its time
         (a redelivery without a time of its own carries a later receive time). Both lookups
         use the primary key's range, never a scan of the stream."""
-        found = self.db.conn.execute(
+        found = self.sql.execute(
             "SELECT 1 FROM readings WHERE stream = ? AND time = ? AND value = ?",
             (reading.stream, reading.time, reading.value),
         ).fetchone()
         if found is not None or reading.seq is None:
             return found is not None
         return (
-            self.db.conn.execute(
+            self.sql.execute(
                 """SELECT 1 FROM readings WHERE stream = ? AND time BETWEEN ? AND ?
                 AND seq = ? LIMIT 1""",
                 (reading.stream, reading.time - seq_horizon_s, reading.time, reading.seq),
@@ -157,14 +157,17 @@ class ReadingsArea(StoreBase):
 
     def stream_last_times(self) -> dict[str, float | None]:
         """Each stream's latest committed reading time."""
-        return dict(self.db.conn.execute("SELECT id, last_time FROM streams"))
+        return dict(self.sql.execute("SELECT id, last_time FROM streams"))
 
     def streams(self, *, glob: str | None = None) -> list[StreamRow]:
         """Every stream heard from (matching ``glob`` on the id when given), by id."""
         if glob is None:
             rows = self._all("SELECT * FROM streams ORDER BY id")
         else:
-            rows = self._all("SELECT * FROM streams WHERE glob_match(id, ?) ORDER BY id", (glob,))
+            where, params, recheck = self.sql.glob_filter("id", glob)
+            rows = self._all(f"SELECT * FROM streams WHERE {where} ORDER BY id", params)
+            if recheck:
+                rows = [r for r in rows if fnmatchcase(r["id"], glob)]
         return [StreamRow(**r) for r in rows]
 
     def save_checkpoint(self, stream: str, state: Mapping[str, Any], *, now: float) -> None:
@@ -174,7 +177,7 @@ class ReadingsArea(StoreBase):
     def save_checkpoints(self, states: Mapping[str, Mapping[str, Any]], *, now: float) -> None:
         rows = [(stream, now, json.dumps(dict(state))) for stream, state in states.items()]
         with self.transaction():
-            self.db.conn.executemany(
+            self.sql.executemany(
                 """INSERT INTO checkpoints (stream, saved_at, state_json) VALUES (?, ?, ?)
                 ON CONFLICT (stream) DO UPDATE SET
                     saved_at = excluded.saved_at, state_json = excluded.state_json""",
@@ -187,7 +190,7 @@ class ReadingsArea(StoreBase):
     def iter_checkpoints(self) -> Iterator[tuple[str, dict[str, Any]]]:
         """``(stream, state)`` by stream, one row at a time: a restart of a large site then
         never holds every parsed checkpoint at once."""
-        rows = self.db.conn.execute("SELECT stream, state_json FROM checkpoints ORDER BY stream")
+        rows = self.sql.execute("SELECT stream, state_json FROM checkpoints ORDER BY stream")
         for stream, state_json in rows:
             yield stream, read_json(state_json)
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from limitwatch.store.base import inserted_id
+from limitwatch.store.base import inserted
 from limitwatch.store.errors import (
     NotShelved,
     ShelfRejected,
@@ -43,12 +43,13 @@ class ShelvesArea(IncidentsArea):
                 "give a positive duration."
             )
         with self.transaction():
-            cur = self.db.execute(
+            self.sql.announce_change()
+            shelf_id = self.sql.insert_id(
                 """INSERT INTO shelves (stream, rule, created_at, until, reason, shelved_by)
                 VALUES (?, ?, ?, ?, ?, ?)""",
                 (stream, rule, now, until, reason, by),
             )
-            shelf = self._shelf(inserted_id(cur))
+            shelf = self._shelf(inserted(shelf_id))
             for alert in self._live_covered(stream, rule):
                 self.add_alert_event(
                     alert.id,
@@ -77,17 +78,18 @@ class ShelvesArea(IncidentsArea):
         extends or shortens them."""
         done: list[tuple[Shelf, list[Shelf]]] = []
         with self.transaction():
+            self.sql.announce_change()
             live = self.active_shelves(now)
             for stream in streams:
                 old = [s for s in live if s.stream == stream and s.rule == rule]
                 if old:
-                    self.db.conn.executemany(
+                    self.sql.executemany(
                         "UPDATE shelves SET ended_at = ?, ended_by = ? WHERE id = ?",
                         [(now, by, s.id) for s in old],
                     )
                 shelf = self.shelve(stream, rule, until=until, reason=reason, by=by, now=now)
                 if pattern is not None:
-                    self.db.execute(
+                    self.sql.execute(
                         "UPDATE shelves SET pattern = ? WHERE id = ?", (pattern, shelf.id)
                     )
                     shelf = self._shelf(shelf.id)
@@ -98,6 +100,7 @@ class ShelvesArea(IncidentsArea):
         """End the stream's live shelves now: all of them when ``rule`` is None, else only that
         rule's. Raises :class:`NotShelved` when there is nothing to end."""
         with self.transaction():
+            self.sql.announce_change()
             live = [
                 s
                 for s in self.active_shelves(now)
@@ -109,7 +112,7 @@ class ShelvesArea(IncidentsArea):
                     f"nothing is shelved for {what} at {_iso(now)}; list the active shelves "
                     "to see what is."
                 )
-            self.db.conn.executemany(
+            self.sql.executemany(
                 "UPDATE shelves SET ended_at = ?, ended_by = ? WHERE id = ?",
                 [(now, by, s.id) for s in live],
             )

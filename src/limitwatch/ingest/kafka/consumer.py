@@ -204,6 +204,11 @@ class ConsumerThread:
         return len(topic.partitions)
 
     def _assign(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        log.info(
+            "source %s: the group assigns partitions %s; taking them in the store",
+            self.source,
+            sorted(tp.partition for tp in partitions),
+        )
         try:
             count = self._partition_count(consumer)
             starts = self._on_assign([tp.partition for tp in partitions], count)

@@ -134,8 +134,18 @@ class KafkaSource(Source):
                     "the beginning" if taken.next_offset is None else taken.next_offset,
                 )
 
-        keeper.on_worker(take)
-        return starts
+        # The store may be held by a worker that stalled mid-commit (SQLite's one writer, or a
+        # row lock on PostgreSQL): try again until it lets go, within half the poll interval.
+        deadline = time.monotonic() + self.settings.max_poll_interval / 2
+        while True:
+            try:
+                keeper.on_worker(take)
+                return starts
+            except Exception as exc:
+                if time.monotonic() > deadline:
+                    raise
+                log.warning("source %s: taking partitions failed (%s); again", self.name, exc)
+                time.sleep(1.0)
 
     def _revoke(self, partitions: list[int], lost: bool) -> None:
         """On the consumer thread: have the worker checkpoint and drop the partitions' streams
