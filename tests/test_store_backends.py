@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import sqlite3
 import threading
+import time
 from fnmatch import fnmatchcase
 from pathlib import Path
 
@@ -267,12 +268,14 @@ def test_two_senders_never_claim_the_same_outbox_row(pg_url: str) -> None:
     with open_store(pg_url, now=T0) as seed:
         queued = _queue(seed, 60)
     claimed: dict[str, list[int]] = {"a": [], "b": []}
+    both_done = threading.Barrier(2, timeout=60)
 
     def sender(name: str) -> None:
         with open_store(pg_url, now=T0) as store:
             for _ in range(20):
                 rows = store.claim_notifications(T0 + 1, by=name, lease_s=300, limit=4)
                 claimed[name].extend(r.id for r in rows)
+            both_done.wait()  # a sender that leaves ends its claims (its session is gone)
 
     threads = [threading.Thread(target=sender, args=(n,)) for n in claimed]
     for t in threads:
@@ -296,6 +299,23 @@ def test_an_expired_lease_is_claimed_again_and_a_recorded_attempt_ends_it(pg_url
         # A failed attempt ends b's lease: the retry is anyone's when it is due.
         assert a.claim_notifications(T0 + 64, by="a", lease_s=60) == []
         assert [r.id for r in a.claim_notifications(T0 + 65, by="a", lease_s=60)] == [second]
+
+
+def test_the_claims_of_a_sender_whose_session_ended_are_taken_at_once(pg_url: str) -> None:
+    """A service killed mid-pass loses its database session with its process: its rows are
+    claimed again on the next pass, not after the lease."""
+    with open_store(pg_url, now=T0) as b:
+        dying = open_store(pg_url, now=T0)
+        queued = _queue(dying, 3)
+        assert [r.id for r in dying.claim_notifications(T0, by="a", lease_s=300)] == queued
+        assert b.claim_notifications(T0 + 1, by="b", lease_s=300) == []
+        dying.close()  # as the kernel does for a process killed with SIGKILL
+        deadline = time.monotonic() + 30  # the server notices the closed socket, then forgets
+        taken: list[int] = []
+        while not taken and time.monotonic() < deadline:
+            taken = [r.id for r in b.claim_notifications(T0 + 2, by="b", lease_s=300)]
+            time.sleep(0.05)
+        assert taken == queued
 
 
 def test_sqlite_keeps_one_sender_and_no_claims(tmp_path: Path) -> None:

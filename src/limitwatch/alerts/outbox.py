@@ -132,8 +132,9 @@ class OutboxWorker:
     ``store`` is a database path or store URL, or a callable returning a new :class:`Store`; the
     worker opens one connection per thread that uses it (SQLite connections are bound to their
     thread). On PostgreSQL several services' workers share the outbox: each pass claims its rows
-    for ``lease_s`` seconds (longer than a pass takes), so no row is sent by two at once and the
-    rows of a worker that died are sent by another once their lease runs out.
+    for its database session and ``lease_s`` seconds (longer than a pass takes), so no row is
+    sent by two at once; the rows of a worker that died are claimed again as soon as its session
+    is gone, and those of a hung one when the lease runs out.
     ``clock`` gives the time for the background loop only; :meth:`deliver_due` takes ``now``.
     ``rng`` draws the jitter (pass a seeded ``random.Random`` in tests).
 
@@ -155,7 +156,7 @@ class OutboxWorker:
         batch_size: int = 100,
         poll_interval_s: float = 1.0,
         watch: DeliveryWatch | None = None,
-        lease_s: float = 600.0,
+        lease_s: float = 300.0,
         shared: bool = False,
     ) -> None:
         """``shared``: several services deliver from one SQLite file (Kafka group workers);

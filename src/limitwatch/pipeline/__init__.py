@@ -28,9 +28,8 @@ transaction each; the one that fails again becomes a dead letter (``engine-error
 committed, and the caller acknowledges only after :meth:`Pipeline.process` returns, in
 arrival order, as before.
 
-A failure of the store itself (an I/O error, a full disk, a locked or damaged database: any
-``sqlite3.OperationalError``, ``psycopg.OperationalError`` or another database error
-than a refused row) leaves the monitors
+A failure of the store itself (an I/O error, a full disk, a locked or damaged database, a
+PostgreSQL server gone: any database error other than a refused row) leaves the monitors
 ahead of the database; the pipeline then refuses to go on (:class:`PipelineBroken`) and the
 service exits, so a restart resumes from the last commit and the broker redelivers what was
 never acknowledged.

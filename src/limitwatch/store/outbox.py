@@ -52,15 +52,15 @@ class OutboxArea(StoreBase):
         return [_notification(r) for r in rows]
 
     def claim_notifications(
-        self, now: float, *, by: str, lease_s: float = 600.0, limit: int = 100
+        self, now: float, *, by: str, lease_s: float = 300.0, limit: int = 100
     ) -> list[Notification]:
         """The due rows this sender may deliver now, oldest due first.
 
         On SQLite one service owns the file, so these are simply the due rows. On PostgreSQL
         several services share the outbox: each row comes with a lease of ``lease_s`` seconds
-        for ``by`` (``FOR UPDATE SKIP LOCKED``), so no two deliver the same row at once, and a
-        row whose sender died is offered again once its lease has run out. Marking the row
-        delivered or failed ends the lease."""
+        for ``by`` and this database session (``FOR UPDATE SKIP LOCKED``), so no two deliver the
+        same row at once; a row whose sender died is offered again once its session is gone, or
+        its lease has run out. Marking the row delivered or failed ends the claim."""
         ids = self.sql.claim_outbox(now, by=by, lease_s=lease_s, limit=limit)
         if ids is None:
             return self.due_notifications(now, limit=limit)

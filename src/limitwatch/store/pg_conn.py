@@ -15,8 +15,10 @@ that one SQLite writer got for free are explicit here:
   :meth:`lock_numbering` holds a transaction-level advisory lock from reading the next id until
   the batch commits; two services never hand out the same number.
 * Outbox delivery by any service: :meth:`claim_outbox` takes due rows with ``FOR UPDATE SKIP
-  LOCKED`` and writes a lease in ``outbox_claims``; a row whose lease is live is nobody else's,
-  and the lease of a service that died simply runs out.
+  LOCKED`` and writes a claim in ``outbox_claims`` with the claimer's database session and a
+  lease; a row is nobody else's while both live. A service that died (kill -9 included) loses
+  its session at once, so its rows are claimed again on the next pass; the lease bounds what a
+  hung service, or one on a machine that vanished, can hold.
 
 References
 ----------
@@ -185,15 +187,17 @@ class PgConnection(Connection):
                     WHERE o.delivered_at IS NULL AND o.next_attempt_at <= ?
                         AND (o.expires_at IS NULL OR o.expires_at > ?)
                         AND NOT EXISTS (SELECT 1 FROM outbox_claims c
-                            WHERE c.outbox_id = o.id AND c.lease_until > ?)
+                            WHERE c.outbox_id = o.id AND c.lease_until > ?
+                                AND c.backend_pid IN (SELECT pid FROM pg_stat_activity))
                     ORDER BY o.next_attempt_at, o.id LIMIT ?
                     FOR UPDATE OF o SKIP LOCKED
                 )
-                INSERT INTO outbox_claims (outbox_id, claimed_by, lease_until)
-                SELECT id, ?, ? FROM due
+                INSERT INTO outbox_claims (outbox_id, claimed_by, backend_pid, lease_until)
+                SELECT id, ?, pg_backend_pid(), ? FROM due
                 ON CONFLICT (outbox_id) DO UPDATE SET claimed_by = excluded.claimed_by,
-                    lease_until = excluded.lease_until
+                    backend_pid = excluded.backend_pid, lease_until = excluded.lease_until
                 WHERE outbox_claims.lease_until <= ?
+                    OR outbox_claims.backend_pid NOT IN (SELECT pid FROM pg_stat_activity)
                 RETURNING outbox_id""",
                 (now, now, now, limit, by, now + lease_s, now),
             ).fetchall()

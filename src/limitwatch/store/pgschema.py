@@ -206,10 +206,12 @@ PG_MIGRATIONS: tuple[Migration, ...] = (
                 version bigint NOT NULL
             )""",
             "INSERT INTO store_changes (id, version) VALUES (1, 0)",
-            # PostgreSQL only: the service delivering an outbox row, until its lease ends.
+            # PostgreSQL only: the service delivering an outbox row, until its lease ends or its
+            # database session (backend_pid) is gone.
             """CREATE TABLE outbox_claims (
                 outbox_id bigint PRIMARY KEY REFERENCES outbox (id) ON DELETE CASCADE,
                 claimed_by text NOT NULL,
+                backend_pid bigint NOT NULL,
                 lease_until double precision NOT NULL
             )""",
         ),
