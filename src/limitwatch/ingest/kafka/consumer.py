@@ -44,9 +44,12 @@ class Record(NamedTuple):
     """The MQTT topic (the bridge's header), else the message key."""
     payload: bytes
     received_at: float
-    """The bridge's receipt time (its header), else the message's Kafka timestamp."""
+    """When this worker took it from Kafka (the worker's batch window counts from here)."""
     partition: int
     offset: int
+    sent_at: float
+    """The bridge's receipt time (its header), else the message's Kafka timestamp: the time
+    of a reading whose payload has none, the same whichever worker applies it."""
 
 
 def record_of(source: str, message: Any) -> Record:
@@ -64,11 +67,12 @@ def record_of(source: str, message: Any) -> Record:
     if topic is None:
         key = message.key()
         topic = "" if key is None else key.decode("utf-8", "replace")
+    now = time.time()
     if received is None or received != received:  # NaN
         _, stamp = message.timestamp()
-        received = stamp / 1000.0 if stamp > 0 else time.time()
+        received = stamp / 1000.0 if stamp > 0 else now
     return Record(
-        source, topic, message.value() or b"", received, message.partition(), message.offset()
+        source, topic, message.value() or b"", now, message.partition(), message.offset(), received
     )
 
 

@@ -181,12 +181,12 @@ class KafkaSource(Source):
         owned = self._owned.get(item.partition)
         if owned is None:
             return None  # read before its partition went elsewhere: the new owner applies it
-        owned.last_received = item.received_at
+        owned.last_received = item.sent_at
         origin = (item.partition, item.offset)
         try:
             # The bridge's receipt time, not this worker's: any worker that applies the
             # record after a failover must time a payload without a time the same way.
-            reading = self.parser.parse(item.topic, item.payload, item.received_at)
+            reading = self.parser.parse(item.topic, item.payload, item.sent_at)
         except PayloadError as exc:
             return Parsed(
                 self.name, envelope(item), error=exc.reason, detail=exc.message, origin=origin
