@@ -376,10 +376,10 @@ class StreamMonitor:
         if found == 1:
             rules = _format_1_rules(settings, data["detectors"])
         else:
+            # The checkpoint holds the fused rules' state (``rules`` and ``states``) as is.
             # Every detector's state ends with the position of the last reading it saw. JSON
             # gives each its own int object (28 bytes); the live monitor shares one.
-            saved = {"rules": data["rules"], "states": data["states"]}
-            rules = FusedRules.from_state(saved, settings.plan, position=monitor.count - 1)
+            rules = FusedRules.from_state(data, settings.plan, position=monitor.count - 1)
         # The store wrote this baseline: its numbers are trusted, not converted again.
         monitor._lock(Baseline.from_stored(data["baseline"]), data["baseline_version"], rules)
         return monitor
