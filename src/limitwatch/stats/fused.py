@@ -427,11 +427,13 @@ class FusedRules:
             raise ValueError(f"{len(plan.order)} detector states expected, got {len(states)}")
         win = 0
         last: Any = None
+        windows = plan.windows  # a restart runs this loop for every stream: lookups hoisted
         for rule, values in zip(plan.order, states):  # noqa: B905 -- lengths checked above
             try:
-                if rule in plan.windows:
+                lanes = windows.get(rule)
+                if lanes is not None:
                     up, down, last = values
-                    lane, window = plan.windows[rule]
+                    lane, window = lanes
                     win |= _spread(up, lane, window) | _spread(down, lane + 1, window)
                 elif rule == "ewma":
                     w, n, last = values
