@@ -74,10 +74,10 @@ def test_a_wild_reading_after_learning_signals_on_both_charts():
 def test_refused_readings_change_nothing(reading, reason):
     monitor = StreamMonitor("s", MonitorSettings(learn_count=20, lower_bound=0, upper_bound=1e6))
     feed(monitor, quiet(24))
-    before = json.dumps(monitor.snapshot(), sort_keys=True)
+    before = json.dumps(monitor.state(), sort_keys=True)
     outcome = monitor.update(reading)
     assert not outcome.accepted and outcome.reason == reason
-    assert json.dumps(monitor.snapshot(), sort_keys=True) == before
+    assert json.dumps(monitor.state(), sort_keys=True) == before
 
 
 def test_redelivered_reading_is_a_duplicate_by_time_and_value_or_by_sequence():
@@ -113,7 +113,7 @@ def test_stuck_sensor_keeps_learning_with_bounded_memory():
     feed(monitor, [4.0] * 200)
     assert monitor.phase == "learning"
     assert monitor.last_fit_error is not None and "moving range" in monitor.last_fit_error.lower()
-    assert len(monitor.snapshot()["learning"]) < 12
+    assert len(monitor.state()["learning"]) < 12
     outcomes = feed(monitor, quiet(12), start=200 * 60.0)
     assert any(o.baseline_fitted for o in outcomes)
 
@@ -149,7 +149,7 @@ values_strategy = st.lists(
 
 @settings(max_examples=examples(60), deadline=None)
 @given(values=values_strategy, cut=st.integers(min_value=0, max_value=120), seed=st.integers(0, 9))
-def test_snapshot_and_restore_mid_stream_changes_nothing(values, cut, seed):
+def test_state_round_trip_mid_stream_changes_nothing(values, cut, seed):
     """Property: a checkpoint at any point, written to JSON and read back, continues exactly as
     the uninterrupted monitor does -- the guarantee a crash-and-restart relies on."""
     learn = [*quiet(20, seed=seed)]
@@ -161,13 +161,28 @@ def test_snapshot_and_restore_mid_stream_changes_nothing(values, cut, seed):
     expected = [whole.update(Reading("s", t, v)) for t, v in zip(times, stream, strict=True)]
     first = StreamMonitor("s", config)
     got = [first.update(Reading("s", t, v)) for t, v in zip(times[:cut], stream[:cut], strict=True)]
-    saved = json.loads(json.dumps(first.snapshot()))
-    second = StreamMonitor.restore(saved, config)
-    got += [
-        second.update(Reading("s", t, v)) for t, v in zip(times[cut:], stream[cut:], strict=True)
-    ]
+    saved = json.loads(json.dumps(first.state()))
+    second = StreamMonitor.from_state(saved, config)
+    older = StreamMonitor.from_state(json.loads(json.dumps(as_format_1(saved, config))), config)
+    assert older.state() == second.state()
+    rest = list(zip(times[cut:], stream[cut:], strict=True))
+    got += [second.update(Reading("s", t, v)) for t, v in rest]
     assert [o.signals for o in got] == [o.signals for o in expected]
-    assert second.snapshot() == whole.snapshot()
+    assert second.state() == whole.state()
+    older_got = [older.update(Reading("s", t, v)) for t, v in rest]
+    assert [o.signals for o in older_got] == [o.signals for o in expected[cut:]]
+
+
+def as_format_1(state: dict, config: MonitorSettings) -> dict:
+    """The same checkpoint as format 1 wrote it: each detector's full ``state()`` (rule,
+    parameters, named values) under ``detectors`` instead of ``rules`` and ``states``."""
+    x, mr = config.build_detectors()
+    detectors = []
+    for detector, values in zip((*x, *mr), state["states"], strict=False):
+        full = detector.state()
+        detectors.append({**full, "state": dict(zip(full["state"], values, strict=True))})
+    old = {k: v for k, v in state.items() if k not in ("rules", "states")}
+    return {**old, "format": 1, "detectors": detectors}
 
 
 def test_restore_with_changed_rules_starts_detectors_fresh():
@@ -178,10 +193,10 @@ def test_restore_with_changed_rules_starts_detectors_fresh():
     assert b is not None
     for i in range(7):
         monitor.update(Reading("s", 2000.0 + i, b.center + 0.3 * b.sigma))
-    same = StreamMonitor.restore(monitor.snapshot(), config)
+    same = StreamMonitor.from_state(monitor.state(), config)
     assert same.update(Reading("s", 3000.0, b.center + 0.3 * b.sigma)).signals
-    other = StreamMonitor.restore(
-        monitor.snapshot(), MonitorSettings(learn_count=20, rules="run-one-side(length=9)")
+    other = StreamMonitor.from_state(
+        monitor.state(), MonitorSettings(learn_count=20, rules="run-one-side(length=9)")
     )
     assert not other.update(Reading("s", 3000.0, b.center + 0.3 * b.sigma)).signals
 
@@ -201,12 +216,12 @@ def test_a_checkpoint_written_by_the_separate_detectors_restores_to_the_same_sta
     doc = json.loads(CHECKPOINT_BEFORE_FUSED.read_text())
     saved, values = doc["checkpoint"], doc["readings"]
     config = MonitorSettings(learn_count=20, rules="nelson,ewma,cusum")
-    restored = StreamMonitor.restore(json.loads(json.dumps(saved)), config)
-    assert restored.snapshot() == saved
+    restored = StreamMonitor.from_state(json.loads(json.dumps(saved)), config)
+    assert restored.state() == saved
     assert any(state and state[0] for state in saved["states"]), "live run-test state"
     whole = StreamMonitor(saved["stream"], config)
     feed(whole, values)
-    assert whole.snapshot() == saved
+    assert whole.state() == saved
     later = [50.0 + 3.5 * (-1) ** i for i in range(40)]
     start = len(values) * 60.0
     got, expected = feed(restored, later, start=start), feed(whole, later, start=start)
@@ -214,14 +229,37 @@ def test_a_checkpoint_written_by_the_separate_detectors_restores_to_the_same_sta
     assert any(o.signals for o in got)
 
 
-def test_a_format_1_checkpoint_restores_to_the_same_state():
-    """Format 1 kept each detector's full snapshot (parameters included) under ``detectors``."""
-    doc = json.loads(CHECKPOINT_BEFORE_FUSED.read_text())
-    saved = doc["checkpoint"]
+CHECKPOINT_FORMAT_1 = DATA / "checkpoint-format-1.json"
+
+
+@pytest.mark.parametrize("path", [CHECKPOINT_FORMAT_1, CHECKPOINT_BEFORE_FUSED], ids=["1", "2"])
+def test_an_old_checkpoint_continues_as_a_monitor_that_never_stopped(path):
+    """Each file was written by an earlier version from the same readings: format 1 (every
+    detector's full state, parameters included, under ``detectors``) and format 2 by the
+    separate detectors. Each restores to the state this version reaches from those readings,
+    and the monitor then gives the same signals as one that never stopped."""
+    doc = json.loads(path.read_text())
+    saved, values = doc["checkpoint"], doc["readings"]
     config = MonitorSettings(learn_count=20, rules="nelson,ewma,cusum")
-    x, mr = config.build_detectors()
-    for detector, values in zip((*x, *mr), saved["states"], strict=True):
-        detector.set_state(values)
-    old = {k: v for k, v in saved.items() if k not in ("states", "rules")}
-    old = {**old, "format": 1, "detectors": [d.snapshot() for d in (*x, *mr)]}
-    assert StreamMonitor.restore(json.loads(json.dumps(old)), config).snapshot() == saved
+    whole = StreamMonitor(saved["stream"], config)
+    feed(whole, values)
+    restored = StreamMonitor.from_state(json.loads(json.dumps(saved)), config)
+    assert restored.state() == whole.state()
+    live = [s for s in whole.state()["states"] if s and (s[0] or s[1])]
+    assert len(live) >= 3, "the checkpoint carries live run-test, EWMA and CUSUM state"
+    later = [50.0 + 3.5 * (-1) ** i for i in range(40)] + [52.5 + 0.1 * i for i in range(10)]
+    start = len(values) * 60.0
+    got, expected = feed(restored, later, start=start), feed(whole, later, start=start)
+    assert [o.signals for o in got] == [o.signals for o in expected]
+    assert len({s.rule for o in got for s in o.signals}) >= 2
+    assert restored.state() == whole.state()
+
+
+def test_a_format_1_checkpoint_under_other_parameters_restarts_its_detectors():
+    doc = json.loads(CHECKPOINT_FORMAT_1.read_text())
+    saved = doc["checkpoint"]
+    config = MonitorSettings(learn_count=20, rules="nelson,ewma,cusum(h=4)")
+    restored = StreamMonitor.from_state(saved, config)
+    fresh = StreamMonitor(saved["stream"], config, baseline=restored.baseline)
+    assert restored.state()["states"] == fresh.state()["states"]
+    assert restored.count == saved["count"]

@@ -4,7 +4,7 @@
 and ``stats/smoothing.py`` are the reference (each is checked against a batch re-scan in
 ``test_rules.py``). Here the fused path must give exactly the reference's signals, in the same
 order, and the same checkpoint state, at every prefix of hypothesis-drawn streams, across a
-JSON snapshot and restore at any point.
+JSON state round trip (``state()`` then ``from_state``) at any point.
 """
 
 from __future__ import annotations
@@ -67,7 +67,8 @@ class Reference:
         return out
 
     def states(self) -> list:
-        return [d.state() for d in (*self.x, *self.mr)]
+        """Each detector's state values, in order: what the fused path's ``state()`` keeps."""
+        return [list(d.state()["state"].values()) for d in (*self.x, *self.mr)]
 
 
 @PROPERTY
@@ -76,15 +77,14 @@ def test_fused_path_gives_the_reference_signals_in_order_at_every_prefix(specs, 
     reference = Reference(specs)
     plan = FusedPlan(specs)
     fused = FusedRules(plan)
-    assert fused.states() == reference.states()
+    assert fused.state()["states"] == reference.states()
     for index, (z, mr) in enumerate(stream):
         if index == cut:  # a checkpoint through JSON, then a new object continues
-            saved = json.loads(json.dumps(fused.states()))
-            fused = FusedRules(plan)
-            fused.set_states(saved, position=index - 1 if index else None)
+            saved = json.loads(json.dumps(fused.state()))
+            fused = FusedRules.from_state(saved, plan, position=index - 1 if index else None)
         expected = reference.update(index, z, mr)
         assert fused.update(index, z, mr) == expected
-        assert fused.states() == reference.states()
+        assert fused.state()["states"] == reference.states()
 
 
 @pytest.mark.parametrize("preset", sorted(PRESETS))
@@ -107,7 +107,7 @@ def test_long_seeded_streams_agree_and_signal(preset):
         assert fused.update(index, x, mr) == expected
         seen.update(s.rule for s in expected)
     assert seen == {s.rule for s in specs}
-    assert fused.states() == reference.states()
+    assert fused.state()["states"] == reference.states()
 
 
 def test_the_fused_path_runs_every_detector_there_is():
@@ -122,7 +122,7 @@ def test_a_pickled_stream_continues_identically():
     for i in range(30):
         fused.update(i, 1.5 * math.sin(i), 0.4)
     copy = pickle.loads(pickle.dumps(fused))
-    assert copy.states() == fused.states()
+    assert copy.state()["states"] == fused.state()["states"]
     assert [copy.update(30 + i, 2.5, 0.1) for i in range(5)] == [
         fused.update(30 + i, 2.5, 0.1) for i in range(5)
     ]
@@ -132,10 +132,10 @@ def test_a_pickled_stream_continues_identically():
 def test_non_finite_input_is_refused_before_any_change(z, mr):
     fused = FusedRules(FusedPlan(parse_rules("nelson, ewma, cusum")))
     fused.update(0, 1.5, None)
-    before = fused.states()
+    before = fused.state()["states"]
     with pytest.raises(ValueError, match="not finite"):
         fused.update(1, z, mr)
-    assert fused.states() == before
+    assert fused.state()["states"] == before
 
 
 def test_parameters_are_checked_once_with_the_detectors_messages():
@@ -145,7 +145,22 @@ def test_parameters_are_checked_once_with_the_detectors_messages():
 
 def test_a_state_of_the_wrong_shape_is_refused():
     fused = FusedRules(FusedPlan(parse_rules("western-electric")))
+    plan = fused.state()["rules"]
     with pytest.raises(ValueError, match="5 detector states"):
-        fused.set_states([[]])
+        FusedRules.from_state({"rules": plan, "states": [[]]}, fused._plan)
     with pytest.raises(ValueError, match="run-one-side: cannot use the saved state"):
-        fused.set_states([[], [0, 0, None], [0, 0, None], [0], []])
+        states = [[], [0, 0, None], [0, 0, None], [0], []]
+        FusedRules.from_state({"rules": plan, "states": states}, fused._plan)
+
+
+def test_a_state_saved_under_other_rules_starts_afresh():
+    """Counts made under other rules or parameters mean nothing under these."""
+    plan = FusedPlan(parse_rules("run-one-side"))
+    fused = FusedRules(plan)
+    for i in range(5):
+        fused.update(i, 0.5, None)
+    saved = fused.state()
+    assert saved["rules"] == "run-one-side(length=8)"
+    assert FusedRules.from_state(saved, plan).state() == saved
+    other = FusedPlan(parse_rules("run-one-side(length=9)"))
+    assert FusedRules.from_state(saved, other).state() == FusedRules(other).state()

@@ -127,8 +127,8 @@ def assert_monitors_match_the_store(store: Store, pipe: Pipeline) -> None:
     pipe.checkpoint_all(now=T0)
     again = pipeline(store)
     again.restore()
-    assert {s: m.snapshot() for s, m in again.monitors.items()} == {
-        s: m.snapshot() for s, m in pipe.monitors.items()
+    assert {s: m.state() for s, m in again.monitors.items()} == {
+        s: m.state() for s, m in pipe.monitors.items()
     }
 
 
@@ -269,10 +269,10 @@ def test_a_huge_value_on_a_monitored_stream_is_refused_and_changes_nothing(value
     monitor = StreamMonitor("s", SETTINGS, baseline=baseline)
     for i in range(5):
         assert monitor.update(Reading("s", T0 + i, 0.001 * i)).accepted
-    before = monitor.snapshot()
+    before = monitor.state()
     outcome = monitor.update(Reading("s", T0 + 10, value))
     assert (outcome.accepted, outcome.reason) == (False, "off-scale")
-    assert monitor.snapshot() == before
+    assert monitor.state() == before
     # and the stream goes on: the next real reading is judged as if nothing had come
     assert monitor.update(Reading("s", T0 + 11, 0.5)).signals
 
@@ -280,10 +280,10 @@ def test_a_huge_value_on_a_monitored_stream_is_refused_and_changes_nothing(value
 def test_a_learning_stream_refuses_a_moving_range_that_overflows():
     monitor = StreamMonitor("s", SETTINGS)
     assert monitor.update(Reading("s", T0, 1e308)).accepted  # on its own, a finite value
-    before = monitor.snapshot()
+    before = monitor.state()
     outcome = monitor.update(Reading("s", T0 + 1, -1e308))
     assert (outcome.accepted, outcome.reason) == (False, "off-scale")
-    assert monitor.snapshot() == before
+    assert monitor.state() == before
 
 
 @pytest.mark.parametrize("sigma", [5e-324, 1e-310, 0.0, -1.0, math.inf, math.nan])
@@ -354,7 +354,7 @@ def test_a_row_the_database_refuses_is_a_store_refused_dead_letter_and_the_rest_
     for item in batch:
         if item.reading.stream == "a" and item.reading.value != 13.0:
             alone.update(item.reading)
-    assert pipe.monitors["a"].snapshot() == alone.snapshot()
+    assert pipe.monitors["a"].state() == alone.state()
     assert_monitors_match_the_store(fresh_db, pipe)
     # later batches go as one again
     assert pipe.process([_good("b", 50)], now=T0).dead == []
@@ -405,13 +405,13 @@ def test_an_engine_failure_after_the_monitor_moved_is_undone_from_the_store(fres
         fresh_db.save_checkpoint("a", state, now=T0)
     again = pipeline(fresh_db)
     again.restore()
-    before = again.monitors["a"].snapshot()
+    before = again.monitors["a"].state()
     result = again.process([_good("b", 1), _good("a", 20), _good("b", 2)], now=T0)
     assert [reason for _, reason in result.dead] == ["engine-error"]
     assert [o.reading.stream for o in result.outcomes] == ["b", "b"]
     (letter,) = fresh_db.dead_letters()
     assert "stream 'a'" in letter.reason and "TypeError" in letter.reason
-    assert again.monitors["a"].snapshot() == before
+    assert again.monitors["a"].state() == before
     assert "one at a time" in caplog.text
 
 

@@ -32,7 +32,7 @@ from limitwatch.stats.rules import (
     RunOneSide,
     UnknownRuleError,
     build_detectors,
-    detector_from_snapshot,
+    detector_from_state,
     parse_rules,
 )
 from limitwatch.stats.signal import Detector, Signal
@@ -284,7 +284,7 @@ def test_registry_is_covered_by_oracles_and_ids_match_classes():
 
 @pytest.mark.parametrize("rule", sorted(DETECTORS))
 def test_defaults_are_the_documented_ones(rule):
-    params = DETECTORS[rule]().snapshot()["params"]
+    params = DETECTORS[rule]().state()["params"]
     assert params == pytest.approx(DEFAULTS[rule])
 
 
@@ -299,7 +299,7 @@ def test_each_detector_is_small_documented_and_follows_the_protocol(rule):
 
 
 # --------------------------------------------------------------------------------------------
-# Incremental == batch, snapshots, pickling, reset
+# Incremental == batch, state round trips, pickling, reset
 # --------------------------------------------------------------------------------------------
 
 
@@ -337,16 +337,19 @@ def test_seeded_long_streams_signal_and_agree_with_batch(rule, params):
 @pytest.mark.parametrize(("rule", "params"), CASES, ids=CASE_IDS)
 @PROPERTY
 @given(values=z_streams, cut=st.integers(0, 50))
-def test_json_snapshot_in_the_middle_changes_nothing(rule, params, values, cut):
+def test_state_round_trip_in_the_middle_changes_nothing(rule, params, values, cut):
+    """Property, for every detector in the registry: ``from_state(state())`` through JSON at
+    any point, then continuing, gives exactly the signals of a detector that never stopped."""
     values = stream_for(rule, values)
     cut = min(cut, len(values))
     whole = feed(DETECTORS[rule](**params), values)
     first = DETECTORS[rule](**params)
     before = feed(first, values[:cut])
-    data = json.loads(json.dumps(first.snapshot(), allow_nan=False))
-    restored = detector_from_snapshot(data)
+    data = json.loads(json.dumps(first.state(), allow_nan=False))
+    restored = detector_from_state(data)
     assert type(restored) is DETECTORS[rule]
-    assert restored.snapshot() == first.snapshot()
+    assert restored.state() == first.state()
+    assert DETECTORS[rule].from_state(data).state() == first.state()
     after = feed(restored, values[cut:], first_index=cut)
     assert before + after == whole
 
@@ -361,7 +364,7 @@ def test_pickled_detector_continues_identically(rule, params, values, cut):
     det = DETECTORS[rule](**params)
     before = feed(det, values[:cut])
     copy = pickle.loads(pickle.dumps(det))
-    assert copy.snapshot() == det.snapshot()
+    assert copy.state() == det.state()
     assert before + feed(copy, values[cut:], cut) == whole
 
 
@@ -374,7 +377,7 @@ def test_reset_behaves_like_a_fresh_detector(rule, params, values, cut):
     det = DETECTORS[rule](**params)
     feed(det, values[:cut])
     det.reset()
-    assert det.snapshot() == DETECTORS[rule](**params).snapshot()
+    assert det.state() == DETECTORS[rule](**params).state()
     assert feed(det, values[cut:], 1000) == feed(DETECTORS[rule](**params), values[cut:], 1000)
 
 
@@ -388,22 +391,22 @@ def test_reset_behaves_like_a_fresh_detector(rule, params, values, cut):
 def test_non_finite_values_are_refused_and_leave_state_alone(rule, bad):
     det = DETECTORS[rule]()
     feed(det, stream_for(rule, [0.5, 1.5, -0.3]))
-    before = det.snapshot()
+    before = det.state()
     with pytest.raises(ValueError, match="finite"):
         det.update(3, bad)
-    assert det.snapshot() == before
+    assert det.state() == before
     assert det.update(3, 0.1) is None
 
 
-@pytest.mark.parametrize("rule", sorted(r for r in DETECTORS if DETECTORS[r]().snapshot()["state"]))
+@pytest.mark.parametrize("rule", sorted(r for r in DETECTORS if DETECTORS[r]().state()["state"]))
 @pytest.mark.parametrize("index", [0, 1, 3])
 def test_stateful_detectors_refuse_positions_out_of_sequence(rule, index):
     det = DETECTORS[rule]()
     det.update(1, 0.5)
-    before = det.snapshot()
+    before = det.state()
     with pytest.raises(ValueError, match="expected reading position 2"):
         det.update(index, 0.5)
-    assert det.snapshot() == before
+    assert det.state() == before
     det.update(2, 0.5)  # the right position is still accepted
 
 
@@ -645,19 +648,19 @@ def test_factory_gives_fresh_unshared_detectors():
     assert all(a is not b for a, b in zip(one, two, strict=True))
     for det in one:
         feed(det, stream_for(det.rule, [2.5, 2.6, 2.7, 2.8, 2.9, 1.1, 1.2, 1.3, 1.4]))
-    untouched = [d.snapshot() for d in build_detectors(specs)]
-    assert [d.snapshot() for d in two] == untouched
-    assert sum(a.snapshot() != b for a, b in zip(one, untouched, strict=True)) >= 8
+    untouched = [d.state() for d in build_detectors(specs)]
+    assert [d.state() for d in two] == untouched
+    assert sum(a.state() != b for a, b in zip(one, untouched, strict=True)) >= 8
 
 
-def test_snapshot_of_the_wrong_rule_is_refused():
-    data = RunOneSide().snapshot()
+def test_a_state_of_the_wrong_rule_or_keys_is_refused():
+    data = RunOneSide().state()
     with pytest.raises(ValueError, match="run-one-side"):
-        BeyondLimits.from_snapshot(data)
+        BeyondLimits.from_state(data)
     with pytest.raises(UnknownRuleError):
-        detector_from_snapshot({**data, "rule": "wiggle"})
+        detector_from_state({**data, "rule": "wiggle"})
     with pytest.raises(ValueError, match="state"):
-        RunOneSide.from_snapshot({**data, "state": {"run": 0}})
+        RunOneSide.from_state({**data, "state": {"run": 0}})
 
 
 def test_public_names_exist():

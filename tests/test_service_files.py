@@ -94,7 +94,7 @@ def test_a_file_source_killed_mid_file_resumes_at_the_right_line(tmp_path):
             if s == stream:
                 monitor.update(Reading(s, parse_time(format_time(t)), v))
         assert checkpoints(db)[stream]["count"] == monitor.count == 1500
-        assert checkpoints(db)[stream] == monitor.snapshot()
+        assert checkpoints(db)[stream] == monitor.state()
 
 
 def test_lines_appended_later_are_read_and_a_silent_stream_goes_stale(tmp_path):

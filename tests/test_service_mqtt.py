@@ -155,7 +155,7 @@ def test_kill_9_repeatedly_loses_nothing_and_applies_each_reading_once(broker, t
         for _, payload in [m for m in shifted if f"/{stream}/" in m[0]]:
             body = json.loads(payload)
             monitor.update(Reading(stream, body["t"], body["v"], seq=body["seq"]))
-        assert checkpoints(db)[stream] == json.loads(json.dumps(monitor.snapshot())), stream
+        assert checkpoints(db)[stream] == json.loads(json.dumps(monitor.state())), stream
     # Notifications: every event reached the receiver, none was invented, and a receiver that
     # honours the event id saw each one exactly once. A kill -9 landing in the milliseconds
     # between the receiver's 200 and the outbox recording it can repeat a delivery; the repeat

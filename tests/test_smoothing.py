@@ -1,7 +1,8 @@
 """EWMA and tabular CUSUM: checks against reference computations and a handbook worked example.
 
-The generic incremental-vs-batch, snapshot and pickling properties for these two detectors run
-with every other detector in tests/test_rules.py; here are the checks specific to them.
+The generic incremental-vs-batch, state round trip and pickling properties for these two
+detectors run with every other detector in tests/test_rules.py; here are the checks specific to
+them.
 """
 
 from __future__ import annotations
@@ -43,7 +44,7 @@ def test_ewma_statistic_matches_a_linear_filter(values, lam):
     got = []
     for i, z in enumerate(values):
         assert det.update(i, z) is None
-        got.append(det.snapshot()["state"]["w"])
+        got.append(det.state()["state"]["w"])
     want = scipy.signal.lfilter([lam], [1.0, -(1.0 - lam)], values)
     np.testing.assert_allclose(got, want, rtol=1e-9, atol=1e-12)
 
@@ -75,9 +76,9 @@ def test_ewma_restarts_from_zero_after_a_signal():
     s = det.update(0, 3.0)  # w = 1.5 > 1.0 * sqrt(1/3 * 0.75) = 0.5
     assert (s.side, s.statistic, s.involved) == ("upper", 1.5, (0,))
     assert s.limit == pytest.approx(0.5)
-    assert det.snapshot()["state"] == {"w": 0.0, "n": 0, "last": 0}
+    assert det.state()["state"] == {"w": 0.0, "n": 0, "last": 0}
     assert det.update(1, 0.4) is None  # w = 0.2, limit back at the first-reading value 0.5
-    assert det.snapshot()["state"]["w"] == 0.2
+    assert det.state()["state"]["w"] == 0.2
 
 
 def test_ewma_lower_side_reports_the_negative_limit():
@@ -127,7 +128,7 @@ def test_cusum_reproduces_the_handbook_worked_example():
         if s is not None:
             found.append(s)
             break
-        state = det.snapshot()["state"]
+        state = det.state()["state"]
         upper.append(round(state["up"], 2))
         lower.append(round(state["down"], 2))
     # Periods 1-5 of the example's table (from memory): C+ 0, 0, 0, 1.16, 2.82; C- 0.05, 1.56,
@@ -149,13 +150,13 @@ def test_cusum_lower_side_reports_the_positive_sum_and_h():
 
 def test_cusum_restarts_both_sums_at_the_head_start():
     det = Cusum(k=0.5, h=4.0, headstart=2.0)
-    fresh = det.snapshot()
+    fresh = det.state()
     assert fresh["state"]["up"] == fresh["state"]["down"] == 2.0
     s = feed(det, [1.5, 1.5])  # C+ = 2 + 1 + 1 = 4, not above h
-    assert s == [] and det.snapshot()["state"]["up"] == 4.0
+    assert s == [] and det.state()["state"]["up"] == 4.0
     s = det.update(2, 0.6)
     assert s.statistic == pytest.approx(4.1) and s.involved == (0, 1, 2)
-    state = det.snapshot()["state"]
+    state = det.state()["state"]
     assert (state["up"], state["down"], state["up_len"], state["down_len"]) == (2.0, 2.0, 0, 0)
 
 
@@ -171,12 +172,12 @@ def test_head_start_signals_a_shift_present_from_the_start_sooner():
     assert np.mean(fir) < 0.8 * np.mean(plain)
 
 
-def test_cusum_snapshot_is_plain_json():
+def test_cusum_state_is_plain_json():
     det = Cusum(k=0.25, h=3.0, headstart=1.0)
     feed(det, [0.3, 0.9, -0.2])
-    data = json.loads(json.dumps(det.snapshot(), allow_nan=False))
+    data = json.loads(json.dumps(det.state(), allow_nan=False))
     assert data["params"] == {"k": 0.25, "h": 3.0, "headstart": 1.0}
-    assert Cusum.from_snapshot(data).snapshot() == det.snapshot()
+    assert Cusum.from_state(data).state() == det.state()
 
 
 @pytest.mark.parametrize(

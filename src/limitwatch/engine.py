@@ -69,9 +69,9 @@ REFUSAL_WORDS: dict[str, str] = {
 }
 """Each refusal reason in a sentence, for people reading a replay or a dead letter."""
 
-SNAPSHOT_FORMAT = 2
-"""Checkpoint layout written by :meth:`StreamMonitor.snapshot`. Format 1 (every detector's
-full snapshot, parameters included) is still read."""
+CHECKPOINT_FORMAT = 2
+"""Checkpoint layout written by :meth:`StreamMonitor.state`. Format 1 (every detector's full
+``state()``, parameters included) is still read."""
 
 
 @dataclass(frozen=True)
@@ -96,12 +96,11 @@ class MonitorSettings:
     x_specs: tuple[RuleSpec, ...] = field(init=False, repr=False, compare=False)
     """The selected detectors of the X chart, then (``mr_specs``) of the MR chart."""
     mr_specs: tuple[RuleSpec, ...] = field(init=False, repr=False, compare=False)
-    detectors_key: str = field(init=False, repr=False, compare=False)
-    """Every detector with all its parameters, X chart first: a checkpoint whose key differs
-    was written under other rules, and its run counts must not be reused."""
     plan: FusedPlan = field(init=False, repr=False, compare=False)
     """Every selected test's parameters, checked once here: each stream's tests run in one
-    :class:`~limitwatch.stats.fused.FusedRules`, made from this plan without checking again."""
+    :class:`~limitwatch.stats.fused.FusedRules`, made from this plan without checking again.
+    Its ``key`` names every detector with all its parameters, X chart first: a checkpoint
+    whose key differs was written under other rules, and its run counts are not reused."""
 
     def __post_init__(self) -> None:
         specs = parse_rules(self.rules) if isinstance(self.rules, str) else tuple(self.rules)
@@ -109,7 +108,6 @@ class MonitorSettings:
         object.__setattr__(self, "x_specs", tuple(s for s in specs if _chart(s) == "x"))
         object.__setattr__(self, "mr_specs", tuple(s for s in specs if _chart(s) == "mr"))
         object.__setattr__(self, "plan", FusedPlan((*self.x_specs, *self.mr_specs)))
-        object.__setattr__(self, "detectors_key", _detectors_key(self))
         if self.learn_count < self.min_points:
             raise ValueError(
                 f"learn_count ({self.learn_count}) is below min_points ({self.min_points}): "
@@ -201,6 +199,9 @@ class StreamMonitor:
     def set_baseline(self, baseline: Baseline, version: int | None = None) -> None:
         """Lock a baseline (fitted, stored or refitted) and start every detector afresh: run
         tests counted against old limits mean nothing against new ones."""
+        self._lock(baseline, version, FusedRules(self.settings.plan))
+
+    def _lock(self, baseline: Baseline, version: int | None, rules: FusedRules) -> None:
         try:
             check_usable(baseline)
         except BaselineError as exc:
@@ -210,7 +211,7 @@ class StreamMonitor:
         self._center = baseline.center
         self._sigma = baseline.sigma
         self._learning = None
-        self._rules = FusedRules(self.settings.plan)
+        self._rules = rules
 
     # -- the hot path ---------------------------------------------------------------------------
 
@@ -330,39 +331,39 @@ class StreamMonitor:
 
     # -- checkpoints ----------------------------------------------------------------------------
 
-    def snapshot(self) -> dict[str, Any]:
-        """Plain JSON-ready state; :meth:`restore` continues exactly where this one stopped.
+    def state(self) -> dict[str, Any]:
+        """Plain JSON-ready state; :meth:`from_state` continues exactly where this one stopped.
 
-        Detectors are kept as their state values only (``states``, X chart first, then MR);
-        their parameters are named once, in ``rules`` (the settings' :attr:`~MonitorSettings.
-        detectors_key`), since every stream under the same settings has the same ones.
+        The tests' counters are their :meth:`~limitwatch.stats.fused.FusedRules.state`:
+        ``rules`` names every detector and its parameters once (the same for every stream
+        under the same settings) and ``states`` holds each one's values, X chart first.
         """
-        locked = self.baseline is not None
+        rules = self._rules
+        baseline = self.baseline
         return {
-            "format": SNAPSHOT_FORMAT,
+            "format": CHECKPOINT_FORMAT,
             "stream": self.stream,
             "count": self.count,
             "last_time": self._last_time,
             "last_value": self._last_value,
             "last_seq": self._last_seq,
             "learning": [] if self._learning is None else list(self._learning),
-            "baseline": self.baseline.to_dict() if locked else None,  # type: ignore[union-attr]
+            "baseline": None if baseline is None else baseline.to_dict(),
             "baseline_version": self.baseline_version,
-            "rules": self.settings.detectors_key if locked else None,
-            "states": [] if self._rules is None else self._rules.states(),
+            **({"rules": None, "states": []} if rules is None else rules.state()),
         }
 
     @classmethod
-    def restore(cls, data: dict[str, Any], settings: MonitorSettings) -> StreamMonitor:
-        """Rebuild a monitor from :meth:`snapshot` (this format or format 1). ``settings`` come
-        from the current config; when their detectors differ from the snapshot's, detectors
+    def from_state(cls, data: dict[str, Any], settings: MonitorSettings) -> StreamMonitor:
+        """Rebuild a monitor from :meth:`state` (this format or format 1). ``settings`` come
+        from the current config; when their detectors differ from the checkpoint's, detectors
         restart (and say so by their fresh state) rather than mixing counts from different
         rules."""
         found = data.get("format")
-        if found not in (1, SNAPSHOT_FORMAT):
+        if found not in (1, CHECKPOINT_FORMAT):
             raise ValueError(
                 f"checkpoint for stream {data.get('stream')!r} has format {found!r}, "
-                f"this version reads formats 1 and {SNAPSHOT_FORMAT}"
+                f"this version reads formats 1 and {CHECKPOINT_FORMAT}"
             )
         monitor = cls(data["stream"], settings)
         monitor.count = data["count"]
@@ -372,25 +373,31 @@ class StreamMonitor:
         if data["baseline"] is None:
             monitor._learning = list(data["learning"])
             return monitor
-        # The store wrote this baseline: its numbers are trusted, not converted again.
-        monitor.set_baseline(Baseline.from_stored(data["baseline"]), data["baseline_version"])
         if found == 1:
-            monitor._restore_format_1_detectors(data["detectors"])
-        elif data["rules"] == settings.detectors_key:
+            rules = _format_1_rules(settings, data["detectors"])
+        else:
+            # The checkpoint holds the fused rules' state (``rules`` and ``states``) as is.
             # Every detector's state ends with the position of the last reading it saw. JSON
             # gives each its own int object (28 bytes); the live monitor shares one.
-            monitor._rules.set_states(data["states"], position=monitor.count - 1)  # type: ignore[union-attr]
+            rules = FusedRules.from_state(data, settings.plan, position=monitor.count - 1)
+        # The store wrote this baseline: its numbers are trusted, not converted again.
+        monitor._lock(Baseline.from_stored(data["baseline"]), data["baseline_version"], rules)
         return monitor
 
-    def _restore_format_1_detectors(self, saved: list[dict[str, Any]]) -> None:
-        """Format 1 kept each detector's full snapshot, parameters included."""
-        x, mr = self.settings.build_detectors()
-        fresh = [*x, *mr]
-        if [s.get("rule") for s in saved] == [d.rule for d in fresh] and all(
-            _same_params(s, d.snapshot()) for s, d in zip(saved, fresh, strict=True)
-        ):
-            restored = [type(d).from_snapshot(s) for d, s in zip(fresh, saved, strict=True)]
-            self._rules.set_states([d.state() for d in restored])  # type: ignore[union-attr,attr-defined]
+
+def _format_1_rules(settings: MonitorSettings, saved: list[dict[str, Any]]) -> FusedRules:
+    """Format 1 kept each detector's full ``state()``, parameters included: its counts go on
+    when the detectors and their parameters are still the settings' ones."""
+    x, mr = settings.build_detectors()
+    fresh = [*x, *mr]
+    plan = settings.plan
+    if [s.get("rule") for s in saved] != [d.rule for d in fresh] or not all(
+        _same_params(s, d.state()) for s, d in zip(saved, fresh, strict=True)
+    ):
+        return FusedRules(plan)
+    restored = [type(d).from_state(s) for d, s in zip(fresh, saved, strict=True)]
+    states = [list(d.state()["state"].values()) for d in restored]
+    return FusedRules.from_state({"rules": plan.key, "states": states}, plan)
 
 
 _isfinite = math.isfinite
@@ -398,20 +405,6 @@ _isfinite = math.isfinite
 
 def _chart(spec: RuleSpec) -> str:
     return DETECTORS[spec.rule].chart
-
-
-def _detectors_key(settings: MonitorSettings) -> str:
-    """``rule(param=value, ...)`` for every detector, defaults included, X chart first.
-
-    >>> _detectors_key(MonitorSettings(rules="mr-beyond-limit, beyond-limits"))
-    'beyond-limits(k=3.0), mr-beyond-limit(limit=3.6858865663777776)'
-    """
-    x, mr = settings.build_detectors()
-    described = []
-    for detector in (*x, *mr):
-        params = sorted(detector.snapshot()["params"].items())
-        described.append(f"{detector.rule}({', '.join(f'{k}={v!r}' for k, v in params)})")
-    return ", ".join(described)
 
 
 def _same_params(saved: dict[str, Any], fresh: dict[str, Any]) -> bool:

@@ -30,7 +30,7 @@ returns :class:`Figure` objects that ``limitwatch bench`` prints or writes as JS
     Resident memory (what an operator sees in ``ps``) gained per stream once many streams are
     restored from their checkpoints, with the Python memory tracemalloc counts beside it, and
     the CPU time that restore takes (what a restart does: :meth:`~limitwatch.store.Store.
-    iter_checkpoints` and :meth:`~limitwatch.engine.StreamMonitor.restore` for each stream).
+    iter_checkpoints` and :meth:`~limitwatch.engine.StreamMonitor.from_state` for each stream).
 
 On a shared machine wall-clock rates swing two or three times with other people's work, so
 rates are given per second of this process's CPU time (``time.process_time``), with wall-clock

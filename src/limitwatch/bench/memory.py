@@ -55,7 +55,7 @@ def _checkpointed_store(path: Path, streams: int, seed: int) -> None:
             for k in range(3):
                 t = T0 + 60.0 * (counts[i] + k)
                 monitor.update(Reading(name, t, centers[i] + sigmas[i] * values[k][i]))
-            chunk[name] = monitor.snapshot()
+            chunk[name] = monitor.state()
             if len(chunk) >= 5_000:
                 store.save_checkpoints(chunk, now=T0)
                 chunk = {}
@@ -151,7 +151,7 @@ def measure_memory(sizes: Sizes, workdir: Path) -> list[Figure]:
             {
                 **conditions,
                 "measured": "CPU time of Store.open + Pipeline.restore (checkpoints read "
-                "and parsed, StreamMonitor.restore per stream); the first run may read the "
+                "and parsed, StreamMonitor.from_state per stream); the first run may read the "
                 "newly written database from disk (system CPU time), which the median leaves out",
             },
             target=("<", 2.0) if full_size else None,

@@ -136,7 +136,7 @@ class Pipeline(ItemByItem):
                 result.signals.extend(gone)
             due = self._due(touched, [m.stream for m, _ in fitted], now)
             if due:
-                self.store.save_checkpoints({s: self.monitors[s].snapshot() for s in due}, now=now)
+                self.store.save_checkpoints({s: self.monitors[s].state() for s in due}, now=now)
             for source, offsets in (file_offsets or {}).items():
                 if offsets:
                     self.store.save_file_offsets(source, offsets, now=now)

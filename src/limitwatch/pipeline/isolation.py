@@ -106,7 +106,7 @@ class ItemByItem(PipelineState):
                 due = self._due({stream: monitor}, fitted, now)
                 if due:
                     self.store.save_checkpoints(
-                        {s: self.monitors[s].snapshot() for s in due}, now=now
+                        {s: self.monitors[s].state() for s in due}, now=now
                     )
                 self._save_position(item, now)
                 fence()

@@ -103,7 +103,7 @@ class PipelineState:
         try:
             for stream, state in self.store.iter_checkpoints():
                 try:
-                    monitor = StreamMonitor.restore(state, self._settings_for(stream))
+                    monitor = StreamMonitor.from_state(state, self._settings_for(stream))
                 except Exception as exc:
                     if store_failed(exc):
                         raise
@@ -212,7 +212,7 @@ class PipelineState:
         if streams:
             with self.store.transaction():
                 self.store.save_checkpoints(
-                    {s: self.monitors[s].snapshot() for s in streams}, now=now
+                    {s: self.monitors[s].state() for s in streams}, now=now
                 )
         self._saved(streams)
         return len(streams)
@@ -266,7 +266,7 @@ class PipelineState:
         try:
             state = self.store.load_checkpoint(stream)
             if state is not None:
-                monitor = StreamMonitor.restore(state, self._settings_for(stream))
+                monitor = StreamMonitor.from_state(state, self._settings_for(stream))
                 for reading in self.store.readings_after(stream, monitor.last_time):
                     monitor.update(reading)
                 self.monitors[stream] = monitor
@@ -294,7 +294,7 @@ class PipelineState:
             # readings after a crash.
             with self.store.transaction():
                 self.store.save_checkpoints(
-                    {s: self.monitors[s].snapshot() for s in changed}, now=now
+                    {s: self.monitors[s].state() for s in changed}, now=now
                 )
             self._saved(changed)
         return changed

@@ -42,7 +42,7 @@ Methods
     * Zone tests (``beyond-limits``, ``two-of-three-zone-a``, ``four-of-five-zone-b``,
       ``run-one-side``, ``hugging-center``, ``avoiding-center``, any parameters): the z line is
       cut at every boundary the tests use; the transitions of each detector are read off the
-      real detector classes (restored from a snapshot, fed one value from each interval), the
+      real detector classes (rebuilt from a state, fed one value from each interval), the
       joint states reachable from the zero state are found breadth first, and equivalent states
       are merged (Moore's partition refinement). No discretisation error: the probabilities are
       normal CDF differences (Champ & Woodall 1987).
@@ -296,7 +296,7 @@ class _DetectorTable:
 
     def __init__(self, spec: RuleSpec, probes: Sequence[float]) -> None:
         fresh = spec.build()
-        snap = fresh.snapshot()
+        snap = fresh.state()
         keys = [k for k in snap["state"] if k != "last"]
         has_last = "last" in snap["state"]
         cls = type(fresh)
@@ -311,13 +311,13 @@ class _DetectorTable:
                 state["last"] = None
             row = []
             for probe in probes:
-                det = cls.from_snapshot(
+                det = cls.from_state(
                     {"rule": snap["rule"], "params": snap["params"], "state": state}
                 )
                 if det.update(0, probe) is not None:
                     row.append(-1)
                     continue
-                after = det.snapshot()["state"]
+                after = det.state()["state"]
                 key = tuple(after[k] for k in keys)
                 if key not in index:
                     index[key] = len(order)
@@ -864,7 +864,7 @@ class _Key:
 
 
 def _spelt_out(spec: RuleSpec) -> str:
-    params = spec.build().snapshot()["params"]
+    params = spec.build().state()["params"]
     return f"{spec.rule}({', '.join(f'{k}={params[k]!r}' for k in sorted(params))})"
 
 

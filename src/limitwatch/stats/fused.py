@@ -14,9 +14,9 @@ boundary, below it; a rule's restart clears only its own two bits), skips the wi
 entirely for a reading in neither of their zones (it cannot complete either), and trusts the
 caller for the position (one more per call) and for finite input. Its results are the reference
 detectors' exactly: the same :class:`~limitwatch.stats.signal.Signal` objects, in the order of
-the selection, and the same checkpoint state (:meth:`FusedRules.states` gives each detector's
-``state()`` list), so checkpoints written before it existed restore unchanged. A hypothesis test
-(``tests/test_fused.py``) holds it to that at every prefix, across a snapshot and restore.
+the selection, and the same checkpoint state (:meth:`FusedRules.state` gives each detector's
+``state()`` values), so checkpoints written before it existed restore unchanged. A hypothesis
+test (``tests/test_fused.py``) holds it to that at every prefix, across a state round trip.
 
 :class:`FusedPlan` holds what every stream under the same settings shares: the parameters,
 checked once when the reference detectors are built from the selection, and the constants
@@ -41,11 +41,11 @@ from __future__ import annotations
 
 import functools
 import math
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from typing import Any
 
 from limitwatch.stats.rules import DETECTORS, RuleSpec
-from limitwatch.stats.signal import Side, Signal
+from limitwatch.stats.signal import Detector, Side, Signal
 
 _INF = math.inf
 _sqrt = math.sqrt
@@ -67,6 +67,16 @@ FUSED_RULES = frozenset(
 )
 """Every detector :class:`FusedRules` runs; a test checks that it is every detector there is,
 so a rule added to the registry must be taught here too."""
+
+
+def _spelt_out(detector: Detector) -> str:
+    """``rule(param=value, ...)``, parameters by name, defaults included.
+
+    >>> _spelt_out(DETECTORS["run-one-side"]())
+    'run-one-side(length=8)'
+    """
+    params = sorted(detector.state()["params"].items())
+    return f"{detector.rule}({', '.join(f'{k}={v!r}' for k, v in params)})"
 
 
 def _lanes(window: int, lane: int) -> int:
@@ -100,6 +110,7 @@ class FusedPlan:
         "ewma",
         "full",
         "hug",
+        "key",
         "mr_limit",
         "order",
         "rank",
@@ -113,8 +124,8 @@ class FusedPlan:
     def __init__(self, specs: Iterable[RuleSpec]) -> None:
         detectors = [spec.build() for spec in specs]
         self.order: tuple[str, ...] = tuple(d.rule for d in detectors)
-        """Rule ids in selection order, X chart first: the order of :meth:`FusedRules.states`
-        and of the signals."""
+        """Rule ids in selection order, X chart first: the order of the states in
+        :meth:`FusedRules.state` and of the signals."""
         if len(set(self.order)) != len(self.order):
             raise ValueError(f"a rule is selected twice: {', '.join(self.order)}")
         by_rule = {d.rule: d for d in detectors}
@@ -124,6 +135,9 @@ class FusedPlan:
         x_first = [r for r in self.order if DETECTORS[r].chart == "x"]
         self.order = (*x_first, *(r for r in self.order if DETECTORS[r].chart == "mr"))
         self.rank = {rule: i for i, rule in enumerate(self.order)}
+        self.key = ", ".join(_spelt_out(by_rule[rule]) for rule in self.order)
+        """Every detector with all its parameters, in :attr:`order`: a saved state whose key
+        differs was counted under other rules, and its counts must not be reused."""
 
         def get(rule: str, name: str, absent: Any) -> Any:
             det = by_rule.get(rule)
@@ -362,11 +376,16 @@ class FusedRules:
             hits = tuple(sorted(hits, key=lambda s: plan.rank[s.rule]))
         return hits
 
-    # -- checkpoints: each reference detector's state() list, in selection order ------------
+    # -- checkpoints -----------------------------------------------------------------------------
 
-    def states(self) -> list[list[Any]]:
-        """What ``[d.state() for d in detectors]`` gives for the reference detectors."""
-        return [self._state_of(rule) for rule in self._plan.order]
+    def state(self) -> dict[str, Any]:
+        """``{"rules": the plan's key, "states": [...]}``, plain JSON-ready data from which
+        :meth:`from_state` continues exactly. ``states`` holds, for each selected rule in the
+        plan's order, the values of its reference detector's ``state()["state"]`` in their
+        order: the counters by position, since the key already names the rules and
+        parameters once (a stream's checkpoint keeps this, for hundreds of thousands of
+        streams)."""
+        return {"rules": self._plan.key, "states": [self._state_of(r) for r in self._plan.order]}
 
     def _state_of(self, rule: str) -> list[Any]:
         last, plan = self._last, self._plan
@@ -386,20 +405,35 @@ class FusedRules:
         }
         return table[rule]()
 
-    def set_states(self, states: Sequence[Sequence[Any]], position: int | None = None) -> None:
-        """Load :meth:`states` output (or the reference detectors' ``state()`` lists, e.g. from
-        a checkpoint). ``position``, when it equals the saved last position, is kept instead of
-        the saved number, so that every stream's counters share the monitor's int."""
+    @classmethod
+    def from_state(
+        cls, data: Mapping[str, Any], plan: FusedPlan, *, position: int | None = None
+    ) -> FusedRules:
+        """The counters :meth:`state` described, for ``plan``; fresh counters when the state
+        was saved under other rules or parameters (its ``rules`` differ from the plan's key),
+        since counts made against other rules mean nothing under these.
+
+        ``position``, when it equals the saved last position, is kept instead of the saved
+        number, so that every stream's counters share the monitor's int rather than holding
+        one JSON gave each of them."""
+        rules = cls(plan)
+        if data.get("rules") == plan.key:
+            rules._load(data["states"], position)
+        return rules
+
+    def _load(self, states: Sequence[Sequence[Any]], position: int | None) -> None:
         plan = self._plan
         if len(states) != len(plan.order):
             raise ValueError(f"{len(plan.order)} detector states expected, got {len(states)}")
         win = 0
         last: Any = None
+        windows = plan.windows  # a restart runs this loop for every stream: lookups hoisted
         for rule, values in zip(plan.order, states):  # noqa: B905 -- lengths checked above
             try:
-                if rule in plan.windows:
+                lanes = windows.get(rule)
+                if lanes is not None:
                     up, down, last = values
-                    lane, window = plan.windows[rule]
+                    lane, window = lanes
                     win |= _spread(up, lane, window) | _spread(down, lane + 1, window)
                 elif rule == "ewma":
                     w, n, last = values

@@ -60,7 +60,7 @@ __all__ = [
     "TwoOfThreeZoneA",
     "UnknownRuleError",
     "build_detectors",
-    "detector_from_snapshot",
+    "detector_from_state",
     "parse_rules",
 ]
 
@@ -264,9 +264,9 @@ def build_detectors(specs: Iterable[RuleSpec]) -> list[Detector]:
     return [spec.build() for spec in specs]
 
 
-def detector_from_snapshot(data: dict[str, Any]) -> Detector:
-    """Rebuild any detector from its :meth:`snapshot` (e.g. a checkpoint row)."""
+def detector_from_state(data: Mapping[str, Any]) -> Detector:
+    """Rebuild any detector from its ``state()`` (e.g. a format 1 checkpoint's entry)."""
     cls = DETECTORS.get(data.get("rule", ""))
     if cls is None:
         raise _unknown(str(data.get("rule")))
-    return cls.from_snapshot(data)
+    return cls.from_state(data)

@@ -51,11 +51,10 @@ from __future__ import annotations
 
 import math
 import operator
-from collections.abc import Sequence
 from typing import Any, ClassVar
 
 from limitwatch.stats.constants import MR_UCL_SIGMA
-from limitwatch.stats.signal import Chart, Detector, Side, Signal
+from limitwatch.stats.signal import Chart, Side, Signal, Stateful
 
 _isfinite = math.isfinite
 
@@ -101,14 +100,13 @@ def _refuse(rule: str, last: int | None, index: int, value: float) -> None:
     )
 
 
-class _Rule:
-    """Shared plumbing: snapshot/restore and repr from the names of parameters and state slots."""
+class _Rule(Stateful):
+    """Shared plumbing: reset and repr from the names of parameters and state slots (the
+    serialisation pair comes from :class:`~limitwatch.stats.signal.Stateful`)."""
 
     __slots__ = ()
     rule: ClassVar[str]
     chart: ClassVar[Chart] = "x"
-    _params: ClassVar[tuple[str, ...]] = ()
-    _state: ClassVar[tuple[str, ...]] = ()
 
     def update(self, index: int, value: float) -> Signal | None:
         raise NotImplementedError  # every rule defines its own
@@ -116,41 +114,6 @@ class _Rule:
     def reset(self) -> None:
         for name in self._state:
             setattr(self, name, None if name == "_last" else 0)
-
-    def snapshot(self) -> dict[str, Any]:
-        return {
-            "rule": self.rule,
-            "params": {name: getattr(self, name) for name in self._params},
-            "state": {name.lstrip("_"): getattr(self, name) for name in self._state},
-        }
-
-    @classmethod
-    def from_snapshot(cls, data: dict[str, Any]) -> Detector:
-        if data.get("rule") != cls.rule:
-            raise ValueError(f"snapshot is for {data.get('rule')!r}, not {cls.rule!r}")
-        state = data["state"]
-        keys = {name.lstrip("_") for name in cls._state}
-        if set(state) != keys:
-            raise ValueError(
-                f"{cls.rule} snapshot state needs keys {sorted(keys)}, got {sorted(state)}"
-            )
-        det = cls(**data["params"])
-        det.set_state([state[name.lstrip("_")] for name in cls._state])
-        return det
-
-    def state(self) -> list[Any]:
-        """The state values in ``_state`` order, the position of the last reading seen last
-        (empty for a rule without state): the compact form a stream's checkpoint keeps. The
-        parameters are the stream's settings, so the checkpoint does not repeat them."""
-        return [getattr(self, name) for name in self._state]
-
-    def set_state(self, values: Sequence[Any]) -> None:
-        """Load :meth:`state` output (e.g. read back from JSON) into this detector."""
-        names = self._state
-        if len(values) != len(names):
-            raise ValueError(f"{self.rule} state needs {len(names)} values, got {len(values)}")
-        for name, value in zip(names, values):  # noqa: B905 -- lengths checked above
-            setattr(self, name, value)
 
     def __repr__(self) -> str:
         args = ", ".join(f"{name}={getattr(self, name)!r}" for name in self._params)

@@ -8,8 +8,9 @@ baseline and the same detector object serves any stream. The engine turns a dete
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, ClassVar, Literal, Protocol, runtime_checkable
+from typing import Any, ClassVar, Literal, Protocol, Self, runtime_checkable
 
 Chart = Literal["x", "mr"]
 Side = Literal["upper", "lower", "both"]
@@ -43,8 +44,9 @@ class Signal:
 class Detector(Protocol):
     """One small protocol for every rule, EWMA and CUSUM.
 
-    ``update`` is O(1) in time and state. ``snapshot`` returns plain JSON-serialisable data from
-    which ``from_snapshot`` rebuilds an identical detector (a checkpoint can hold it).
+    ``update`` is O(1) in time and state. ``state`` returns plain JSON-ready data -- the rule,
+    its parameters and its changing values -- from which ``from_state`` rebuilds an identical
+    detector: ``type(d).from_state(d.state())`` continues exactly as ``d`` does.
     """
 
     rule: ClassVar[str]
@@ -54,7 +56,51 @@ class Detector(Protocol):
 
     def reset(self) -> None: ...
 
-    def snapshot(self) -> dict[str, Any]: ...
+    def state(self) -> dict[str, Any]: ...
 
     @classmethod
-    def from_snapshot(cls, data: dict[str, Any]) -> Detector: ...
+    def from_state(cls, data: Mapping[str, Any]) -> Self: ...
+
+
+class Stateful:
+    """The serialisation pair every detector shares, from the names of its parameters
+    (``_params``, constructor arguments) and of its changing values (``_state``, slots).
+
+    One pair and one layout for every detector, so that a checkpoint, the average-run-length
+    planner and the tests all treat any detector alike. ``from_state`` builds the detector
+    through its constructor, so parameters are checked as for a new one; the state's keys must
+    be exactly the detector's. A detector whose values need converting (JSON gives ``0`` for a
+    float that was ``0.0`` only if a person wrote it) overrides :meth:`_load`.
+    """
+
+    __slots__ = ()
+    rule: ClassVar[str]
+    _params: ClassVar[tuple[str, ...]] = ()
+    _state: ClassVar[tuple[str, ...]] = ()
+
+    def state(self) -> dict[str, Any]:
+        """``{"rule": id, "params": {...}, "state": {...}}``; the state's values come in
+        ``_state`` order, the position of the last reading seen last."""
+        return {
+            "rule": self.rule,
+            "params": {name: getattr(self, name) for name in self._params},
+            "state": {name.lstrip("_"): getattr(self, name) for name in self._state},
+        }
+
+    @classmethod
+    def from_state(cls, data: Mapping[str, Any]) -> Self:
+        """The detector :meth:`state` described (e.g. read back from JSON)."""
+        if data.get("rule") != cls.rule:
+            raise ValueError(f"state is for {data.get('rule')!r}, not {cls.rule!r}")
+        saved = data.get("state")
+        keys = [name.lstrip("_") for name in cls._state]
+        if not isinstance(saved, Mapping) or set(saved) != set(keys):
+            found = sorted(saved) if isinstance(saved, Mapping) else saved
+            raise ValueError(f"{cls.rule} state needs keys {sorted(keys)}, got {found!r}")
+        detector = cls(**data.get("params", {}))
+        detector._load([saved[key] for key in keys])
+        return detector
+
+    def _load(self, values: Sequence[Any]) -> None:
+        for name, value in zip(self._state, values, strict=True):
+            setattr(self, name, value)

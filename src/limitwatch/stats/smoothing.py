@@ -36,7 +36,7 @@ import math
 from collections.abc import Sequence
 from typing import Any, ClassVar
 
-from limitwatch.stats.signal import Chart, Side, Signal
+from limitwatch.stats.signal import Chart, Side, Signal, Stateful
 
 _isfinite = math.isfinite
 _EWMA_WEIGHT_SHARE = 0.99
@@ -67,15 +67,6 @@ def _check(rule: str, last: int | None, index: int, value: float) -> None:
         raise ValueError(f"{rule}: reading {index} is not a finite number ({value!r})")
     if last is not None and index != last + 1:
         raise ValueError(f"{rule}: expected reading position {last + 1}, got {index}")
-
-
-def _load(cls: Any, data: dict[str, Any], state_keys: tuple[str, ...]) -> Any:
-    if data.get("rule") != cls.rule:
-        raise ValueError(f"snapshot is for {data.get('rule')!r}, not {cls.rule!r}")
-    state = data["state"]
-    if set(state) != set(state_keys):
-        raise ValueError(f"{cls.rule} snapshot state needs keys {sorted(state_keys)}")
-    return cls(**data["params"]), state
 
 
 @functools.lru_cache(maxsize=256)
@@ -120,7 +111,7 @@ def _weight_span(keep: float) -> int:
     return m
 
 
-class Ewma:
+class Ewma(Stateful):
     """Exponentially weighted moving average of the standardized readings.
 
     ``w_i = lam * z_i + (1 - lam) * w_(i-1)``, ``w_0 = 0``; a signal when ``|w_i|`` exceeds
@@ -168,6 +159,8 @@ class Ewma:
     _w: float
     rule: ClassVar[str] = "ewma"
     chart: ClassVar[Chart] = "x"
+    _params = ("lam", "L", "exact_startup")
+    _state = ("_w", "_n", "_last")
 
     def __init__(self, lam: float = 0.2, L: float = 2.962, exact_startup: bool = True) -> None:
         self.lam = _number("lam", lam, MIN_LAM, 1.0, open_low=False)
@@ -210,27 +203,7 @@ class Ewma:
     def reset(self) -> None:
         self._w, self._n, self._last = 0.0, 0, None
 
-    def snapshot(self) -> dict[str, Any]:
-        params = {"lam": self.lam, "L": self.L, "exact_startup": self.exact_startup}
-        return {
-            "rule": self.rule,
-            "params": params,
-            "state": {"w": self._w, "n": self._n, "last": self._last},
-        }
-
-    @classmethod
-    def from_snapshot(cls, data: dict[str, Any]) -> Ewma:
-        det, state = _load(cls, data, ("w", "n", "last"))
-        det.set_state([state["w"], state["n"], state["last"]])
-        return det
-
-    def state(self) -> list[Any]:
-        """``[w, n, last]``, ``last`` the position of the last reading seen: the compact form
-        a stream's checkpoint keeps."""
-        return [self._w, self._n, self._last]
-
-    def set_state(self, values: Sequence[Any]) -> None:
-        """Load :meth:`state` output (e.g. read back from JSON)."""
+    def _load(self, values: Sequence[Any]) -> None:
         w, n, last = values
         self._w, self._n, self._last = float(w), int(n), last
 
@@ -238,7 +211,7 @@ class Ewma:
         return f"Ewma(lam={self.lam!r}, L={self.L!r}, exact_startup={self.exact_startup!r})"
 
 
-class Cusum:
+class Cusum(Stateful):
     """Two-sided tabular CUSUM of the standardized readings.
 
     ``C+ = max(0, C+ + z - k)`` and ``C- = max(0, C- - z - k)``; a signal when either exceeds
@@ -272,6 +245,8 @@ class Cusum:
     _up_len: int
     rule: ClassVar[str] = "cusum"
     chart: ClassVar[Chart] = "x"
+    _params = ("k", "h", "headstart")
+    _state = ("_up", "_down", "_up_len", "_down_len", "_last")
 
     def __init__(self, k: float = 0.5, h: float = 5.0, headstart: float = 0.0) -> None:
         self.k = _number("k", k, 0.0, MAX_SIGMAS, open_low=False)
@@ -314,31 +289,7 @@ class Cusum:
         self._restart()
         self._last = None
 
-    def snapshot(self) -> dict[str, Any]:
-        params = {"k": self.k, "h": self.h, "headstart": self.headstart}
-        state = {
-            "up": self._up,
-            "down": self._down,
-            "up_len": self._up_len,
-            "down_len": self._down_len,
-            "last": self._last,
-        }
-        return {"rule": self.rule, "params": params, "state": state}
-
-    @classmethod
-    def from_snapshot(cls, data: dict[str, Any]) -> Cusum:
-        keys = ("up", "down", "up_len", "down_len", "last")
-        det, state = _load(cls, data, keys)
-        det.set_state([state[key] for key in keys])
-        return det
-
-    def state(self) -> list[Any]:
-        """``[up, down, up_len, down_len, last]``, ``last`` the position of the last reading
-        seen: the compact form a stream's checkpoint keeps."""
-        return [self._up, self._down, self._up_len, self._down_len, self._last]
-
-    def set_state(self, values: Sequence[Any]) -> None:
-        """Load :meth:`state` output (e.g. read back from JSON)."""
+    def _load(self, values: Sequence[Any]) -> None:
         up, down, up_len, down_len, last = values
         self._up, self._down = float(up), float(down)
         self._up_len, self._down_len, self._last = int(up_len), int(down_len), last
