@@ -315,7 +315,7 @@ def test_workers_join_leave_die_and_stall_and_every_reading_lands_once(
         monitor = StreamMonitor(stream, settings.stream_settings(stream).monitor_settings())
         for t, v in per_stream[stream]:
             monitor.update(Reading(stream, t, v))
-        assert db.checkpoints()[stream] == json.loads(json.dumps(monitor.snapshot())), stream
+        assert db.checkpoints()[stream] == json.loads(json.dumps(monitor.state())), stream
     incidents = {s for (s,) in db.rows("SELECT DISTINCT stream FROM alerts")}
     assert incidents == {s for s, _, _ in expected}
 

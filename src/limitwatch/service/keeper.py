@@ -109,7 +109,7 @@ class WorkerStreams:
                 with store.transaction():
                     if changed:
                         store.save_checkpoints(
-                            {s: pipeline.monitors[s].snapshot() for s in changed}, now=self.now()
+                            {s: pipeline.monitors[s].state() for s in changed}, now=self.now()
                         )
                     if within is not None:
                         within()
