@@ -127,6 +127,9 @@ class StoredReading:
     signals: tuple[str, ...] | None = None
     """The rules that signalled on this reading (empty: none); None for a reading stored before
     limitwatch recorded them."""
+    baseline_version: int | None = None
+    """The stored baseline version the reading was judged against; None for a learning reading
+    and for one stored before limitwatch recorded it (its limits then come from its z-score)."""
 
 
 @dataclass(frozen=True, slots=True)
