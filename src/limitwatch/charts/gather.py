@@ -58,6 +58,7 @@ from limitwatch.stats.constants import D2, MR_UCL_SIGMA
 from limitwatch.stats.rules import DETECTORS
 from limitwatch.stats.signal import Chart
 from limitwatch.store import (
+    CONFIG_AUTHOR,
     Alert,
     Store,
     StoredReading,
@@ -123,7 +124,12 @@ def since_time(text: str, newest: float | None) -> float:
 
 def _provenance(stored: StoredBaseline) -> tuple[str, str]:
     learned = stored.created_by == "limitwatch" and stored.reason.startswith("learned")
-    title = "learned" if learned else f"refit by {stored.created_by}"
+    if learned:
+        title = "learned"
+    elif stored.created_by == CONFIG_AUTHOR:
+        title = "typed into the config"
+    else:
+        title = f"refit by {stored.created_by}"
     return title, f"{stored.reason} ({format_time(math.floor(stored.created_at))})"
 
 

@@ -180,11 +180,14 @@ class ReadingsArea(StoreBase):
         return dict(self.db.conn.execute("SELECT id, last_time FROM streams"))
 
     def streams(self, *, glob: str | None = None) -> list[StreamRow]:
-        """Every stream heard from (matching ``glob`` on the id when given), by id."""
+        """Every stream heard from (matching ``glob`` on the id when given), by id, with the
+        baseline version that judged its last reading (one primary-key lookup per stream)."""
+        sql = """SELECT s.*, r.baseline_version AS last_baseline_version FROM streams s
+            LEFT JOIN readings r ON r.stream = s.id AND r.time = s.last_time"""
         if glob is None:
-            rows = self._all("SELECT * FROM streams ORDER BY id")
+            rows = self._all(sql + " ORDER BY s.id")
         else:
-            rows = self._all("SELECT * FROM streams WHERE glob_match(id, ?) ORDER BY id", (glob,))
+            rows = self._all(sql + " WHERE glob_match(s.id, ?) ORDER BY s.id", (glob,))
         return [StreamRow(**r) for r in rows]
 
     def save_checkpoint(self, stream: str, state: Mapping[str, Any], *, now: float) -> None:

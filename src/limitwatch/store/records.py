@@ -110,6 +110,9 @@ class StreamRow:
     last_value: float | None
     last_index: int | None
     phase: str | None
+    last_baseline_version: int | None = None
+    """The baseline version that judged the last accepted reading; None while learning and for
+    a reading stored before limitwatch recorded it."""
 
 
 @dataclass(frozen=True, slots=True)
