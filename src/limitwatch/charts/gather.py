@@ -226,15 +226,15 @@ def fallback_note(readings: Sequence[StoredReading], history: Sequence[StoredBas
     (their limits then come from :func:`limits_from_z`); empty when every one does."""
     known = {b.version for b in history}
     judged = [r for r in readings if r.z is not None and r.index is not None]
-    older = [r for r in judged if r.baseline_version is None]
+    unnamed = sum(r.baseline_version is None for r in judged)
     missing = sorted(
         {v for r in judged if (v := r.baseline_version) is not None and v not in known}
     )
     words = []
-    if older:
+    if unnamed:
         words.append(
-            f"{len(older)} reading(s) stored before limitwatch recorded the baseline version "
-            "that judged each reading"
+            f"{unnamed} reading(s) stored without the baseline version that judged them (by an "
+            "older limitwatch, say)"
         )
     if missing:
         named = ", ".join(f"v{v}" for v in missing)
@@ -242,8 +242,8 @@ def fallback_note(readings: Sequence[StoredReading], history: Sequence[StoredBas
     if not words:
         return ""
     return (
-        " and ".join(words).capitalize()
-        + ": their limits are worked out from their stored z-scores, not read from the history."
+        "; ".join(words)
+        + ": their limits are worked out from their stored z-scores."
     )
 
 
