@@ -25,17 +25,20 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from limitwatch import SAFETY_CAUTION
 from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
 from limitwatch.charts import limits_per_point
 from limitwatch.charts.gather import fallback_note, gather, limits_in_force
-from limitwatch.engine import MonitorSettings
+from limitwatch.engine import MonitorSettings, StreamMonitor
 from limitwatch.model import Reading
 from limitwatch.pipeline import Parsed, Pipeline
 from limitwatch.stats.baseline import Baseline, limits_of
-from limitwatch.store import CONFIG_AUTHOR, MIGRATIONS, Store
-from tests.helpers import CliResult, cli
+from limitwatch.store import CONFIG_AUTHOR, MIGRATIONS, Store, StoredReading
+from limitwatch.store import Baseline as StoredBaseline
+from tests.helpers import CliResult, cli, examples
 
 T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 STEP = 600.0
@@ -200,6 +203,45 @@ def test_a_refit_with_the_same_numbers_still_steps_to_its_own_version(tmp_path: 
         (2, 45, "refit by ana"),
     ]
     assert (found[0].center, found[0].ucl) == (found[1].center, found[1].ucl)
+
+
+@settings(max_examples=examples(40), deadline=None)
+@given(
+    switches=st.lists(st.integers(min_value=1, max_value=60), min_size=0, max_size=3, unique=True),
+    same=st.lists(st.booleans(), min_size=3, max_size=3),
+    seed=st.integers(min_value=0, max_value=2**32 - 1),
+)
+def test_stored_versions_give_the_switch_points_whatever_the_numbers(
+    switches: list[int], same: list[bool], seed: int
+) -> None:
+    """Any schedule of adopted versions, some with the numbers of the one before: the chart's
+    sets start exactly where the engine switched, each with its own version's numbers."""
+    rng = np.random.default_rng(seed)
+    fits = [Baseline.from_limits(center=50.0, sigma=1.0)]
+    for k, repeat in enumerate(same, start=1):
+        new = Baseline.from_limits(center=50.0 + 3 * k, sigma=1.0 + k / 5)
+        fits.append(fits[-1] if repeat else new)
+    monitor = StreamMonitor("s", MonitorSettings(rules="limits"), baseline=fits[0])
+    starts = sorted(switches)
+    readings = []
+    for i in range(70):
+        if i in starts:
+            version = starts.index(i) + 2
+            monitor.set_baseline(fits[version - 1], version=version)
+        o = monitor.update(Reading("s", float(i), float(rng.normal(52.0, 2.0))))
+        readings.append(StoredReading("s", float(i), o.reading.value, None, o.index, o.phase,
+                                      o.z, o.mr, (), o.baseline_version))  # fmt: skip
+    history = [
+        StoredBaseline("s", v, 0.0, "ana", "refit", "mean", b.to_dict(), (), None, None, None, None)
+        for v, b in enumerate(fits, start=1)
+    ]
+    found = limits_in_force(readings, history)
+    assert [(s.version, s.start) for s in found] == [(1, 0)] + [
+        (k + 2, at) for k, at in enumerate(starts)
+    ]
+    for s in found:
+        assert s.version is not None and s.center == fits[s.version - 1].center
+    assert fallback_note(readings, history) == ""
 
 
 def test_a_baseline_typed_into_the_config_is_drawn_from_its_stored_version(site: Site) -> None:
