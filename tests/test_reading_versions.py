@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import sqlite_utils
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -33,10 +34,10 @@ from limitwatch.alerts.lifecycle import AlertBook, AlertPolicy
 from limitwatch.charts import limits_per_point
 from limitwatch.charts.gather import fallback_note, gather, limits_in_force
 from limitwatch.engine import MonitorSettings, StreamMonitor
-from limitwatch.model import Reading
+from limitwatch.model import Outcome, Reading
 from limitwatch.pipeline import Parsed, Pipeline
 from limitwatch.stats.baseline import Baseline, limits_of
-from limitwatch.store import CONFIG_AUTHOR, MIGRATIONS, Store, StoredReading
+from limitwatch.store import CONFIG_AUTHOR, MIGRATIONS, Store, StoredReading, migrate
 from limitwatch.store import Baseline as StoredBaseline
 from tests.helpers import CliResult, cli, examples
 
@@ -126,6 +127,25 @@ def test_each_reading_stores_the_version_that_judged_it(site: Site) -> None:
     )
     assert typed.created_by == CONFIG_AUTHOR and typed.version == 1
     assert {r.baseline_version for r in dryer} == {1}
+
+
+def test_migration_10_adds_the_column_and_old_rows_say_unknown(tmp_path: Path) -> None:
+    path = tmp_path / "v8.db"
+    old = sqlite_utils.Database(path)
+    assert migrate(old, now=T0, target=8)[-1] == 8
+    old.execute("INSERT INTO readings (stream, time, value, idx, phase, z) "
+                "VALUES (?, ?, 820.5, 30, 'monitoring', 0.25)", (KILN, T0))  # fmt: skip
+    old.close()
+    with Store.open(path, now=T0) as store:
+        assert store.db.execute(
+            "SELECT name FROM schema_migrations WHERE version = 10"
+        ).fetchone() == ("the baseline version each reading was judged against",)
+        judged = Outcome(Reading(KILN, T0 + 60, 821.0), True, index=31, phase="monitoring",
+                         z=0.5, baseline_version=3)  # fmt: skip
+        learning = Outcome(Reading(KILN, T0 + 120, 819.0), True, index=32, phase="learning")
+        store.add_readings([judged, learning], now=T0 + 120)
+        got = [r.baseline_version for r in store.recent_readings(KILN)]
+    assert got == [None, 3, None]
 
 
 # -- what the chart draws ------------------------------------------------------------------------
