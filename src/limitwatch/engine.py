@@ -276,8 +276,11 @@ class StreamMonitor:
         assert rules is not None
         hits = rules.update(index, z, None if mr is None else mr_sigma)
         signals = tuple([self._place(hit, reading, mr) for hit in hits]) if hits else ()
-        # Positional: Outcome(reading, accepted, reason, index, phase, z, mr, signals)
-        return Outcome(reading, True, None, index, "monitoring", z, mr, signals)
+        # Positional: Outcome(reading, accepted, reason, index, phase, z, mr, signals,
+        # baseline_fitted, baseline_version)
+        return Outcome(
+            reading, True, None, index, "monitoring", z, mr, signals, False, self.baseline_version
+        )
 
     def _learn(self, reading: Reading, index: int, mr: float | None) -> Outcome:
         learning = self._learning

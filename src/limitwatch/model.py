@@ -76,3 +76,7 @@ class Outcome:
     signals: tuple[StreamSignal, ...] = field(default_factory=tuple)
     baseline_fitted: bool = False
     """True on the reading that completed the learning phase and locked a new baseline."""
+    baseline_version: int | None = None
+    """The baseline version this reading was judged against (the store's number for it); None
+    for a learning reading, which no baseline judged, and for a refused one. Stored with the
+    reading, so a chart draws the limits each reading met from the stored version."""

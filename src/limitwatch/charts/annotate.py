@@ -3,6 +3,7 @@ flag labels kept from overlapping, and the caption."""
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Sequence
 from typing import Any
 
@@ -223,10 +224,15 @@ def _unoverlap(fig: Any, labels: Sequence[tuple[Any, bool]]) -> None:
         side.append(text_box(annotation))
 
 
+CAPTION_WIDTH = 135
+"""Characters per caption line: about the picture's width at the caption's font size, so a
+long note is wrapped instead of running off the right edge."""
+
+
 def _caption(fig: Any, data: ChartData) -> None:
-    lines = caption_lines(data)
+    lines = [part for line in caption_lines(data) for part in textwrap.wrap(line, CAPTION_WIDTH)]
     y = 0.168
-    for line in lines[:5]:
+    for line in lines[:6]:
         fig.text(0.055, y, line, fontsize=8.5, va="top", ha="left")
         y -= 0.024
     fig.text(0.055, 0.014, SAFETY_CAUTION, fontsize=7, color=MUTED, va="bottom", ha="left")

@@ -156,6 +156,24 @@ def spans(points: Sequence[Point], limits: Sequence[LimitSet]) -> list[tuple[Lim
     return out
 
 
+def limits_per_point(
+    points: Sequence[Point], limits: Sequence[LimitSet]
+) -> list[LimitSet | None]:
+    """The limit set drawn for each of ``points``, in order (None for a learning reading or one
+    no set covers): what the picture steps through, one entry per reading.
+
+    >>> pts = [Point(i, float(i), 1.0, None, i < 11) for i in range(10, 14)]
+    >>> a = LimitSet(1, 0, 1.0, 1.0, 4.0, -2.0, 1.1, 3.7, 20, "mean")
+    >>> b = LimitSet(2, 12, 2.0, 1.0, 5.0, -1.0, 1.1, 3.7, 20, "mean")
+    >>> [None if s is None else s.version for s in limits_per_point(pts, [a, b])]
+    [None, 1, 2, 2]
+    """
+    out: list[LimitSet | None] = [None] * len(points)
+    for s, a, b in spans(points, limits):
+        out[a:b] = [s] * (b - a)
+    return out
+
+
 def flag_labels(flags: Sequence[Flag]) -> dict[tuple[int, str], tuple[str, ...]]:
     """The rule ids that fired per (stream index, chart), sorted, without repeats.
 

@@ -1,14 +1,17 @@
 """What a chart of one stream shows, gathered from the store: readings, the limits each was
 judged against, the readings that signalled, incidents and silences.
 
-Why gathering is apart from drawing: the picture must show the limits
-each reading was actually judged against, and the store records that only indirectly. A baseline
-version is stored when it is fitted (learned, or refit by an operator), but the service adopts a
-refit later, at its next check; the reading that first used it is not recorded. What *is* recorded
-is each monitored reading's ``z = (value - center) / sigma`` under the limits in force, so
-:func:`limits_in_force` finds, reading by reading, the stored version that reproduces the stored
-``z``. Limits that no stored version reproduces (a baseline typed into the config) are recovered
-from two readings' values and z-scores.
+Why gathering is apart from drawing: the picture must show the limits each reading was
+actually judged against. Each stored reading names the baseline version that judged it (the
+store numbers every version: learned, refit by an operator, typed into the config), so
+:func:`limits_in_force` takes each reading's center line, limits and MR limit from that stored
+version, and a window spanning a refit steps exactly where the service switched.
+
+Readings stored before limitwatch recorded the version (a database from an older limitwatch)
+fall back on what they do record: ``z = (value - center) / sigma`` under the limits in force.
+For those, the stored version that reproduces the stored ``z`` is found reading by reading, and
+limits no stored version reproduces are recovered from two readings' values and z-scores;
+:func:`fallback_note` says so under the chart.
 
 Each stored reading records the rules that signalled on it, and :func:`signal_flags` marks
 exactly those. Readings stored before that record existed (a database from an older limitwatch)
@@ -55,6 +58,7 @@ from limitwatch.stats.constants import D2, MR_UCL_SIGMA
 from limitwatch.stats.rules import DETECTORS
 from limitwatch.stats.signal import Chart
 from limitwatch.store import (
+    CONFIG_AUTHOR,
     Alert,
     Store,
     StoredReading,
@@ -120,7 +124,12 @@ def since_time(text: str, newest: float | None) -> float:
 
 def _provenance(stored: StoredBaseline) -> tuple[str, str]:
     learned = stored.created_by == "limitwatch" and stored.reason.startswith("learned")
-    title = "learned" if learned else f"refit by {stored.created_by}"
+    if learned:
+        title = "learned"
+    elif stored.created_by == CONFIG_AUTHOR:
+        title = "typed into the config"
+    else:
+        title = f"refit by {stored.created_by}"
     return title, f"{stored.reason} ({format_time(math.floor(stored.created_at))})"
 
 
@@ -183,8 +192,66 @@ def limits_in_force(
     readings: Sequence[StoredReading], history: Sequence[StoredBaseline]
 ) -> list[LimitSet]:
     """The limits each monitored reading in ``readings`` was judged against, as a list of
-    :class:`~limitwatch.charts.data.LimitSet` whose ``start`` is the first reading (stream index) of
-    the window judged against it.
+    :class:`~limitwatch.charts.data.LimitSet` whose ``start`` is the first reading (stream index)
+    of the window judged against it.
+
+    A reading that names its baseline version takes that stored version's numbers; a new set
+    starts wherever the version changes. Readings that name none (stored before limitwatch
+    recorded it), or a version missing from ``history``, get limits found from their z-scores
+    (:func:`limits_from_z`); learning readings (no z) get none.
+    """
+    stored = {b.version: s for b in history if (s := stored_limit_set(b, 0)) is not None}
+    judged = [r for r in readings if r.z is not None and r.index is not None]
+    out: list[LimitSet] = []
+    older: list[StoredReading] = []
+    """A run of readings whose version is not recorded, waiting to be worked out from z."""
+    for r in judged:
+        assert r.index is not None
+        found = stored.get(r.baseline_version) if r.baseline_version is not None else None
+        if found is None:
+            older.append(r)
+            continue
+        if older:
+            out += limits_from_z(older, history)
+            older = []
+        if not out or out[-1].version != found.version:
+            out.append(replace(found, start=r.index))
+    if older:
+        out += limits_from_z(older, history)
+    return out
+
+
+def fallback_note(readings: Sequence[StoredReading], history: Sequence[StoredBaseline]) -> str:
+    """The chart's footnote when some monitored readings do not name a stored baseline version
+    (their limits then come from :func:`limits_from_z`); empty when every one does."""
+    known = {b.version for b in history}
+    judged = [r for r in readings if r.z is not None and r.index is not None]
+    unnamed = sum(r.baseline_version is None for r in judged)
+    missing = sorted(
+        {v for r in judged if (v := r.baseline_version) is not None and v not in known}
+    )
+    words = []
+    if unnamed:
+        words.append(
+            f"{unnamed} reading(s) stored without the baseline version that judged them (by an "
+            "older limitwatch, say)"
+        )
+    if missing:
+        named = ", ".join(f"v{v}" for v in missing)
+        words.append(f"readings judged against {named}, which the baseline history lacks")
+    if not words:
+        return ""
+    return (
+        "; ".join(words)
+        + ": their limits are worked out from their stored z-scores."
+    )
+
+
+def limits_from_z(
+    readings: Sequence[StoredReading], history: Sequence[StoredBaseline]
+) -> list[LimitSet]:
+    """The limits found from the readings' stored z-scores alone, for readings that do not
+    name their baseline version.
 
     Versions only move forward, so the current version is kept while it reproduces the stored z;
     otherwise the oldest newer version that does is taken. Readings no stored version explains
@@ -359,6 +426,8 @@ def gather(
     alerts = [a for a in store.alerts(stream_glob=glob.escape(stream)) if a.stream == stream]
     limits = limits_in_force(readings, history)
     notes: list[str] = []
+    if fallback := fallback_note(readings, history):
+        notes.append(fallback)
     if history and history[-1].version not in {s.version for s in limits}:
         notes.append(
             f"v{history[-1].version} ({history[-1].reason}) is stored but no reading drawn here "

@@ -48,16 +48,21 @@ def stream_record(
     live: Sequence[Alert],
     shelves: Sequence[Shelf],
     false_alarms_per_week: float | None = None,
+    judged_by: StoredBaseline | None = None,
 ) -> dict[str, Any]:
-    """The JSON object for one stream (``limitwatch streams --format json``)."""
+    """The JSON object for one stream (``limitwatch streams --format json``). ``judged_by`` is
+    the stored version that judged the last reading, when it is not ``current`` (a refit not
+    adopted yet); its zone is told against that version's limits."""
     limits = limits_of(current.numbers) if current is not None else None
+    judged = limits_of(judged_by.numbers) if judged_by is not None else limits
     whole = [s.until for s in shelves if s.rule is None]
     return {
         "stream": row.id,
         "last_value": row.last_value,
         "last_time": iso(row.last_time),
-        "zone": _zone(limits, row.last_value),
+        "zone": _zone(judged, row.last_value),
         "phase": row.phase,
+        "last_baseline_version": row.last_baseline_version,
         "baseline_version": None if current is None else current.version,
         "center": None if limits is None else limits.center,
         "lcl": None if limits is None else limits.lcl,
@@ -111,20 +116,24 @@ def _shelf_cell(shelves: Sequence[Shelf], now: float) -> str:
 def streams_cmd(
     stream_glob: str | None, fmt: str, db_path: str | None, config_file: str | None
 ) -> None:
-    """List the streams with their last reading, where it falls against the current baseline,
-    their alerts and shelves, and the false alarms a week their rules should raise.
+    """List the streams with their last reading, where it falls against the limits that judged
+    it, their alerts and shelves, and the false alarms a week their rules should raise.
 
-    In the table, 'zone' is the last reading's place against the current baseline (zone-c is
-    within one sigma of the center line, zone-b within two, zone-a within three; above-ucl and
-    below-lcl are beyond the limits), 'live' counts the alerts not yet cleared (open or
-    acknowledged: the report's 'live alerts' too), 'shelved' what is shelved (all rules or
-    which) and for how much longer. With --config, 'false/wk' is the false alarms a week
-    expected from the stream's rules at its cadence as the config gives them ('-' when it gives
-    no cadence; the planner's figure, which assumes independent, normal readings). With --format
-    json the output is a list of objects with the keys stream, last_value, last_time, zone,
-    phase, baseline_version, center, lcl, ucl, open_alerts, acknowledged_alerts, live_alerts
-    (the two together), shelved_until (a shelf of every rule), shelves (each with rule, until,
-    reason, by) and false_alarms_per_week (null when unknown).
+    In the table, 'zone' is the last reading's place against the baseline version that judged
+    it (zone-c is within one sigma of the center line, zone-b within two, zone-a within three;
+    above-ucl and below-lcl are beyond the limits; the current baseline for a reading stored
+    before limitwatch recorded its version), 'baseline' the current version, 'live' counts
+    the alerts not yet cleared (open or acknowledged: the report's 'live alerts' too),
+    'shelved' what is shelved (all rules or which) and for how much longer. With --config,
+    'false/wk' is the false alarms a week expected from the stream's rules at its cadence as
+    the config gives them ('-' when it gives no cadence; the planner's figure, which assumes
+    independent, normal readings). With --format json the output is a list of objects with
+    the keys stream, last_value, last_time, zone, phase, last_baseline_version (the version
+    that judged the last reading; null while learning or when not recorded),
+    baseline_version, center, lcl, ucl (of the current version), open_alerts,
+    acknowledged_alerts, live_alerts (the two together), shelved_until (a shelf of every
+    rule), shelves (each with rule, until, reason, by) and false_alarms_per_week (null when
+    unknown).
 
     \b
     Examples:
@@ -138,6 +147,13 @@ def streams_cmd(
         live = store.live_alerts([r.id for r in rows])
         shelves = store.active_shelves(now)
         current = {r.id: store.current_baseline(r.id) for r in rows}
+        judged_by = {
+            r.id: store.baseline(r.id, v)
+            for r in rows
+            if (v := r.last_baseline_version) is not None
+            and (c := current[r.id]) is not None
+            and c.version != v
+        }
     by_stream: dict[str, list[Alert]] = {}
     for alert in live:
         by_stream.setdefault(alert.stream, []).append(alert)
@@ -152,6 +168,7 @@ def streams_cmd(
             by_stream.get(r.id, []),
             shelves_of.get(r.id, []),
             expected.get(r.id),
+            judged_by.get(r.id),
         )
         for r in rows
     ]

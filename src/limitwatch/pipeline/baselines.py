@@ -99,7 +99,11 @@ def record_learned(store: Store, monitor: StreamMonitor, outcome: Outcome, now: 
     if current is not None and current.version >= monitor.baseline_version:
         # An operator refitted the stream while it was still learning, before the refits
         # job adopted it: the operator's explicit choice wins over the automatic fit, which
-        # is not recorded (its number is taken).
+        # is not recorded (its number is taken). Readings of this batch that ran past the
+        # fit were judged against it: their stored version would name the operator's.
+        store.forget_judged_against(
+            monitor.stream, monitor.baseline_version, after=outcome.reading.time
+        )
         monitor.set_baseline(Baseline.from_dict(current.numbers), version=current.version)
         log.warning(
             "stream %s: finished learning after an operator stored baseline version %d; "

@@ -82,6 +82,13 @@ class BaselinesArea(StoreBase):
         )
         return None if row is None else Baseline._from_row(row)
 
+    def baseline(self, stream: str, version: int) -> Baseline | None:
+        """One stored version of the stream's baseline (e.g. the one that judged a reading)."""
+        row = self._one(
+            "SELECT * FROM baselines WHERE stream = ? AND version = ?", (stream, version)
+        )
+        return None if row is None else Baseline._from_row(row)
+
     def latest_baseline_by(self, stream: str, by: str) -> Baseline | None:
         """The newest baseline of ``stream`` recorded by ``by`` (e.g. the config's)."""
         row = self._one(

@@ -232,6 +232,11 @@ PG_MIGRATIONS: tuple[Migration, ...] = (
             )""",
         ),
     ),
+    Migration(
+        10,
+        "the baseline version each reading was judged against",
+        ("ALTER TABLE readings ADD COLUMN baseline_version bigint",),
+    ),
 )
 
 

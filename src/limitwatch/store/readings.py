@@ -30,15 +30,19 @@ class ReadingsArea(StoreBase):
                 continue
             r = o.reading
             fired = " ".join(dict.fromkeys(s.rule for s in o.signals)) if o.signals else ""
-            rows.append((r.stream, r.time, r.value, r.seq, o.index, o.phase, o.z, o.mr, fired))
+            rows.append(
+                (r.stream, r.time, r.value, r.seq, o.index, o.phase, o.z, o.mr, fired,
+                 o.baseline_version)
+            )
             if r.stream not in latest or r.time > latest[r.stream].reading.time:
                 latest[r.stream] = o
         if not rows:
             return 0
         with self.transaction():
             stored = self.sql.executemany(
-                """INSERT INTO readings (stream, time, value, seq, idx, phase, z, mr, signals)
-                VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)
+                """INSERT INTO readings
+                    (stream, time, value, seq, idx, phase, z, mr, signals, baseline_version)
+                VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)
                 ON CONFLICT (stream, time) DO NOTHING""",
                 rows,
             )
@@ -80,9 +84,25 @@ class ReadingsArea(StoreBase):
                 z=r["z"],
                 mr=r["mr"],
                 signals=None if r["signals"] is None else tuple(r["signals"].split()),
+                baseline_version=r["baseline_version"],
             )
             for r in rows
         ]
+
+    def forget_judged_against(self, stream: str, version: int, *, after: float) -> int:
+        """Say "not recorded" for the baseline version of ``stream``'s readings later than
+        ``after`` that were stored as judged against ``version``; return how many.
+
+        For a learned fit that was dropped in favour of an operator's version with the same
+        number (see the pipeline's ``_record_learned``): the readings of the batch that ran
+        past the fit were judged against limits the store never kept, so naming ``version``
+        would point at other numbers. Their z-scores still tell their limits."""
+        cur = self.sql.execute(
+            """UPDATE readings SET baseline_version = NULL
+            WHERE stream = ? AND time > ? AND baseline_version = ?""",
+            (stream, after, version),
+        )
+        return cur.rowcount
 
     def prune_readings(
         self,
@@ -160,12 +180,15 @@ class ReadingsArea(StoreBase):
         return dict(self.sql.execute("SELECT id, last_time FROM streams"))
 
     def streams(self, *, glob: str | None = None) -> list[StreamRow]:
-        """Every stream heard from (matching ``glob`` on the id when given), by id."""
+        """Every stream heard from (matching ``glob`` on the id when given), by id, with the
+        baseline version that judged its last reading (one primary-key lookup per stream)."""
+        sql = """SELECT s.*, r.baseline_version AS last_baseline_version FROM streams s
+            LEFT JOIN readings r ON r.stream = s.id AND r.time = s.last_time"""
         if glob is None:
-            rows = self._all("SELECT * FROM streams ORDER BY id")
+            rows = self._all(sql + " ORDER BY s.id")
         else:
-            where, params, recheck = self.sql.glob_filter("id", glob)
-            rows = self._all(f"SELECT * FROM streams WHERE {where} ORDER BY id", params)
+            where, params, recheck = self.sql.glob_filter("s.id", glob)
+            rows = self._all(sql + f" WHERE {where} ORDER BY s.id", params)
             if recheck:
                 rows = [r for r in rows if fnmatchcase(r["id"], glob)]
         return [StreamRow(**r) for r in rows]

@@ -110,6 +110,9 @@ class StreamRow:
     last_value: float | None
     last_index: int | None
     phase: str | None
+    last_baseline_version: int | None = None
+    """The baseline version that judged the last accepted reading; None while learning and for
+    a reading stored before limitwatch recorded it."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -127,6 +130,9 @@ class StoredReading:
     signals: tuple[str, ...] | None = None
     """The rules that signalled on this reading (empty: none); None for a reading stored before
     limitwatch recorded them."""
+    baseline_version: int | None = None
+    """The stored baseline version the reading was judged against; None for a learning reading
+    and for one stored before limitwatch recorded it (its limits then come from its z-score)."""
 
 
 @dataclass(frozen=True, slots=True)

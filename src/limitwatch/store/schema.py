@@ -294,6 +294,16 @@ MIGRATIONS: tuple[Migration, ...] = (
             )""",
         ),
     ),
+    Migration(
+        10,
+        "the baseline version each reading was judged against",
+        (
+            # The version in baselines (stream, version) that judged the reading. NULL for a
+            # learning reading (no baseline judged it) and for readings stored before this
+            # column existed, whose limits a chart recovers from their z-scores instead.
+            "ALTER TABLE readings ADD COLUMN baseline_version INTEGER",
+        ),
+    ),
 )
 
 
