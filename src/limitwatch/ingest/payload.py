@@ -30,7 +30,10 @@ not JSON numbers (Python's ``json`` reads them anyway; they are refused here as 
 from __future__ import annotations
 
 import json
+import re
 from typing import Any, Literal, Protocol
+
+import orjson
 
 from limitwatch.ingest.fields import Fields, field_path, lookup
 from limitwatch.ingest.numbers import MAX_SEQ, parse_decimal, parse_seq, parse_value
@@ -63,6 +66,7 @@ __all__ = [
     "parse_seq",
     "parse_time_field",
     "parse_value",
+    "read_json",
 ]
 
 
@@ -98,9 +102,7 @@ class PayloadParser:
         self.json = topic.payload == "json"
         self.max_payload_bytes = max_payload_bytes
         self._fields = (
-            Fields(
-                topic.value, topic.time, topic.time_format, topic.seq, False, future_tolerance
-            )
+            Fields(topic.value, topic.time, topic.time_format, topic.seq, False, future_tolerance)
             if self.json
             else None
         )
@@ -135,21 +137,58 @@ class PayloadParser:
                     "not-a-number", f"payload {show(payload)} is not UTF-8 text"
                 ) from None
             return Reading(stream, received_at, parse_decimal(text, "payload"))
-        try:
-            document = _JSON.decode(_utf8(payload))
-        except (UnicodeDecodeError, ValueError) as exc:
-            # ValueError also covers a number past the interpreter's 4,300-digit limit
-            raise PayloadError("bad-json", f"payload is not UTF-8 JSON: {exc}") from None
-        except RecursionError:
-            raise PayloadError(
-                "bad-json", "payload nests arrays or objects too deeply to be read"
-            ) from None
-        moment, value, seq = self._fields.read(document, received_at)
+        moment, value, seq = self._fields.read(read_json(payload), received_at)
         return Reading(stream, moment, value, seq)
 
 
+def read_json(payload: bytes) -> Any:
+    """The JSON document in ``payload`` (UTF-8, a leading byte-order mark allowed), exactly as
+    the standard library's decoder reads it, or :class:`PayloadError` (``bad-json``).
+
+    Why two decoders: orjson reads a small payload in about a tenth of the time, but it differs
+    from the standard library at the edges, and what a payload becomes must not depend on which
+    one read it. orjson refuses NaN, Infinity, numbers past a double's range and lone surrogate
+    escapes, which the standard library reads (NaN is then refused by name, as ``not-finite``);
+    it reads integers past 64 bits as floats, where the standard library keeps them whole (a
+    ``bad-seq`` message quotes them); and it nests 1,024 levels deep, past the interpreter's
+    recursion limit. So orjson reads only payloads without those edges -- no run of 19 digits,
+    fewer than :data:`FAST_NESTING_MAX` brackets -- and whatever it refuses is read again by the
+    standard library, whose result or error stands.
+
+    >>> read_json(b'{"v": 1.5, "n": 7}')
+    {'v': 1.5, 'n': 7}
+    >>> read_json(b'{"v": NaN}')
+    {'v': nan}
+    """
+    if (
+        payload.count(b"[") + payload.count(b"{") < FAST_NESTING_MAX
+        and _LONG_DIGITS.search(payload) is None
+    ):
+        try:
+            return orjson.loads(payload)
+        except orjson.JSONDecodeError:
+            pass  # the standard library's result or error stands
+    try:
+        return _JSON.decode(_utf8(payload))
+    except (UnicodeDecodeError, ValueError) as exc:
+        # ValueError also covers a number past the interpreter's 4,300-digit limit
+        raise PayloadError("bad-json", f"payload is not UTF-8 JSON: {exc}") from None
+    except RecursionError:
+        raise PayloadError(
+            "bad-json", "payload nests arrays or objects too deeply to be read"
+        ) from None
+
+
+FAST_NESTING_MAX = 200
+"""Payloads with this many ``[`` and ``{`` bytes or more are read by the standard library: they
+may nest deeper than it can (its limit is the interpreter's recursion limit, less the depth of
+the caller), and orjson, which nests 1,024 deep, would read what it refuses."""
+
+_LONG_DIGITS = re.compile(rb"\d{19}")
+"""A run of 19 digits: an integer that may lie past 64 bits, which orjson reads as a float."""
+
 _JSON = json.JSONDecoder(parse_constant=float)
-"""One decoder for every payload: ``json.loads`` with an option builds a new one each call.
+"""The standard library's decoder: ``json.loads`` with an option builds a new one each call.
 NaN and Infinity become floats here so that the value check can refuse them by name."""
 
 _BOM = b"\xef\xbb\xbf"
