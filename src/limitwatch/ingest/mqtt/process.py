@@ -123,9 +123,7 @@ def _serve(settings: MqttSettings, up: Connection, down: Connection, log_level: 
         while True:
             message = down.recv()
             if message[0] == "ack":
-                ack = source.ack
-                for mid, qos in message[1]:
-                    ack(mid, qos)
+                source.ack_all(message[1])
             elif message[0] == "publish":
                 source.publish(*message[1:])
             elif message[0] == "close":
