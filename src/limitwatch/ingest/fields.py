@@ -52,7 +52,9 @@ def lookup(obj: Any, path: Sequence[str | int]) -> Any:
     An int part indexes a list, and is also tried as a text key of a dict (``{"0": ...}``).
     """
     for part in path:
-        if isinstance(obj, Mapping):
+        if type(obj) is dict:  # a JSON object or a CSV row: no abstract-class check for it
+            obj = obj.get(part if type(part) is str else str(part), MISSING)
+        elif isinstance(obj, Mapping):
             obj = obj.get(part if isinstance(part, str) else str(part), MISSING)
         elif isinstance(obj, list) and isinstance(part, int):
             obj = obj[part] if part < len(obj) else MISSING
