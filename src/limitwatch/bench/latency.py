@@ -95,7 +95,7 @@ def latency_run(
         _await_commits(service)
         cpu = time.process_time() + _cpu_of(pid) - cpu
     delays = np.array([d for t, d in service.delays if t >= steady_from]) * 1000.0
-    parts = np.array(service.batches) * [1000.0, 1000.0, 1000.0, 1.0]
+    parts = np.array(service.batches) * [1000.0, 1000.0, 1000.0, 1.0, 1000.0]
     return {
         "p50": float(np.percentile(delays, 50)),
         "p99": float(np.percentile(delays, 99)),
@@ -107,6 +107,8 @@ def latency_run(
         "work_p50": float(np.percentile(parts[:, 2], 50)),
         "work_p99": float(np.percentile(parts[:, 2], 99)),
         "batch_size": float(np.median(parts[:, 3])),
+        "commit_p50": float(np.percentile(parts[:, 4], 50)),
+        "commit_p99": float(np.percentile(parts[:, 4], 99)),
     }
 
 
@@ -155,6 +157,8 @@ def measure_latency(sizes: Sizes, workdir: Path) -> list[Figure]:
                     "work_p50",
                     "work_p99",
                     "batch_size",
+                    "commit_p50",
+                    "commit_p99",
                 )
             }
             out.append(Figure(f"publish to commit p50, batch_wait {batch_wait}", "ms", p50s, these))
@@ -174,6 +178,9 @@ def measure_latency(sizes: Sizes, workdir: Path) -> list[Figure]:
                         ),
                         "batch_parse_commit_ack_ms_p50_p99": (
                             f"{parts['work_p50']:.1f} / {parts['work_p99']:.1f}"
+                        ),
+                        "of_which_pipeline_commit_ms_p50_p99": (
+                            f"{parts['commit_p50']:.1f} / {parts['commit_p99']:.1f}"
                         ),
                         "batch_size_median": parts["batch_size"],
                         "parts_note": "per batch, for its first delivery: publish to receipt "

@@ -61,10 +61,12 @@ def _timed_service_class() -> type:
             self.done = threading.Event()
             self.expect: int | None = None
             self.failure: BaseException | None = None
-            self.batches: list[tuple[float, float, float, float]] | None = None
+            self.batches: list[tuple[float, float, float, float, float]] | None = None
             """Per batch, when ``batches`` is a list: (the first delivery's time from publish
             to receipt, from its receipt to the worker taking the batch, the worker's time on
-            the batch, its size): where a reading's delay goes."""
+            the batch, its size, the part of that time in the pipeline's commit): where a
+            reading's delay goes."""
+            self.commit_seconds = 0.0
 
         def _process_deliveries(self, batch: list[Any], *, flush: bool = False) -> None:
             if self.first_received is None and batch:
@@ -74,16 +76,25 @@ def _timed_service_class() -> type:
                 return
             taken = time.time()
             first = batch[0]
+            self.commit_seconds = 0.0
             super()._process_deliveries(batch, flush=flush)
             done = time.time()
             published = json.loads(first.payload)["t"]
             self.batches.append(
-                (first.received_at - published, taken - first.received_at, done - taken, len(batch))
+                (
+                    first.received_at - published,
+                    taken - first.received_at,
+                    done - taken,
+                    len(batch),
+                    self.commit_seconds,
+                )
             )
 
         def _commit(self, items: list[Any], offsets: Any = None) -> Any:
+            started = time.time()
             result = super()._commit(items, offsets)
             now = time.time()
+            self.commit_seconds += now - started
             self.last_commit_at = now
             self.committed += len(result.outcomes)
             if self.delays is not None:  # (publish time, delay to commit)
