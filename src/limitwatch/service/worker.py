@@ -42,6 +42,7 @@ from limitwatch.service.jobs import _STOP, Job
 from limitwatch.service.lock import InstanceLock
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store
+from limitwatch.store.wal import WalCheckpoints
 from limitwatch.streamcap import StreamCap
 
 log = logging.getLogger("limitwatch.service")
@@ -94,6 +95,7 @@ class Service:
         (a file backlog is read in many batches within one job); None until it runs."""
         self.started_at: float | None = None
         self.store: Store | None = None
+        self.wal: WalCheckpoints | None = None
         self.pipeline: Pipeline | None = None
         self.book: AlertBook | None = None
         self.outbox: OutboxWorker | None = None
@@ -136,6 +138,8 @@ class Service:
         lock.acquire()  # before anything is read: a second service must not even restore
         self._lock = lock
         self.store = Store.open(cfg.store.path, now=now)
+        self.wal = WalCheckpoints(self.store)
+        self.wal.start()  # the log's copying off the worker's commits (see store/wal.py)
         self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
@@ -259,6 +263,8 @@ class Service:
             self.outbox.stop()
         if self.status is not None:
             self.status.close()
+        if self.wal is not None:
+            self.wal.stop()
         if self.store is not None:
             self.store.close()
         if self._lock is not None:
