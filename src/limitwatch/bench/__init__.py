@@ -48,6 +48,7 @@ Python documentation, :mod:`tracemalloc` (memory traced per allocation, net of f
 Mosquitto ``mosquitto.conf(5)``: ``max_queued_messages``, ``max_inflight_messages``.
 """
 
+
 from __future__ import annotations
 
 import contextlib
