@@ -106,7 +106,10 @@ def test_mqtt_ratio_pairs_the_two_clients_of_the_same_run(report):
     bare = figures["mqtt bare subscriber"]["runs"]
     ratio = figures["mqtt end to end / bare subscriber"]
     assert ratio["runs"] == pytest.approx([o / b for o, b in zip(ours, bare, strict=True)])
-    assert ratio["target"] == ">= 0.7"
+    assert ratio["target"] == ">= 0.8"
+    cpu = figures["mqtt CPU per message, end to end / bare subscriber"]
+    assert cpu["target"] == "<= 1.5" and all(r > 0 for r in cpu["runs"])
+    assert figures["mqtt bare subscriber"]["extra"]["cpu_us_per_message"] > 0
     live = figures["mqtt end to end, live publisher"]
     assert len(live["runs"]) == TINY.repeats and live["extra"]["publisher_messages_per_s"] > 0
     assert "as fast as the broker acknowledges" in live["conditions"]["how"]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import json
 import threading
 import time
 from collections.abc import Iterator
@@ -60,15 +61,40 @@ def _timed_service_class() -> type:
             self.done = threading.Event()
             self.expect: int | None = None
             self.failure: BaseException | None = None
+            self.batches: list[tuple[float, float, float, float, float]] | None = None
+            """Per batch, when ``batches`` is a list: (the first delivery's time from publish
+            to receipt, from its receipt to the worker taking the batch, the worker's time on
+            the batch, its size, the part of that time in the pipeline's commit): where a
+            reading's delay goes."""
+            self.commit_seconds = 0.0
 
         def _process_deliveries(self, batch: list[Any], *, flush: bool = False) -> None:
             if self.first_received is None and batch:
                 self.first_received = min(d.received_at for d in batch)
+            if self.batches is None or not batch:
+                super()._process_deliveries(batch, flush=flush)
+                return
+            taken = time.time()
+            first = batch[0]
+            self.commit_seconds = 0.0
             super()._process_deliveries(batch, flush=flush)
+            done = time.time()
+            published = json.loads(first.payload)["t"]
+            self.batches.append(
+                (
+                    first.received_at - published,
+                    taken - first.received_at,
+                    done - taken,
+                    len(batch),
+                    self.commit_seconds,
+                )
+            )
 
         def _commit(self, items: list[Any], offsets: Any = None) -> Any:
+            started = time.time()
             result = super()._commit(items, offsets)
             now = time.time()
+            self.commit_seconds += now - started
             self.last_commit_at = now
             self.committed += len(result.outcomes)
             if self.delays is not None:  # (publish time, delay to commit)

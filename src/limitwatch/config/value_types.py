@@ -14,7 +14,7 @@ from typing import Annotated, Any, Literal
 from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationInfo
 
 from limitwatch.durations import format_duration, parse_duration
-from limitwatch.ingest.payload import field_path
+from limitwatch.ingest.fields import field_path
 from limitwatch.stats.rules import RULE_IDS
 
 # --------------------------------------------------------------------------- value types

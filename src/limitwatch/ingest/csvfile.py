@@ -3,8 +3,8 @@
 Errors name the file, the line (as a text editor counts it) and the column, because the person
 who has to fix the file needs to find the cell, not a Python traceback.
 
-Values and times are read by the service's own rules (:func:`limitwatch.ingest.payload.
-parse_value` and :func:`~limitwatch.ingest.payload.parse_time_field`), so ``baseline fit`` and
+Values and times are read by the service's own rules (:func:`limitwatch.ingest.numbers.
+parse_value` and :func:`~limitwatch.ingest.timefield.parse_time_field`), so ``baseline fit`` and
 ``replay`` refuse exactly what the service would dead-letter. A row with more cells than the
 header is refused too: ``10,43`` written with a decimal comma and no quotes is two cells, and
 reading the first alone would silently give 10.
@@ -18,7 +18,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
-from limitwatch.ingest.payload import PayloadError, TimeFormat, parse_time_field, parse_value
+from limitwatch.ingest.numbers import parse_value
+from limitwatch.ingest.reasons import PayloadError
+from limitwatch.ingest.timefield import TimeFormat, parse_time_field
 from limitwatch.ingest.timeparse import TimeUnit
 
 

@@ -44,6 +44,7 @@ from limitwatch.service.lock import CannotShare, InstanceLock
 from limitwatch.stats.baseline import Baseline
 from limitwatch.store import Store, open_store, parse_location
 from limitwatch.store.location import redacted
+from limitwatch.store.wal import WalCheckpoints
 from limitwatch.streamcap import StreamCap
 
 log = logging.getLogger("limitwatch.service")
@@ -87,12 +88,16 @@ class Service:
         readings of it held and not yet committed]: acknowledgements go in arrival order, so
         a held reading holds back the acknowledgement of every later one until it is
         committed too."""
+        self._carried: list[Any] = []
+        """Deliveries of an intake list that did not fit in the last batch: the next one's
+        first (see :meth:`_take`)."""
         self.last_commit: float | None = None
         self._heartbeat: float | None = None
         """``time.monotonic()`` when the worker last came round its loop or committed a batch
         (a file backlog is read in many batches within one job); None until it runs."""
         self.started_at: float | None = None
         self.store: Store | None = None
+        self.wal: WalCheckpoints | None = None
         self.pipeline: Pipeline | None = None
         self.book: AlertBook | None = None
         self.outbox: OutboxWorker | None = None
@@ -161,6 +166,9 @@ class Service:
             # Kafka partitions); the store's own locks and leases keep them apart.
             log.info("store %s is shared: no single-instance lock", redacted(str(where)))
         self.store = open_store(where, now=now)
+        if where.path is not None:
+            self.wal = WalCheckpoints(self.store)
+            self.wal.start()  # the log's copying off the worker's commits (see store/wal.py)
         self._carry_on_from(self.store.last_service_time())
         self.book = AlertBook(self.store, cfg.alert_policy())
         self.pipeline = Pipeline(self.store, self.settings_for, self.book, self._typed_baseline)
@@ -290,6 +298,8 @@ class Service:
             self.outbox.stop()
         if self.status is not None:
             self.status.close()
+        if self.wal is not None:
+            self.wal.stop()
         if self.store is not None:
             self.store.close()
         if self._lock is not None:
@@ -328,22 +338,39 @@ class Service:
             log.info("checkpoints of %d streams written", saved)
 
     def _take(self) -> tuple[list[Any], list[Job]]:
+        """The next batch (at most ``batch_max`` deliveries) and the jobs queued meanwhile.
+
+        The intake holds jobs, single deliveries, and lists of deliveries (a connection
+        process's pipe message, put in one piece); what a list brings past ``batch_max`` is
+        carried over to the next batch, first in line."""
         cfg = self.config.service
-        batch: list[Any] = []
+        batch: list[Any] = self._carried
+        self._carried = []
         jobs: list[Job] = []
-        try:
-            first = self.intake.get(timeout=0.5)
-        except queue.Empty:
-            return batch, jobs
+        first: Any = None
+        if batch:
+            stamped: float | None = batch[0].received_at
+        else:
+            try:
+                first = self.intake.get(timeout=0.5)
+            except queue.Empty:
+                return batch, jobs
+            if type(first) is list:
+                stamped = first[0].received_at
+            else:
+                stamped = None if isinstance(first, Job) else first.received_at
         # batch_wait counts from when the first reading arrived, not from when the worker got
         # to it: a reading that queued while the previous batch was being committed has
         # already waited, and waiting the whole batch_wait again would double its delay.
-        stamped = None if isinstance(first, Job) else first.received_at
         waited = 0.0 if stamped is None else self.timekeeper.wall() - stamped
         deadline = time.monotonic() + min(cfg.batch_wait, max(0.0, cfg.batch_wait - waited))
         item = first
         while True:
-            if isinstance(item, Job):
+            if item is None:
+                pass  # carried over from the last batch
+            elif type(item) is list:
+                batch.extend(item)
+            elif isinstance(item, Job):
                 jobs.append(item)
                 if item is _STOP:
                     break
@@ -361,6 +388,9 @@ class Service:
                     item = self.intake.get(timeout=remaining)
                 except queue.Empty:
                     break
+        if len(batch) > cfg.batch_max:
+            self._carried = batch[cfg.batch_max :]
+            del batch[cfg.batch_max :]
         self.metrics.queue_depth.set(self.intake.qsize())
         return batch, jobs
 

@@ -237,6 +237,11 @@ PG_MIGRATIONS: tuple[Migration, ...] = (
         "the baseline version each reading was judged against",
         ("ALTER TABLE readings ADD COLUMN baseline_version bigint",),
     ),
+    Migration(
+        11,
+        "readings: no index by time alone; retention by age goes through the primary key",
+        ("DROP INDEX IF EXISTS readings_by_time",),
+    ),
 )
 
 

@@ -304,6 +304,19 @@ MIGRATIONS: tuple[Migration, ...] = (
             "ALTER TABLE readings ADD COLUMN baseline_version INTEGER",
         ),
     ),
+    Migration(
+        11,
+        "readings: no index by time alone; retention by age goes through the primary key",
+        (
+            # Every stored reading was written to three B-trees: the table, its primary key
+            # (stream, time) and this index. Its one reader was retention by age, which now
+            # deletes stream by stream through the primary key (store/readings.py). Measured
+            # with 1,000 interleaved streams: about 4% less insert CPU and 9% less file. A
+            # table WITHOUT ROWID (one B-tree fewer still) measured about 40% more insert CPU,
+            # whole rows being spread over the key's pages instead of appended.
+            "DROP INDEX IF EXISTS readings_by_time",
+        ),
+    ),
 )
 
 

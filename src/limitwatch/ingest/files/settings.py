@@ -22,7 +22,7 @@ from limitwatch.config import (
     _resolve_path,
 )
 from limitwatch.durations import format_duration
-from limitwatch.ingest.payload import field_path
+from limitwatch.ingest.fields import field_path
 from limitwatch.ingest.streamid import stream_id_problem
 
 __all__ = ["FileSourceConfig"]

@@ -1,7 +1,7 @@
 """The file source as the service runs it: polled, each line a row, offsets committed.
 
 The worker polls on ``poll_every``; the lines come from :class:`~limitwatch.ingest.files.tail.
-FileTail` in file order, each row is parsed by :class:`~limitwatch.ingest.payload.RowParser`,
+FileTail` in file order, each row is parsed by :class:`~limitwatch.ingest.rows.RowParser`,
 and the byte offset after the last line of a batch is committed in the batch's transaction
 (:meth:`FileSource.positions`). Only after that commit does the source take the offsets as its
 own (:meth:`FileSource.acknowledge`), so a crash resumes at exactly the next line. Dead letters
@@ -16,7 +16,8 @@ from typing import Self
 from limitwatch.ingest.base import Parsed, Source, SourceContext
 from limitwatch.ingest.files.settings import FileSourceConfig
 from limitwatch.ingest.files.tail import FileLine, FileTail
-from limitwatch.ingest.payload import PayloadError, RowParser
+from limitwatch.ingest.reasons import PayloadError
+from limitwatch.ingest.rows import RowParser
 
 __all__ = ["FileSource"]
 

@@ -24,12 +24,14 @@ Why each setting (paho-mqtt 2.x):
 
 from __future__ import annotations
 
+import inspect
 import logging
 import queue
 import ssl
+import struct
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
@@ -97,6 +99,38 @@ class MqttSettings:
     demands it (Sparkplug's host applications); the default keeps the session."""
 
 
+_PUBACK = 0x40
+"""MQTT's PUBACK control packet type, in the high nibble of the fixed header's first byte."""
+
+_PUBACK_PACKET = struct.Struct("!BBH")
+"""One PUBACK: packet type, remaining length 2, packet id (MQTT 3.1.1 section 3.4 and 5.0
+section 3.4: without a reason code it means success)."""
+
+
+def _pubacks(mids: Sequence[int]) -> bytes:
+    """The PUBACK packets for ``mids``, one after the other in one byte string.
+
+    >>> _pubacks([1, 258]).hex()
+    '4002000140020102'
+    """
+    pack = _PUBACK_PACKET.pack
+    return b"".join([pack(_PUBACK, 2, mid) for mid in mids])
+
+
+def _packet_queue_of(client: mqtt.Client) -> Callable[..., Any] | None:
+    """paho's method that queues an outgoing packet and wakes its network thread (the one its
+    own ``ack`` uses); None when a paho version has changed it, so acknowledgements fall back
+    to one ``ack`` each."""
+    queue_packet = getattr(client, "_packet_queue", None)
+    if queue_packet is None:
+        return None
+    try:
+        params = list(inspect.signature(queue_packet).parameters)
+    except (TypeError, ValueError):
+        return None
+    return queue_packet if params[:4] == ["command", "packet", "mid", "qos"] else None
+
+
 class MqttConnection:
     """One broker connection feeding ``intake``."""
 
@@ -117,6 +151,9 @@ class MqttConnection:
         self.last_error: str | None = None
         self.connects = 0
         self._client = self._make_client()
+        self._queue_packet = _packet_queue_of(self._client)
+        """paho's own queue of outgoing packets, for acknowledgements in bulk; None (one by one
+        through ``ack``) if this paho version has none by that name."""
 
     # -- set-up -----------------------------------------------------------------------------------
 
@@ -172,9 +209,7 @@ class MqttConnection:
         s = self.settings
         try:
             if s.status_topic and self.connected.is_set():
-                info = self._client.publish(
-                    s.status_topic, s.offline_payload, qos=1, retain=True
-                )
+                info = self._client.publish(s.status_topic, s.offline_payload, qos=1, retain=True)
                 info.wait_for_publish(timeout=5)
             self._client.disconnect()
         except Exception:  # closing must not fail the shutdown
@@ -194,6 +229,36 @@ class MqttConnection:
         """Acknowledge one delivery; called by the worker after its batch committed."""
         if qos > 0:
             self._client.ack(mid, qos)
+
+    def ack_all(self, acks: Sequence[tuple[int, int]]) -> None:
+        """Acknowledge a committed batch's deliveries, (packet id, QoS) in arrival order.
+
+        Why in bulk: paho queues each acknowledgement as a packet of its own, wakes its network
+        thread for it and writes it with a send of its own, four bytes at a time; a batch of
+        500 cost 500 wake-ups and 500 system calls here and 500 reads at the broker. A run of
+        QoS 1 acknowledgements is queued instead as one packet holding every PUBACK, byte for
+        byte what paho would send one by one (fixed header, remaining length 2, packet id: a
+        success without a reason code, MQTT 5 section 3.4.2.1), so paho's network thread writes
+        them with one send, in the order given. QoS 2 completions go through paho one by one.
+        """
+        queue_packet = self._queue_packet
+        client = self._client
+        if queue_packet is None:
+            for mid, qos in acks:
+                self.ack(mid, qos)
+            return
+        run: list[int] = []
+        for mid, qos in acks:
+            if qos == 1:
+                run.append(mid)
+                continue
+            if run:
+                queue_packet(_PUBACK, _pubacks(run), run[-1], 1)
+                run = []
+            if qos > 0:
+                client.ack(mid, qos)
+        if run:
+            queue_packet(_PUBACK, _pubacks(run), run[-1], 1)
 
     # -- callbacks: never block, never raise ------------------------------------------------------
 

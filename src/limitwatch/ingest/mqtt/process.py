@@ -11,9 +11,11 @@ What crosses between them, over two one-way pipes:
 * up (connection -> service): lists of :data:`~limitwatch.ingest.mqtt.client.Arrival` tuples and
   :class:`Status` records, sent by one forwarding thread as they pile up, so a busy stream
   costs one pipe message per batch rather than per reading; the service's side makes each
-  arrival a :class:`~limitwatch.ingest.mqtt.client.Delivery`;
-* down (service -> connection): the acknowledgements of a committed batch, in arrival order,
-  and the request to close.
+  arrival a :class:`~limitwatch.ingest.mqtt.client.Delivery` and puts each message's deliveries
+  on the intake as one list;
+* down (service -> connection): the acknowledgements of a committed batch, in arrival order, as
+  one message, which the connection hands to paho as one packet
+  (:meth:`~limitwatch.ingest.mqtt.client.MqttConnection.ack_all`), and the request to close.
 
 Nothing changes in what is promised: a message is acknowledged only after the batch holding
 its effect committed (the worker decides; the connection process only carries it out), so a
@@ -123,9 +125,7 @@ def _serve(settings: MqttSettings, up: Connection, down: Connection, log_level: 
         while True:
             message = down.recv()
             if message[0] == "ack":
-                ack = source.ack
-                for mid, qos in message[1]:
-                    ack(mid, qos)
+                source.ack_all(message[1])
             elif message[0] == "publish":
                 source.publish(*message[1:])
             elif message[0] == "close":
@@ -239,16 +239,25 @@ class MqttProcess:
         self._reader.start()
 
     def _read(self, up: Connection, process: Any, epoch: int) -> None:
+        """Pass each pipe message's deliveries on to the intake as one list (the worker takes
+        it apart): one put and one wake-up of the worker per message instead of per delivery."""
         put, name = self._intake.put, self.name
+        make = tuple.__new__  # a Delivery without a Python-level __new__ call for each
         try:
             while True:
+                deliveries: list[Delivery] = []
                 for item in up.recv():
                     if type(item) is tuple:  # an Arrival
-                        put(Delivery._make((name, *item, epoch)))
-                    else:
-                        self._apply(item)
-                        if item.closed:
-                            return
+                        deliveries.append(make(Delivery, (name, *item, epoch)))
+                        continue
+                    if deliveries:
+                        put(deliveries)
+                        deliveries = []
+                    self._apply(item)
+                    if item.closed:
+                        return
+                if deliveries:
+                    put(deliveries)
         except (EOFError, OSError):
             pass
         finally:

@@ -36,7 +36,6 @@ from limitwatch.ingest.base import Parsed, Source, SourceContext, SourceHealth
 from limitwatch.ingest.mqtt.client import Delivery, MqttSettings
 from limitwatch.ingest.mqtt.process import MqttProcess
 from limitwatch.ingest.mqtt.source import connection_settings, envelope
-from limitwatch.ingest.payload import LATEST_TIME
 from limitwatch.ingest.sparkplug.host import (
     Message,
     NodeState,
@@ -47,6 +46,7 @@ from limitwatch.ingest.sparkplug.host import (
 from limitwatch.ingest.sparkplug.proto import DATATYPES, Payload
 from limitwatch.ingest.sparkplug.settings import SparkplugSourceConfig
 from limitwatch.ingest.streamid import stream_id_problem
+from limitwatch.ingest.timefield import LATEST_TIME
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.model import Reading
 from limitwatch.secrets import resolve_secret
