@@ -201,7 +201,10 @@ def test_demo_again_replaces_only_its_own_files_and_says_what_went(tmp_path):
 
 
 def test_demo_files_name_the_database_of_the_demo_config():
-    assert "quillmoor.db" in demo_folder.demo_files(demo_config_text())
+    files = demo_folder.demo_files(demo_config_text())
+    assert "quillmoor.db" in files
+    # the births file the Sparkplug source keeps beside the database goes with a rerun too
+    assert "quillmoor.db.source-quillmoor-edge.json" in files
 
 
 def test_next_commands_name_the_script_by_path_unless_path_finds_it(tmp_path):

@@ -225,14 +225,12 @@ def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(
             node.close()
             assert svc.stop() == 0
     opened, cleared = _bodies(hook, "opened"), _bodies(hook, "cleared")
-    assert sorted(b["stream"] for b in opened) == [
-        "plant-a/press-1/oil/temp",
-        "plant-a/press-1/ram/force",
-    ]
-    for body in opened:
-        assert body["rule"] == "stale"
-        assert "the edge node plant-a/press-1 reported offline (NDEATH)" in body["rule_words"]
-        assert body["silent_since"] == (T0 + 60_000 * 14) / 1000  # its last reading
+    assert_offline_notices(
+        opened,
+        ["plant-a/press-1/oil/temp", "plant-a/press-1/ram/force"],
+        "the edge node plant-a/press-1 reported offline (NDEATH)",
+        last_reading_ms=T0 + 60_000 * 14,
+    )
     assert {b["stream"] for b in cleared} == {b["stream"] for b in opened}
     assert count(db, "alerts") == 2  # the rebirth opened nothing new
 
@@ -304,15 +302,12 @@ def test_a_device_death_on_a_real_broker_opens_its_streams_stale_incidents_at_on
     will = [b for b in _bodies(hook, "opened") if "(NDEATH)" in b["rule_words"]]
     assert len({b["stream"] for b in will}) == 6
     assert all("the edge node plant-a/press-1 reported offline" in b["rule_words"] for b in will)
-    opened = [b for b in _bodies(hook, "opened") if "(DDEATH)" in b["rule_words"]]
-    assert sorted(b["stream"] for b in opened) == [
-        "plant-a/press-1/pump-2/flow",
-        "plant-a/press-1/pump-2/pressure",
-    ]
-    for body in opened:
-        assert body["rule"] == "stale"
-        assert "the device plant-a/press-1/pump-2 reported offline (DDEATH)" in body["rule_words"]
-        assert body["silent_since"] == (T0 + 60_000 * 12) / 1000  # its last reading
+    assert_offline_notices(
+        [b for b in _bodies(hook, "opened") if "(DDEATH)" in b["rule_words"]],
+        ["plant-a/press-1/pump-2/flow", "plant-a/press-1/pump-2/pressure"],
+        "the device plant-a/press-1/pump-2 reported offline (DDEATH)",
+        last_reading_ms=T0 + 60_000 * 12,
+    )
     reasons = sorted(r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters"))
     assert reasons == ["device-offline", "node-offline", "not-born"]
     # readings: the node's birth, 13 of each pump's two metrics, then pump-3's 13th and
@@ -323,6 +318,18 @@ def steady(i: int) -> dict[str, float]:
     """In-control values (independent normal noise), so only the death opens incidents."""
     noise = random.Random(i)
     return {"oil/temp": 40.0 + noise.gauss(0, 0.2), "ram/force": 120.0 + noise.gauss(0, 1.0)}
+
+
+def assert_offline_notices(
+    opened: list[dict], streams: list[str], words: str, last_reading_ms: int
+) -> None:
+    """One stale notice per stream, saying who reported offline and when the stream's last
+    reading was."""
+    assert sorted(b["stream"] for b in opened) == streams
+    for body in opened:
+        assert body["rule"] == "stale"
+        assert words in body["rule_words"]
+        assert body["silent_since"] == last_reading_ms / 1000
 
 
 def _bodies(hook: WebhookReceiver, kind: str) -> list[dict]:

@@ -4,8 +4,9 @@ A dead letter keeps what arrived, byte for byte, and what arrived may be anythin
 control characters (an escape sequence would recolour or clear the terminal of whoever lists
 it), binary, or megabytes. So text is shown with every unprintable character escaped as in a
 Python string literal (:func:`limitwatch.textout.printable`, the one escaper of human
-output), bytes that are not UTF-8 are shown as hex (tables) or base64 (JSON), and a long
-payload is cut, always with its full size beside it.
+output; a backslash is doubled, so the text reads back to exactly what arrived), bytes that
+are not UTF-8 are shown as hex (tables) or base64 (JSON), and a long payload is cut, always
+with its full size beside it.
 
 >>> view_payload(b"plant/line-1/temp\\n\\x1b[2J{\\"v\\": 1}").text
 'plant/line-1/temp\\\\n\\\\x1b[2J{"v": 1}'
@@ -63,4 +64,6 @@ def view_payload(
         else:
             shown = head.hex() if binary == "hex" else base64.b64encode(head).decode("ascii")
             return PayloadView(binary, shown, size, cut)
-    return PayloadView("text", printable(text), size, cut)
+    # a payload is shown once, never escaped again: backslashes are doubled first, so that
+    # a payload holding the characters \x1b is told apart from one holding an ESC
+    return PayloadView("text", printable(text.replace("\\", "\\\\")), size, cut)

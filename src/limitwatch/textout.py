@@ -14,7 +14,7 @@ import shutil
 import sys
 from collections.abc import Sequence
 
-_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t", "\\": "\\\\"}
+_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
 
 
 def _escaped(ch: str) -> str:
@@ -36,19 +36,24 @@ def printable(text: object) -> str:
     the line and paragraph separators, format characters such as the bidirectional overrides
     and isolates (which make text display in another order than it is stored), lone
     surrogates (not text at all), unassigned and private-use code points, and spaces other
-    than the plain one. A backslash is doubled, so that what is shown reads back to one text
-    only: a stream id typed with the four characters ``\x1b`` never looks like one holding an
-    ESC. Nothing is cut: a long text comes out whole.
+    than the plain one. Nothing is cut: a long text comes out whole.
+
+    A backslash is left as it is, so that escaping twice changes nothing: field text passes
+    through more than one layer on its way out (a cell escaped before it is measured, then by
+    the table; a notifier's error, then by the table), and a doubled backslash would double
+    again at each. The cost: a text holding the four characters ``\x1b`` shows as one holding
+    an ESC would; ``--format json`` keeps the real text, and a dead letter's payload, shown
+    once by :mod:`limitwatch.payloadview`, has its backslashes doubled before this escaping.
 
     >>> print(printable("kiln-3\x1b[2J/temp\nline 2\x07"))
     kiln-3\x1b[2J/temp\nline 2\x07
     >>> printable("pack-2/downtime °C")
     'pack-2/downtime °C'
     >>> print(printable("abc\u202edcba \ud800 C:\\data"))
-    abc\u202edcba \ud800 C:\\data
+    abc\u202edcba \ud800 C:\data
     """
     text = str(text)
-    if text.isprintable() and "\\" not in text:
+    if text.isprintable():
         return text  # the usual case, without a look at each character
     return "".join(map(_escaped, text))
 
