@@ -59,6 +59,15 @@ reconnect_max_s = 2
     return path
 
 
+def hooked_service(folder: Path, port: int, hook: WebhookReceiver) -> ServiceProcess:
+    """The service with its notices going to ``hook``."""
+    extra = (
+        f'\n[[notifiers]]\nname = "ops-hook"\ntype = "webhook"\nurl = "{hook.url}"\n'
+        "connect_timeout_s = 2\nread_timeout_s = 5\n"
+    )
+    return ServiceProcess(sparkplug_config(folder, port, extra=extra)).start()
+
+
 def health(port: int) -> dict:
     try:
         with urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=5) as answer:
@@ -190,11 +199,7 @@ def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(
     the node reported offline and when its last reading was. The new birth's data clears them."""
     db = tmp_path / "service.db"
     with WebhookReceiver() as hook:
-        extra = (
-            f'\n[[notifiers]]\nname = "ops-hook"\ntype = "webhook"\nurl = "{hook.url}"\n'
-            "connect_timeout_s = 2\nread_timeout_s = 5\n"
-        )
-        svc = ServiceProcess(sparkplug_config(tmp_path, broker.port, extra=extra)).start()
+        svc = hooked_service(tmp_path, broker.port, hook)
         node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)
         try:
             wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
@@ -255,11 +260,7 @@ def test_a_device_death_on_a_real_broker_opens_its_streams_stale_incidents_at_on
     incidents of the node's and every device's streams."""
     db = tmp_path / "service.db"
     with WebhookReceiver() as hook:
-        extra = (
-            f'\n[[notifiers]]\nname = "ops-hook"\ntype = "webhook"\nurl = "{hook.url}"\n'
-            "connect_timeout_s = 2\nread_timeout_s = 5\n"
-        )
-        svc = ServiceProcess(sparkplug_config(tmp_path, broker.port, extra=extra)).start()
+        svc = hooked_service(tmp_path, broker.port, hook)
         node = EdgeNode(broker.port, "plant-a", "press-1", METRICS, devices=PUMPS)
         try:
             wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
