@@ -26,9 +26,7 @@ from pathlib import Path
 import click
 
 from limitwatch import SAFETY_CAUTION, demo_folder, demo_sparkplug
-from limitwatch.config import (
-    load_config,
-)
+from limitwatch.config import Config, load_config
 from limitwatch.demo import LEARN, PLANT, STREAMS, generate
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.localbroker import mosquitto_path, private_broker
@@ -226,7 +224,7 @@ def run_demo(root: Path, *, transport: str, pace: float, echo: Callable[[str], N
 def _feeder(
     transport: str,
     root: Path,
-    config: object,
+    config: Config,
     rows: list[tuple[str, float, float]],
     echo: Callable[[str], None],
     closing: list[Callable[[], None]],
@@ -236,7 +234,7 @@ def _feeder(
         return _file_feeder(root)
     if transport == "mqtt":
         return _mqtt_feeder(config, closing)
-    gateway = demo_sparkplug.PlantGateway(config.sources[0].port, rows)  # type: ignore[attr-defined]
+    gateway = demo_sparkplug.PlantGateway(_broker_port(config), rows)
     gateway.start()
     closing.append(gateway.close)
     echo(f"-- {gateway.describe()}")
@@ -259,12 +257,18 @@ def _file_feeder(root: Path) -> Feed:
     return feed
 
 
-def _mqtt_feeder(config: object, closing: list[Callable[[], None]]) -> Feed:
+def _broker_port(config: Config) -> int:
+    """The private broker's port, as the demo wrote it into its config's one source."""
+    port = getattr(config.sources[0], "port", None)
+    assert isinstance(port, int), "the demo's broker config has a port"
+    return port
+
+
+def _mqtt_feeder(config: Config, closing: list[Callable[[], None]]) -> Feed:
     import paho.mqtt.client as mqtt
 
-    source = config.sources[0]  # type: ignore[attr-defined]
     client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="quillmoor-gateway-sim")
-    client.connect(source.host, source.port)
+    client.connect("127.0.0.1", _broker_port(config))
     client.loop_start()
 
     def close() -> None:
