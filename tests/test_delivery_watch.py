@@ -64,7 +64,7 @@ def test_an_outage_logs_twice_and_shows_on_metrics(fresh_db: Store, caplog) -> N
     loud = [r.getMessage() for r in caplog.records if r.levelno >= logging.INFO]
     assert len(loud) == 2, loud
     assert loud[0].startswith("notifier ops-hook is failing: ")
-    assert loud[1].startswith("notifier ops-hook delivers again after 2h13m")
+    assert loud[1].startswith("notifier ops-hook delivers again after 2h13m20s of failures")
     assert "8 failed attempt(s)" in loud[1]
 
 

@@ -7,6 +7,7 @@ import shlex
 import shutil
 import sqlite3
 import subprocess
+import tomllib
 from pathlib import Path
 
 import pytest
@@ -58,14 +59,16 @@ def incidents_by_stream(db: Path) -> dict[str, list[set[str]]]:
     return {stream: list(incidents.values()) for stream, incidents in found.items()}
 
 
-@pytest.mark.parametrize("transport", ["file", "mqtt"])
+@pytest.mark.parametrize("transport", ["file", "mqtt", "sparkplug"])
 def test_demo_raises_alerts_for_the_injected_causes_and_nothing_else(tmp_path, transport):
-    if transport == "mqtt" and mosquitto_path() is None:
+    if transport != "file" and mosquitto_path() is None:
+        if os.environ.get("CI") == "true":
+            pytest.fail("mosquitto is not installed, and CI needs it")
         pytest.skip("mosquitto is not installed")
     folder = tmp_path / "demo"
     args = ["demo", "--folder", str(folder), "--pace", "0"]
-    if transport == "mqtt":
-        args.append("--mqtt")
+    if transport != "file":
+        args.append(f"--{transport}")
     result = run_cli(*args)
     assert result.returncode == 0, result.stderr
     found = incidents_by_stream(folder / "quillmoor.db")
@@ -98,6 +101,33 @@ def test_demo_raises_alerts_for_the_injected_causes_and_nothing_else(tmp_path, t
         alerts_line, capture_output=True, text=True, env={**os.environ, "PATH": path}, timeout=60
     )
     assert listed.returncode == 0 and "pack-2/downtime" in listed.stdout
+    if transport == "sparkplug":
+        assert_sparkplug_story(folder, out)
+
+
+def assert_sparkplug_story(folder: Path, out: str) -> None:
+    """The readings came as Sparkplug B births and data by alias, pack-3's device died right
+    after its last reading, and its stale incident says so."""
+    assert "Sparkplug B edge node quillmoor/site-gateway" in out
+    words = " ".join(out.split())  # the notice wraps its lines
+    assert "the device quillmoor/site-gateway/pack-3 reported offline (DDEATH)" in words
+    config = (folder / "demo.toml").read_text()
+    assert 'type = "sparkplug"' in config and 'type = "file"' not in config
+    conn = sqlite3.connect(folder / "quillmoor.db")
+    try:
+        letters = conn.execute("SELECT source, reason FROM dead_letters").fetchall()
+        (opened,) = conn.execute(
+            "SELECT a.id FROM alerts a WHERE a.stream = 'pack-3/downtime' AND a.rule = 'stale'"
+        ).fetchall()
+    finally:
+        conn.close()
+    # the one refusal is the death itself, kept so that it is seen and counted
+    assert [(s, r.split(":")[0]) for s, r in letters] == [
+        ("quillmoor-edge", "device-offline")
+    ], letters
+    assert "device quillmoor/site-gateway/pack-3 reported offline (DDEATH)" in letters[0][1]
+    assert opened
+    assert (folder / "quillmoor.db.source-quillmoor-edge.json").is_file()  # the births kept
 
 
 def next_commands(out: str) -> list[list[str]]:
@@ -171,7 +201,10 @@ def test_demo_again_replaces_only_its_own_files_and_says_what_went(tmp_path):
 
 
 def test_demo_files_name_the_database_of_the_demo_config():
-    assert "quillmoor.db" in demo_folder.demo_files(demo_config_text())
+    files = demo_folder.demo_files(demo_config_text())
+    assert "quillmoor.db" in files
+    # the births file the Sparkplug source keeps beside the database goes with a rerun too
+    assert "quillmoor.db.source-quillmoor-edge.json" in files
 
 
 def test_next_commands_name_the_script_by_path_unless_path_finds_it(tmp_path):
@@ -189,3 +222,37 @@ def test_next_commands_name_the_script_by_path_unless_path_finds_it(tmp_path):
     assert command_prefix("-c", python=str(script.with_name("python3")), which=lambda _: None) == (
         shlex.quote(str(script))
     )
+
+
+@pytest.mark.parametrize("flag", ["--mqtt", "--sparkplug"])
+def test_a_broker_demo_without_mosquitto_says_what_to_install(tmp_path, monkeypatch, flag):
+    monkeypatch.setattr("limitwatch.cli.demo.mosquitto_path", lambda: None)
+    folder = tmp_path / "demo"
+    result = CliRunner().invoke(main, ["demo", flag, "--folder", str(folder)])
+    assert result.exit_code == 1
+    assert f"{flag} needs Mosquitto on this machine" in result.output
+    assert "apt-get install mosquitto" in result.output
+    assert not folder.exists()  # nothing written before the refusal
+
+
+def test_the_demo_takes_one_broker_transport_at_a_time(tmp_path):
+    result = CliRunner().invoke(
+        main, ["demo", "--mqtt", "--sparkplug", "--folder", str(tmp_path / "demo")]
+    )
+    assert result.exit_code == 2 and "choose one of --mqtt and --sparkplug" in result.output
+
+
+def test_the_sparkplug_gateway_gives_each_demo_stream_a_device_metric_and_alias():
+    from limitwatch.cli.demo import _with_source
+    from limitwatch.config import config_from_dict
+    from limitwatch.demo_sparkplug import device_metrics, source_config
+
+    devices = device_metrics()
+    pairs = {f"{d}/{m}": a for d, names in devices.items() for m, a in names.items()}
+    assert sorted(pairs) == sorted(s.stream for s in STREAMS)
+    assert sorted(pairs.values()) == list(range(1, len(STREAMS) + 1))  # unique aliases
+    config = config_from_dict(tomllib.loads(_with_source(source_config(1883))))
+    (source,) = config.sources
+    # the template gives back the demo's own stream ids, so its [[streams]] apply unchanged
+    assert {source.stream_for("quillmoor", "site-gateway", d, m) for d, m in
+            (p.split("/", 1) for p in pairs)} == set(pairs)  # fmt: skip

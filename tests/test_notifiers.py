@@ -431,7 +431,7 @@ def test_console_escapes_control_characters_in_the_stream_id(
     notifier.deliver(payload(stream=HOSTILE_STREAM), event_id="12:opened:0")
     out = capsys.readouterr().out
     assert "\x1b" not in out and "\x07" not in out
-    escaped = "kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test"
+    escaped = "kiln-9\\x1b[2J\\x07/temp\\nBcc: everyone@plant.test"
     assert any(
         line.startswith("  stream:") and escaped in line
         for line in out.splitlines()
@@ -450,11 +450,11 @@ def test_smtp_sends_an_alert_whose_stream_id_holds_a_newline(tmp_path: Path) -> 
     assert msg["Bcc"] is None
     assert msg["Subject"] == (
         "[limitwatch] New warning incident 12 on "
-        "kiln-9\\x1b[2J\\x07/temp\\x0aBcc: everyone@plant.test"
+        "kiln-9\\x1b[2J\\x07/temp\\nBcc: everyone@plant.test"
     )
     body = msg.get_content()
     assert "\x1b" not in body and "\x07" not in body
-    assert "kiln-9\\x1b[2J\\x07/temp\\x0aBcc" in body
+    assert "kiln-9\\x1b[2J\\x07/temp\\nBcc" in body
 
 
 def test_smtp_refuses_a_server_certificate_from_an_unknown_ca(tmp_path: Path) -> None:

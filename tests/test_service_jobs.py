@@ -200,7 +200,7 @@ def test_a_wall_clock_step_back_keeps_receipt_times_and_stale_checks_and_health_
 
             stepped[0] = -7200.0
             wait_until(
-                lambda: any("stepped back by 2h 0m 0s" in r.getMessage() for r in caplog.records),
+                lambda: any("stepped back by 2h (7200" in r.getMessage() for r in caplog.records),
                 what="a warning about the step",
             )
             (record,) = [r for r in caplog.records if "stepped back" in r.getMessage()]
@@ -320,7 +320,7 @@ def test_a_restart_after_the_clock_stepped_back_goes_on_from_the_last_commit(
     assert count(db, "dead_letters") == 0
     times = [t for (t,) in query(db, "SELECT time FROM readings ORDER BY rowid")]
     assert all(b > a for a, b in itertools.pairwise(times))
-    said = r"behind the store's last commit by (1h 59m|2h 0m 0s)"
+    said = r"behind the store's last commit by (1h59m(\d+s)?|2h) \(7\d{3}\.\d s\)"
     assert any(re.search(said, r.getMessage()) for r in caplog.records)
 
 

@@ -1,6 +1,6 @@
-"""The Sparkplug B source through the real service, a real Mosquitto and a small edge node
-(tests/sparkplug_node.py) publishing real protobuf births, data by alias, a seq gap, an unknown
-alias, a death and rebirths."""
+"""The Sparkplug B source through the real service, a real Mosquitto and the package's edge
+node simulator (limitwatch.ingest.sparkplug.simulate) publishing real protobuf births, data by
+alias, a seq gap, an unknown alias, deaths of nodes and devices, and rebirths."""
 
 from __future__ import annotations
 
@@ -16,10 +16,10 @@ import paho.mqtt.client as mqtt
 import pytest
 
 from limitwatch.config import load_config
+from limitwatch.ingest.sparkplug.simulate import EdgeNode
 from tests.broker import free_port
 from tests.receivers import WebhookReceiver
 from tests.service_harness import ServiceProcess, count, process_gone, query, wait_until
-from tests.sparkplug_node import EdgeNode
 
 pytestmark = pytest.mark.integration
 
@@ -57,6 +57,15 @@ reconnect_max_s = 2
 {extra}"""
     )
     return path
+
+
+def hooked_service(folder: Path, port: int, hook: WebhookReceiver) -> ServiceProcess:
+    """The service with its notices going to ``hook``."""
+    extra = (
+        f'\n[[notifiers]]\nname = "ops-hook"\ntype = "webhook"\nurl = "{hook.url}"\n'
+        "connect_timeout_s = 2\nread_timeout_s = 5\n"
+    )
+    return ServiceProcess(sparkplug_config(folder, port, extra=extra)).start()
 
 
 def health(port: int) -> dict:
@@ -190,11 +199,7 @@ def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(
     the node reported offline and when its last reading was. The new birth's data clears them."""
     db = tmp_path / "service.db"
     with WebhookReceiver() as hook:
-        extra = (
-            f'\n[[notifiers]]\nname = "ops-hook"\ntype = "webhook"\nurl = "{hook.url}"\n'
-            "connect_timeout_s = 2\nread_timeout_s = 5\n"
-        )
-        svc = ServiceProcess(sparkplug_config(tmp_path, broker.port, extra=extra)).start()
+        svc = hooked_service(tmp_path, broker.port, hook)
         node = EdgeNode(broker.port, "plant-a", "press-1", METRICS)
         try:
             wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
@@ -225,22 +230,107 @@ def test_a_death_opens_the_stale_incidents_at_once_and_a_rebirth_clears_them(
             node.close()
             assert svc.stop() == 0
     opened, cleared = _bodies(hook, "opened"), _bodies(hook, "cleared")
-    assert sorted(b["stream"] for b in opened) == [
-        "plant-a/press-1/oil/temp",
-        "plant-a/press-1/ram/force",
-    ]
-    for body in opened:
-        assert body["rule"] == "stale"
-        assert "the edge node plant-a/press-1 reported offline (NDEATH)" in body["rule_words"]
-        assert body["silent_since"] == (T0 + 60_000 * 14) / 1000  # its last reading
+    assert_offline_notices(
+        opened,
+        ["plant-a/press-1/oil/temp", "plant-a/press-1/ram/force"],
+        "the edge node plant-a/press-1 reported offline (NDEATH)",
+        last_reading_ms=T0 + 60_000 * 14,
+    )
     assert {b["stream"] for b in cleared} == {b["stream"] for b in opened}
     assert count(db, "alerts") == 2  # the rebirth opened nothing new
+
+
+PUMPS = {"pump-2": {"flow": 3, "pressure": 4}, "pump-3": {"flow": 5, "pressure": 6}}
+
+
+def pump(i: int) -> dict[str, float]:
+    noise = random.Random(1000 + i)
+    return {"flow": 8.0 + noise.gauss(0, 0.1), "pressure": 3.2 + noise.gauss(0, 0.05)}
+
+
+def test_a_device_death_on_a_real_broker_opens_its_streams_stale_incidents_at_once(
+    broker, tmp_path
+):
+    """An edge node publishes DBIRTHs of two pumps, their DDATA by alias, then a DDEATH of
+    one pump, all through a real Mosquitto. The running service opens a stale incident on
+    each of that pump's streams in the batch of the death ("offline" words, no cadence and no
+    stale check needed) and on no other stream. DDATA of the dead pump before its DBIRTH is
+    refused and a rebirth asked for; the next DBIRTH's readings clear the incidents. Then the
+    node's connection drops without a DISCONNECT: the broker's will (NDEATH) opens the stale
+    incidents of the node's and every device's streams."""
+    db = tmp_path / "service.db"
+    with WebhookReceiver() as hook:
+        svc = hooked_service(tmp_path, broker.port, hook)
+        node = EdgeNode(broker.port, "plant-a", "press-1", METRICS, devices=PUMPS)
+        try:
+            wait_until(lambda: "connected to" in svc.logs(), what="the service connected")
+            node.connect()
+            node.birth(steady(0), T0)
+            for device in PUMPS:
+                node.device_birth(device, pump(0), T0)
+            for i in range(1, 13):
+                for device in PUMPS:
+                    node.device_data(device, pump(i), T0 + 60_000 * i)
+            wait_until(lambda: count(db, "readings") == 2 + 4 * 13, what="births and data")
+            assert count(db, "alerts") == 0
+
+            node.device_death("pump-2")
+            wait_until(lambda: count(db, "alerts", "rule = 'stale' AND state = 'open'") == 2,
+                       what="pump-2's stale incidents")  # fmt: skip
+            wait_until(lambda: len(_bodies(hook, "opened")) == 2, what="both notifications")
+            # data of the dead device is refused until it is born again, and a rebirth asked
+            node.device_data("pump-2", pump(13), T0 + 60_000 * 13)
+            node.device_data("pump-3", pump(13), T0 + 60_000 * 13)  # the live pump goes on
+            assert node.wait_for_command(), "the edge node was asked for a rebirth"
+            wait_until(lambda: count(db, "dead_letters", "reason LIKE 'not-born:%'") == 1)
+            assert count(db, "alerts", "state = 'open'") == 2
+            node.device_birth("pump-2", pump(14), T0 + 60_000 * 14)
+            node.device_data("pump-2", pump(15), T0 + 60_000 * 15)
+            wait_until(lambda: count(db, "alerts", "state = 'cleared'") == 2,
+                       what="the rebirth's readings clear them")  # fmt: skip
+            wait_until(lambda: len(_bodies(hook, "cleared")) == 2, what="both cleared notices")
+            assert count(db, "alerts") == 2  # nothing on the node's or the other pump's streams
+            assert count(db, "readings") == 2 + 4 * 13 + 2 + 2 + 2  # see below
+
+            # the node's connection drops hard: the broker sends its will, the NDEATH, which
+            # takes the node and every device with it, each stream that had a reading
+            node.vanish()
+            wait_until(lambda: count(db, "alerts", "rule = 'stale' AND state = 'open'") == 6,
+                       what="every stream's stale incident after the will")  # fmt: skip
+        finally:
+            node.close()
+            assert svc.stop() == 0
+    will = [b for b in _bodies(hook, "opened") if "(NDEATH)" in b["rule_words"]]
+    assert len({b["stream"] for b in will}) == 6
+    assert all("the edge node plant-a/press-1 reported offline" in b["rule_words"] for b in will)
+    assert_offline_notices(
+        [b for b in _bodies(hook, "opened") if "(DDEATH)" in b["rule_words"]],
+        ["plant-a/press-1/pump-2/flow", "plant-a/press-1/pump-2/pressure"],
+        "the device plant-a/press-1/pump-2 reported offline (DDEATH)",
+        last_reading_ms=T0 + 60_000 * 12,
+    )
+    reasons = sorted(r.split(":")[0] for (r,) in query(db, "SELECT reason FROM dead_letters"))
+    assert reasons == ["device-offline", "node-offline", "not-born"]
+    # readings: the node's birth, 13 of each pump's two metrics, then pump-3's 13th and
+    # pump-2's 14th and 15th; the refused DDATA of the dead pump-2 is no reading
 
 
 def steady(i: int) -> dict[str, float]:
     """In-control values (independent normal noise), so only the death opens incidents."""
     noise = random.Random(i)
     return {"oil/temp": 40.0 + noise.gauss(0, 0.2), "ram/force": 120.0 + noise.gauss(0, 1.0)}
+
+
+def assert_offline_notices(
+    opened: list[dict], streams: list[str], words: str, last_reading_ms: int
+) -> None:
+    """One stale notice per stream, saying who reported offline and when the stream's last
+    reading was."""
+    assert sorted(b["stream"] for b in opened) == streams
+    for body in opened:
+        assert body["rule"] == "stale"
+        assert words in body["rule_words"]
+        assert body["silent_since"] == last_reading_ms / 1000
 
 
 def _bodies(hook: WebhookReceiver, kind: str) -> list[dict]:

@@ -12,8 +12,8 @@ from hypothesis import strategies as st
 
 from limitwatch.ingest.sparkplug.host import SparkplugHost, parse_topic
 from limitwatch.ingest.sparkplug.proto import DATATYPES, Payload
+from limitwatch.ingest.sparkplug.simulate import bd_seq_metric, payload
 from tests.helpers import examples
-from tests.sparkplug_node import bd_seq_metric, payload
 
 T = 1_767_225_600_000  # 2026-01-01T00:00:00Z in ms
 NODE = "spBv1.0/plant-a/{}/press-1"

@@ -48,6 +48,8 @@ import threading
 import time
 from collections.abc import Callable
 
+from limitwatch.durations import format_elapsed
+
 CATCH_UP_RATE = 0.5
 """How fast the service clock runs, against the monotonic clock, while it is ahead of a wall
 clock that stepped back. Below 1 so that it is caught up (after ``step / (1 - rate)``);
@@ -145,17 +147,13 @@ class ServiceClock:
 
 
 def describe_step(seconds: float) -> str:
-    """``'back by 2h 0m 0s (7200.0 s)'``: a step's size for a log line.
+    """``'back by 2h (7200.0 s)'``: a step's size for a log line, to the whole second (the
+    two clocks are read a moment apart: 7199.99 s is a 2 h step).
 
     >>> describe_step(-7200.0)
-    'back by 2h 0m 0s (7200.0 s)'
+    'back by 2h (7200.0 s)'
     >>> describe_step(95.5)
-    'forward by 0h 1m 36s (95.5 s)'
+    'forward by 1m36s (95.5 s)'
     """
     size = abs(seconds)
-    whole = round(size)  # the two clocks are read a moment apart: 7199.99 s is a 2 h step
-    hours, rest = divmod(whole, 3600)
-    return (
-        f"{'back' if seconds < 0 else 'forward'} by {hours}h {rest // 60}m {rest % 60}s "
-        f"({size:.1f} s)"
-    )
+    return f"{'back' if seconds < 0 else 'forward'} by {format_elapsed(size)} ({size:.1f} s)"

@@ -71,6 +71,9 @@ STREAMS: tuple[DemoStream, ...] = (
     ),
 )
 
+SPARKPLUG_SOURCE = "quillmoor-edge"
+"""The source's name in ``limitwatch demo --sparkplug`` (its births file is named after it)."""
+
 LEARN = 30
 """Readings per stream in the quiet stretch; the demo's baselines learn from these."""
 

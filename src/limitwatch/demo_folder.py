@@ -13,6 +13,8 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from limitwatch.demo import SPARKPLUG_SOURCE
+
 MARKER = ".limitwatch-demo"
 MARKER_TEXT = (
     "This folder was made by `limitwatch demo`. Running the demo here again replaces the files\n"
@@ -56,6 +58,7 @@ def demo_files(config_text: str) -> list[str]:
         f"{db}-shm",
         f"{db}-journal",
         f"{db}.lock",
+        f"{db}.source-{SPARKPLUG_SOURCE}.json",
         "data/plant.csv",
         "broker/mosquitto.conf",
         "broker/mosquitto.log",

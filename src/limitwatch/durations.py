@@ -27,7 +27,14 @@ from __future__ import annotations
 import math
 import re
 
-__all__ = ["UNITS", "DurationError", "format_duration", "parse_duration", "short_duration"]
+__all__ = [
+    "UNITS",
+    "DurationError",
+    "format_duration",
+    "format_elapsed",
+    "parse_duration",
+    "short_duration",
+]
 
 UNITS: dict[str, float] = {
     "w": 7 * 86400.0,
@@ -131,6 +138,17 @@ def format_duration(seconds: float | None) -> str:
     if text != "0":
         parts.append(f"{text}s")
     return "".join(parts)
+
+
+def format_elapsed(seconds: float) -> str:
+    """A span the service measured (a silence, an outage, a log window) to the whole second,
+    in the config's own words: log lines, notices and charts all say spans this way, so an
+    operator can paste one back into a config.
+
+    >>> format_elapsed(59.6), format_elapsed(5400), format_elapsed(8000), format_elapsed(-3)
+    ('1m', '1h30m', '2h13m20s', '0s')
+    """
+    return format_duration(max(0, round(seconds)))
 
 
 def _trim(value: float, decimals: int) -> str:

@@ -3,8 +3,10 @@
 A dead letter keeps what arrived, byte for byte, and what arrived may be anything: text with
 control characters (an escape sequence would recolour or clear the terminal of whoever lists
 it), binary, or megabytes. So text is shown with every unprintable character escaped as in a
-Python string literal, bytes that are not UTF-8 are shown as hex (tables) or base64 (JSON), and
-a long payload is cut, always with its full size beside it.
+Python string literal (:func:`limitwatch.textout.printable`, the one escaper of human
+output; a backslash is doubled, so the text reads back to exactly what arrived), bytes that
+are not UTF-8 are shown as hex (tables) or base64 (JSON), and a long payload is cut, always
+with its full size beside it.
 
 >>> view_payload(b"plant/line-1/temp\\n\\x1b[2J{\\"v\\": 1}").text
 'plant/line-1/temp\\\\n\\\\x1b[2J{"v": 1}'
@@ -21,7 +23,7 @@ import base64
 from dataclasses import dataclass
 from typing import Any, Literal
 
-_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t", "\\": "\\\\"}
+from limitwatch.textout import printable
 
 
 @dataclass(frozen=True, slots=True)
@@ -43,21 +45,6 @@ class PayloadView:
         return {"encoding": self.encoding, "data": self.text, "size": self.size, "cut": self.cut}
 
 
-def escape_text(text: str) -> str:
-    """Printable characters as they are; newline, tab, backslash and every other unprintable
-    character (control, format, separator) escaped as in a Python string literal."""
-    out = []
-    for ch in text:
-        if ch in _ESCAPES:
-            out.append(_ESCAPES[ch])
-        elif ch.isprintable():
-            out.append(ch)
-        else:
-            code = ord(ch)
-            out.append(f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}")
-    return "".join(out)
-
-
 def view_payload(
     raw: bytes | str | None, *, limit: int = 256, binary: Literal["hex", "base64"] = "hex"
 ) -> PayloadView:
@@ -77,4 +64,6 @@ def view_payload(
         else:
             shown = head.hex() if binary == "hex" else base64.b64encode(head).decode("ascii")
             return PayloadView(binary, shown, size, cut)
-    return PayloadView("text", escape_text(text), size, cut)
+    # a payload is shown once, never escaped again: backslashes are doubled first, so that
+    # a payload holding the characters \x1b is told apart from one holding an ESC
+    return PayloadView("text", printable(text.replace("\\", "\\\\")), size, cut)

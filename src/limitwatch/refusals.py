@@ -24,6 +24,8 @@ import logging
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from limitwatch.durations import format_elapsed
+
 log = logging.getLogger("limitwatch.refusals")
 
 EVERY_S = 60.0
@@ -54,7 +56,7 @@ class RefusalLog:
             self._emit(
                 f"source {source}: an input was refused as {reason}; it is kept as a dead "
                 f"letter ({_hint(source, reason)}). Further refusals of this kind are counted "
-                f"in one line at most every {_span(self.every)}"
+                f"in one line at most every {format_elapsed(self.every)}"
             )
             return
         pair.unlogged += 1
@@ -72,22 +74,10 @@ class RefusalLog:
         count = pair.unlogged
         self._emit(
             f"source {source}: {count} more input{'s' if count != 1 else ''} refused as "
-            f"{reason} in the last {_span(now - pair.logged_at)}; {_hint(source, reason)}"
+            f"{reason} in the last {format_elapsed(now - pair.logged_at)}; {_hint(source, reason)}"
         )
         pair.logged_at, pair.unlogged = now, 0
 
 
 def _hint(source: str, reason: str) -> str:
     return f"limitwatch dead-letters --source {source} --reason {reason} lists them"
-
-
-def _span(seconds: float) -> str:
-    """``59s``, ``1m``, ``1h30m``: the window in the words of the config's durations."""
-    s = max(0, int(seconds))
-    if s < 60:
-        return f"{s}s"
-    m, s = divmod(s, 60)
-    if m < 60:
-        return f"{m}m" + (f"{s}s" if s else "")
-    h, m = divmod(m, 60)
-    return f"{h}h" + (f"{m}m" if m else "")

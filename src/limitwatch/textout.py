@@ -10,30 +10,52 @@ from __future__ import annotations
 
 import math
 import os
-import re
 import shutil
 import sys
 from collections.abc import Sequence
 
-# C0 controls, DEL, C1 controls, the Unicode line and paragraph separators, and the
-# bidirectional overrides and isolates (which can make text display in another order).
-_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029\u202a-\u202e\u2066-\u2069]")
+_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
 
 
-def _escape(match: re.Match[str]) -> str:
-    code = ord(match.group())
-    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+def _escaped(ch: str) -> str:
+    if ch in _ESCAPES:
+        return _ESCAPES[ch]
+    if ch.isprintable():
+        return ch
+    code = ord(ch)
+    if code < 0x100:
+        return f"\\x{code:02x}"
+    return f"\\u{code:04x}" if code < 0x10000 else f"\\U{code:08x}"
 
 
 def printable(text: object) -> str:
-    r"""``text`` with every control character written as an escape, for human output only.
+    r"""``text`` with every character that is not printable written as an escape, as in a
+    Python string literal, for human output only (terminals, logs, mail, tables).
+
+    Escaped: C0 and C1 controls and DEL (an ESC drives the terminal, a newline forges a line),
+    the line and paragraph separators, format characters such as the bidirectional overrides
+    and isolates (which make text display in another order than it is stored), lone
+    surrogates (not text at all), unassigned and private-use code points, and spaces other
+    than the plain one. Nothing is cut: a long text comes out whole.
+
+    A backslash is left as it is, so that escaping twice changes nothing: field text passes
+    through more than one layer on its way out (a cell escaped before it is measured, then by
+    the table; a notifier's error, then by the table), and a doubled backslash would double
+    again at each. The cost: a text holding the four characters ``\x1b`` shows as one holding
+    an ESC would; ``--format json`` keeps the real text, and a dead letter's payload, shown
+    once by :mod:`limitwatch.payloadview`, has its backslashes doubled before this escaping.
 
     >>> print(printable("kiln-3\x1b[2J/temp\nline 2\x07"))
-    kiln-3\x1b[2J/temp\x0aline 2\x07
+    kiln-3\x1b[2J/temp\nline 2\x07
     >>> printable("pack-2/downtime °C")
     'pack-2/downtime °C'
+    >>> print(printable("abc\u202edcba \ud800 C:\\data"))
+    abc\u202edcba \ud800 C:\data
     """
-    return _UNPRINTABLE.sub(_escape, str(text))
+    text = str(text)
+    if text.isprintable():
+        return text  # the usual case, without a look at each character
+    return "".join(map(_escaped, text))
 
 
 def num(value: float | None, digits: int = 6) -> str:

@@ -35,6 +35,7 @@ from typing import Any
 
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
+from limitwatch.durations import format_elapsed
 from limitwatch.ingest.timeparse import format_time
 
 log = logging.getLogger("limitwatch.outbox")
@@ -83,7 +84,7 @@ class DeliveryWatch:
             if result == "delivered":
                 state.delivered += 1
                 if state.failing_since is not None:
-                    failed_for = _span(now - state.failing_since)
+                    failed_for = format_elapsed(now - state.failing_since)
                     self._emit(
                         f"notifier {notifier} delivers again after {failed_for} of failures "
                         f"({state.failed_while_failing} failed attempt(s) meanwhile); "
@@ -206,14 +207,3 @@ def _iso(t: float | None) -> str | None:
 
 def _age(t: float | None, now: float) -> float | None:
     return None if t is None else round(max(0.0, now - t), 3)
-
-
-def _span(seconds: float) -> str:
-    s = max(0, int(seconds))
-    if s < 60:
-        return f"{s}s"
-    m, s = divmod(s, 60)
-    if m < 60:
-        return f"{m}m{s:02d}s" if s else f"{m}m"
-    h, m = divmod(m, 60)
-    return f"{h}h{m:02d}m" if m else f"{h}h"

@@ -29,7 +29,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 from limitwatch import SAFETY_CAUTION
-from limitwatch.durations import format_duration
+from limitwatch.durations import format_duration, format_elapsed
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.textout import printable
 
@@ -142,7 +142,7 @@ def silence_words(silent_s: float, expected_s: float) -> str:
     'no reading for 2h5m12s (expected within 40m)'
     """
     return (
-        f"no reading for {format_duration(round(silent_s))} "
+        f"no reading for {format_elapsed(silent_s)} "
         f"(expected within {format_duration(expected_s)})"
     )
 
@@ -355,7 +355,7 @@ def _value_lines(p: dict[str, Any]) -> list[tuple[str, str]]:
         # Silent as of the last check that found it so (the incident's last signal).
         created = _num(p.get("time")) or _num(p.get("created_at")) or silent_since
         limit = _num(p.get("limit"))
-        silence = f"silent for {format_duration(max(0, round(created - silent_since)))}"
+        silence = f"silent for {format_elapsed(created - silent_since)}"
         if limit is not None and p.get("rule") == "stale":
             silence += f" (expected within {format_duration(limit)})"
         last = "" if p.get("value") is None else f"{v(p.get('value'))} "
@@ -404,7 +404,7 @@ def _kind_lines(p: dict[str, Any]) -> list[tuple[str, str]]:
         )
     elif kind == "cleared":
         lasted = _num(p.get("lasted_s"))
-        how = f"it lasted {format_duration(max(0, round(lasted)))}" if lasted is not None else ""
+        how = f"it lasted {format_elapsed(lasted)}" if lasted is not None else ""
         out.append(
             ("cleared", f"at {p.get('cleared_at_iso') or 'n/a'}" + (f"; {how}" if how else ""))
         )

@@ -28,7 +28,7 @@ def _incidents_and_silences(
 ) -> None:
     """A bar under the readings for each incident (its span, labelled with its rules), and a
     hatched gap with a marker where the stream went silent."""
-    from limitwatch.durations import format_duration
+    from limitwatch.durations import format_elapsed
 
     for span in data.incidents:
         start, end = max(span.start, left_t), min(span.end or right_t, right_t)
@@ -62,7 +62,7 @@ def _incidents_and_silences(
             axis.axvspan(at(gap.start), at(end), facecolor="white", edgecolor=SILENCE,
                          hatch="///", lw=0, zorder=3.5)  # fmt: skip
             axis.axvline(at(gap.start), color=SILENCE, lw=1.0, ls=(0, (1, 2)), zorder=3.6)
-        words = f"silent {format_duration(round(end - gap.start))}"
+        words = f"silent {format_elapsed(end - gap.start)}"
         if gap.end is None:
             words += ", still"
         ax.annotate(

@@ -25,7 +25,8 @@ from limitwatch.cli.options import (
 )
 from limitwatch.durations import DurationError, parse_duration
 from limitwatch.ingest.timeparse import TimeFormatError, parse_time
-from limitwatch.payloadview import escape_text, view_payload
+from limitwatch.payloadview import view_payload
+from limitwatch.textout import printable
 
 
 def split_reason(stored: str) -> tuple[str, str]:
@@ -192,10 +193,10 @@ def dead_letters_cmd(
         if size > view.size:  # the store kept only the start of it
             view = dataclasses.replace(view, size=size, cut=True)
         click.echo(
-            f"#{row['id']}  {iso_s(row['received_at'])}  {escape_text(row['source'])}  {code}"
+            f"#{row['id']}  {iso_s(row['received_at'])}  {printable(row['source'])}  {code}"
         )
         if detail:
-            click.echo(f"    {escape_text(detail)}")
+            click.echo(f"    {printable(detail)}")
         click.echo(f"    payload ({size} bytes): {view.one_line()}")
     total = sum(counts.values())
     shown = f"{len(rows)} shown of {total}" if total > len(rows) else f"{total}"

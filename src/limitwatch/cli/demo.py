@@ -4,7 +4,9 @@ The demo writes a config and a controller-style CSV export into one folder, star
 :class:`~limitwatch.service.Service` that ``limitwatch serve`` runs (file source, SQLite, console
 notifier), and appends the plant's readings to the export a slice at a time so alerts arrive live.
 With ``--mqtt`` it starts a private Mosquitto on a free loopback port and publishes the readings
-with QoS 1 instead.
+with QoS 1 instead; with ``--sparkplug`` the plant's site gateway publishes them on that broker
+as a Sparkplug B edge node (:mod:`limitwatch.demo_sparkplug`) and the service reads them as a
+Sparkplug host application.
 """
 
 from __future__ import annotations
@@ -23,10 +25,8 @@ from pathlib import Path
 
 import click
 
-from limitwatch import SAFETY_CAUTION, demo_folder
-from limitwatch.config import (
-    load_config,
-)
+from limitwatch import SAFETY_CAUTION, demo_folder, demo_sparkplug
+from limitwatch.config import Config, load_config
 from limitwatch.demo import LEARN, PLANT, STREAMS, generate
 from limitwatch.ingest.timeparse import format_time
 from limitwatch.localbroker import mosquitto_path, private_broker
@@ -43,11 +43,16 @@ def demo_config_text() -> str:
     return resources.files("limitwatch").joinpath("demo.toml").read_text(encoding="utf-8")
 
 
-def _mqtt_config_text(port: int) -> str:
+def _with_source(source: str) -> str:
+    """The demo config with its file source replaced by ``source``."""
     text = demo_config_text()
     start = text.index("[[sources]]")
     end = text.index("[[notifiers]]")
-    source = f"""[[sources]]
+    return text[:start] + source + text[end:]
+
+
+def _mqtt_source(port: int) -> str:
+    return f"""[[sources]]
 type = "mqtt"
 name = "quillmoor-gateway"
 host = "127.0.0.1"
@@ -64,7 +69,6 @@ time = "time"
 time_format = "epoch_s"
 
 """
-    return text[:start] + source + text[end:]
 
 
 @click.command("demo")
@@ -80,13 +84,20 @@ time_format = "epoch_s"
     "--mqtt", "use_mqtt", is_flag=True, help="Feed the readings over a private Mosquitto."
 )
 @click.option(
+    "--sparkplug",
+    "use_sparkplug",
+    is_flag=True,
+    help="Feed the readings as a Sparkplug B edge node (births, data by alias, a device "
+    "death) over a private Mosquitto.",
+)
+@click.option(
     "--pace",
     type=click.FloatRange(0, 5),
     default=0.4,
     show_default=True,
     help="Seconds between slices of readings (0: as fast as possible).",
 )
-def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
+def demo_cmd(folder: str, use_mqtt: bool, use_sparkplug: bool, pace: float) -> None:
     """Run an invented plant through the real service and watch alerts arrive.
 
     Quillmoor Works (it does not exist) has three packaging lines reporting downtime per shift,
@@ -98,10 +109,16 @@ def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
     Example:
       limitwatch demo
       limitwatch demo --mqtt --folder /tmp/quillmoor
+      limitwatch demo --sparkplug
     """
-    if use_mqtt and mosquitto_path() is None:
+    if use_mqtt and use_sparkplug:
+        raise click.UsageError("choose one of --mqtt and --sparkplug")
+    transport = "mqtt" if use_mqtt else "sparkplug" if use_sparkplug else "file"
+    if transport != "file" and mosquitto_path() is None:
         raise click.ClickException(
-            "--mqtt needs Mosquitto on this machine (Debian/Ubuntu: apt-get install mosquitto)"
+            f"--{transport} needs Mosquitto on this machine, and none was found on PATH or "
+            "at /usr/sbin/mosquitto (Debian/Ubuntu: apt-get install mosquitto); plain "
+            "`limitwatch demo` needs no broker"
         )
     root = Path(folder).resolve()
     try:
@@ -110,19 +127,23 @@ def demo_cmd(folder: str, use_mqtt: bool, pace: float) -> None:
         raise click.ClickException(str(exc)) from None
     if replaced is not None:
         click.echo(replaced.describe(root))
-    if not use_mqtt:
+    if transport == "file":
         (root / "demo.toml").write_text(demo_config_text())
-        run_demo(root, use_mqtt=False, pace=pace, echo=click.echo)
+        run_demo(root, transport=transport, pace=pace, echo=click.echo)
         return
+    source = _mqtt_source if transport == "mqtt" else demo_sparkplug.source_config
     try:
         with private_broker(root / "broker", queued=100_000) as port:
-            (root / "demo.toml").write_text(_mqtt_config_text(port))
-            run_demo(root, use_mqtt=True, pace=pace, echo=click.echo)
+            (root / "demo.toml").write_text(_with_source(source(port)))
+            run_demo(root, transport=transport, pace=pace, echo=click.echo)
     except RuntimeError as exc:  # the broker would not start
         raise click.ClickException(str(exc)) from None
 
 
-def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], None]) -> None:
+Feed = Callable[[list[tuple[str, float, float]]], None]
+
+
+def run_demo(root: Path, *, transport: str, pace: float, echo: Callable[[str], None]) -> None:
     from limitwatch.service import Job, Service
 
     config = load_config(root / "demo.toml")
@@ -166,8 +187,9 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
             )
         return True
 
+    closing: list[Callable[[], None]] = []
     try:
-        if use_mqtt:
+        if transport != "file":
             # connect_async returns at once; readings published before the subscription exists
             # would be dropped by the broker (no session yet), so wait for it.
             _wait_for(
@@ -175,12 +197,12 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
                 20,
                 "the demo's service to subscribe on the private broker",
             )
-        feed = _mqtt_feeder(config) if use_mqtt else _file_feeder(root)
+        feed = _feeder(transport, root, config, rows, echo, closing)
         size = max(1, len(rows) // SLICES)
         for start in range(0, len(rows), size):
             chunk = rows[start : start + size]
             feed(chunk)
-            if not use_mqtt:
+            if transport == "file":
                 service.intake.put(Job("poll-files", "quillmoor-export"))
             fed = start + len(chunk)
             _wait_for(partial(_fed, alive, store_path, fed), 20, f"{fed} readings stored")
@@ -193,16 +215,38 @@ def run_demo(root: Path, *, use_mqtt: bool, pace: float, echo: Callable[[str], N
         _wait_for(lambda: alive() and _stale_alerts(store_path) > 0, 10, "the stale check")
         time.sleep(max(pace, 1.0))  # let the console notifier print the last alerts
     finally:
+        for close in closing:
+            close()
         service.request_stop()
         worker.join(timeout=30)
     _summary(root, store_path, echo)
+
+
+def _feeder(
+    transport: str,
+    root: Path,
+    config: Config,
+    rows: list[tuple[str, float, float]],
+    echo: Callable[[str], None],
+    closing: list[Callable[[], None]],
+) -> Feed:
+    """How the readings reach the service; what must be closed afterwards joins ``closing``."""
+    if transport == "file":
+        return _file_feeder(root)
+    if transport == "mqtt":
+        return _mqtt_feeder(config, closing)
+    gateway = demo_sparkplug.PlantGateway(_broker_port(config), rows)
+    gateway.start()
+    closing.append(gateway.close)
+    echo(f"-- {gateway.describe()}")
+    return gateway.feed
 
 
 def _fed(alive: Callable[[], bool], store_path: Path, count: int) -> bool:
     return alive() and _stored(store_path) >= count
 
 
-def _file_feeder(root: Path) -> Callable[[list[tuple[str, float, float]]], None]:
+def _file_feeder(root: Path) -> Feed:
     export = root / "data" / "plant.csv"
     export.write_text("time,stream,value\n")
 
@@ -214,13 +258,25 @@ def _file_feeder(root: Path) -> Callable[[list[tuple[str, float, float]]], None]
     return feed
 
 
-def _mqtt_feeder(config: object) -> Callable[[list[tuple[str, float, float]]], None]:
+def _broker_port(config: Config) -> int:
+    """The private broker's port, as the demo wrote it into its config's one source."""
+    port = getattr(config.sources[0], "port", None)
+    assert isinstance(port, int), "the demo's broker config has a port"
+    return port
+
+
+def _mqtt_feeder(config: Config, closing: list[Callable[[], None]]) -> Feed:
     import paho.mqtt.client as mqtt
 
-    source = config.sources[0]  # type: ignore[attr-defined]
     client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="quillmoor-gateway-sim")
-    client.connect(source.host, source.port)
+    client.connect("127.0.0.1", _broker_port(config))
     client.loop_start()
+
+    def close() -> None:
+        client.loop_stop()
+        client.disconnect()
+
+    closing.append(close)
 
     def feed(chunk: list[tuple[str, float, float]]) -> None:
         infos = [

@@ -25,7 +25,7 @@ from limitwatch.cli.options import (
     iso_s,
     opened,
 )
-from limitwatch.payloadview import escape_text
+from limitwatch.textout import printable
 
 STATES = ("waiting", "given-up", "delivered")
 
@@ -167,7 +167,7 @@ def notifications_cmd(
     )
     for s in summary:
         if s["last_error"]:
-            click.echo(f"{s['notifier']}: last error: {escape_text(s['last_error'])}")
+            click.echo(f"{s['notifier']}: last error: {printable(s['last_error'])}")
     if not chosen:
         click.echo(f"No {state} notifications." if state != "all" else "")
         return
@@ -183,9 +183,9 @@ def notifications_cmd(
                     row_state(r),
                     iso_s(r["created_at"]),
                     str(r["attempts"]),
-                    escape_text(r["last_error"] or "")
+                    printable(r["last_error"] or "")
                     if row_state(r) != "waiting"
-                    else f"{iso_s(r['next_attempt_at'])} {escape_text(r['last_error'] or '')}",
+                    else f"{iso_s(r['next_attempt_at'])} {printable(r['last_error'] or '')}",
                 ]
                 for r in chosen
             ],
