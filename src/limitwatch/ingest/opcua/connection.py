@@ -9,7 +9,9 @@ asyncua is asyncio throughout. The loop only turns data change notifications int
 One session at a time, and each one from scratch: connect (security, user), resolve every item
 (node ids as given, browse paths from the Objects folder, each time: a server restarted with a
 new address space is followed), create one subscription with the configured publishing
-interval, and one monitored item per variable with the sampling interval and queue size. The
+interval, and one monitored item per variable with the sampling interval and queue size,
+reporting every new source time stamp (trigger ``StatusValueTimestamp``), so a value equal to
+the last one is still a reading. The
 session then lasts until asyncua's watchdog (a read of the server state every second) or the
 server (a subscription status change) says it is gone, or the service stops. After a loss, and
 after a failed first connection, the next attempt waits ``reconnect_min_s``, doubling up to
@@ -22,8 +24,8 @@ References
 ----------
 IEC 62541-4:2020 (OPC UA part 4, services): 5.13.2 CreateSubscription (publishing interval,
 keep-alive and lifetime counts), 5.12.2 CreateMonitoredItems (sampling interval, queue size,
-discard oldest), 5.13.1.1 StatusChangeNotification; 6.7 (re-establishing a session after a
-lost connection).
+discard oldest), 7.22.2 DataChangeFilter (trigger), 5.13.1.1 StatusChangeNotification; 6.7
+(re-establishing a session after a lost connection).
 """
 
 from __future__ import annotations
@@ -45,6 +47,16 @@ from limitwatch.ingest.opcua.values import Change
 __all__ = ["OpcuaConnection", "plain_time"]
 
 log = logging.getLogger("limitwatch.opcua")
+
+QUIET = {
+    "asyncua": logging.WARNING,
+    "asyncua.client.ua_client": logging.CRITICAL,
+    "asyncua.client.ua_session": logging.CRITICAL,
+}
+"""asyncua logs each request at INFO, and a lost connection as an ERROR with a traceback from
+its publish loop and a few warnings about closing what is closed; the source says the same in
+one WARNING line (``connection lost: ...``). Set only where the deployment's logging set no
+level of its own."""
 
 WATCHDOG_S = 1.0
 """How often asyncua reads the server's state to notice a connection that died quietly."""
@@ -133,6 +145,11 @@ class OpcuaConnection:
     # -- the worker's side
 
     def start(self) -> None:
+        if logging.getLogger().getEffectiveLevel() > logging.DEBUG:
+            for name, level in QUIET.items():
+                logger = logging.getLogger(name)
+                if logger.level == logging.NOTSET:
+                    logger.setLevel(level)
         self._thread = threading.Thread(target=self._run, name=f"opcua-{self.name}", daemon=True)
         self._thread.start()
 
@@ -325,6 +342,9 @@ class OpcuaConnection:
             params.SamplingInterval = config.sampling_interval * 1000.0
             params.QueueSize = config.queue_size
             params.DiscardOldest = True
+            # Every new sample, even one equal to the last: a moving range of 0 is information
+            # an individuals chart needs (the default trigger reports changes of value only).
+            params.Filter = ua.DataChangeFilter(Trigger=ua.DataChangeTrigger.StatusValueTimestamp)
             request.RequestedParameters = params
             requests.append((item, request))
         if not requests:

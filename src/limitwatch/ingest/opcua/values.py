@@ -23,12 +23,12 @@ The client thread (:mod:`.connection`) turns each data change notification into 
 ...                 0, "Good", 1767225600.0, 1767225600.2, 1767225601.0)
 >>> read_change(change, uncertain="refuse", future_tolerance=300.0).reading
 Reading(stream='press-1/oil-temp', time=1767225600.0, value=41.5, seq=None)
->>> bad = change._replace(status=0x808B0000, status_name="BadSensorFailure")
+>>> bad = change._replace(status=0x808C0000, status_name="BadSensorFailure")
 >>> found = read_change(bad, uncertain="refuse", future_tolerance=300.0)
 >>> found.error
 'bad-status'
 >>> found.detail  # doctest: +ELLIPSIS
-'ns=2;s=Press1.OilTemp (press-1/oil-temp): status BadSensorFailure (0x808B0000) at 2026-...'
+'ns=2;s=Press1.OilTemp (press-1/oil-temp): status BadSensorFailure (0x808C0000) at 2026-...'
 
 References
 ----------
