@@ -19,6 +19,9 @@ Every write is printed as one JSON line on stdout (``{"tick", "node", "value", "
 "time"}``) so a test can compare what the service stored with what the server sent. The first
 line is ``{"ready": true}``, once the server listens.
 
+History: ``--history`` keeps every variable's changes in memory for HistoryRead (asyncua's
+own history storage), from the second tick on.
+
 Security: ``--secure`` offers only Basic256Sha256 SignAndEncrypt with ``--cert``/``--key``,
 accepts only client certificates signed by a CA in ``--trusted`` (a folder), and only the user
 ``--user`` with the password in the environment variable ``OPCUA_TEST_PASSWORD``.
@@ -32,7 +35,7 @@ import json
 import os
 import sys
 import time
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 from asyncua import Server, ua
@@ -77,6 +80,7 @@ async def main() -> None:
     parser.add_argument("--bad", default="", help="ticks at which Vibration is Bad")
     parser.add_argument("--uncertain", default="", help="ticks at which Vibration is Uncertain")
     parser.add_argument("--secure", action="store_true")
+    parser.add_argument("--history", action="store_true", help="keep history (HistoryRead)")
     parser.add_argument("--cert")
     parser.add_argument("--key")
     parser.add_argument("--trusted")
@@ -162,6 +166,8 @@ async def main() -> None:
     # the variables were made with.
     await write(args.start)
     async with server:
+        if args.history:
+            await server.historize_node_data_change(list(nodes.values()), timedelta(days=7))
         say(ready=True)
         for tick in range(args.start + 1, args.start + args.ticks):
             await asyncio.sleep(args.every)

@@ -214,7 +214,11 @@ def test_uncertain_follows_the_setting():
 
 
 def test_severity_is_the_two_top_bits():
-    """IEC 62541-4 7.39: 00 Good, 01 Uncertain, 10 Bad (11 reserved, read as Bad)."""
+    """IEC 62541-4, the StatusCode type: 00 Good, 01 Uncertain, 10 Bad (11 reserved, read as
+    Bad); checked against asyncua's status code table (from the OPC Foundation's list)."""
+    assert severity(ua.StatusCodes.UncertainInitialValue) == "uncertain"
+    assert severity(ua.StatusCodes.BadCommunicationError) == "bad"
+    assert severity(ua.StatusCodes.GoodClamped) == "good"
     assert [severity(s) for s in (0x00000000, 0x406C0000, 0x80000000, 0xC0000000)] == [
         "good",
         "uncertain",

@@ -175,7 +175,7 @@ def assert_unbroken(got: list[tuple[float, float]], wrote: list[tuple[float, flo
 
 def test_changes_refusals_and_a_server_restart_through_the_service(tmp_path):
     port, health_port = free_port(), free_port()
-    epoch = str(round(time.time() - 86_400.0, 3))
+    epoch = str(round(time.time() - 3600.0, 3))  # within backfill_max: history is asked for
     server = OpcuaServer(
         tmp_path, port, "--every", "0.2", "--bad", "30,31", "--uncertain", "33", "--epoch", epoch
     )
@@ -233,6 +233,8 @@ def test_changes_refusals_and_a_server_restart_through_the_service(tmp_path):
         assert up["sources"] == {"hall": True} and up["status"] == "ok"
         assert up["source_state"]["hall"]["sessions"] == 2
         assert "down_since" not in up["source_state"]["hall"]
+        # this server keeps no history (it answers HistoryRead with nothing): the gap stays
+        assert up["source_state"]["hall"]["backfilled"] == 0
         metrics = get(health_port, "metrics")
         assert 'limitwatch_source_connected{source="hall"} 1.0' in metrics
         restarts = [
@@ -261,6 +263,40 @@ def test_changes_refusals_and_a_server_restart_through_the_service(tmp_path):
         assert count(db, "readings") == readings
         assert svc.stop() == 0
         assert "Traceback" not in svc.logs()
+    finally:
+        if svc.alive():
+            svc.kill()
+        server.stop()
+
+
+def test_a_service_restart_is_filled_from_the_servers_history(tmp_path):
+    """While the service is down the server goes on; it keeps history, so the new session
+    reads the gap back (HistoryRead) before the subscription's values: nothing is missing,
+    nothing is stored twice."""
+    epoch = str(round(time.time() - 3600.0, 3))  # within backfill_max (a day) of now
+    server = OpcuaServer(tmp_path, free_port(), "--every", "0.1", "--history", "--epoch", epoch)
+    server.start()
+    health_port = free_port()
+    config = site_config(tmp_path, server.endpoint, health_port)
+    db = tmp_path / "service.db"
+    svc = ServiceProcess(config).start()
+    try:
+        wait_until(lambda: count(db, "readings", "stream = 'press-1/strokes'") >= 10, 60)
+        assert svc.stop() == 0
+        last = max(v for _, v in stored(db, "press-1/strokes"))
+        wait_until(lambda: any(w["tick"] >= last + 20 for w in server.writes()), 30)
+        svc = ServiceProcess(config).start()
+        wait_until(
+            lambda: count(db, "readings", f"stream = 'press-1/strokes' AND value >= {last + 40}"),
+            60,
+        )
+        strokes = stored(db, "press-1/strokes")
+        assert_unbroken(strokes, sent(server, "ns=2;i=5001"))
+        assert {v for _, v in strokes} >= set(range(int(last) - 5, int(last) + 40))
+        assert_unbroken(stored(db, "press-1/oil-temp"), sent(server, "ns=2;s=Press1.OilTemp"))
+        assert health(health_port)["source_state"]["hall"]["backfilled"] >= 4 * 20
+        assert count(db, "dead_letters", "reason LIKE 'duplicate:%' OR reason LIKE 'late:%'") == 0
+        assert svc.stop() == 0
     finally:
         if svc.alive():
             svc.kill()

@@ -11,8 +11,11 @@ One session at a time, and each one from scratch: connect (security, user), reso
 new address space is followed), create one subscription with the configured publishing
 interval, and one monitored item per variable with the sampling interval and queue size,
 reporting every new source time stamp (trigger ``StatusValueTimestamp``), so a value equal to
-the last one is still a reading. The
-session then lasts until asyncua's watchdog (a read of the server state every second) or the
+the last one is still a reading. Before the subscription's values go on the intake, a new
+session fills the gap from the server's history when it keeps one (``backfill``: HistoryRead
+of raw values from each stream's last committed reading to the subscription's first value; the
+live values are held meanwhile, and one the history gave already is dropped). The session then
+lasts until asyncua's watchdog (a read of the server state every second) or the
 server (a subscription status change) says it is gone, or the service stops. After a loss, and
 after a failed first connection, the next attempt waits ``reconnect_min_s``, doubling up to
 ``reconnect_max_s``; a session that reached its subscription starts the wait again from the
@@ -22,10 +25,12 @@ exactly (:attr:`OpcuaConnection.restarts`, ``/health``, ``limitwatch_source_conn
 
 References
 ----------
-IEC 62541-4:2020 (OPC UA part 4, services): 5.13.2 CreateSubscription (publishing interval,
-keep-alive and lifetime counts), 5.12.2 CreateMonitoredItems (sampling interval, queue size,
-discard oldest), 7.22.2 DataChangeFilter (trigger), 5.13.1.1 StatusChangeNotification; 6.7
-(re-establishing a session after a lost connection).
+IEC 62541-4 (OPC UA part 4, services; section numbers of the 1.05 edition as asyncua's
+generated types link them): 5.13.2 CreateSubscription (publishing interval, keep-alive and
+lifetime counts), 7.21 MonitoringParameters (sampling interval, queue size, discard oldest),
+7.22.2 DataChangeFilter (trigger); the StatusChangeNotification, the HistoryRead service and
+re-establishing a session after a lost connection (section numbers not checked).
+IEC 62541-11 (historical access) 6.5.3 ReadRawModifiedDetails.
 """
 
 from __future__ import annotations
@@ -36,7 +41,7 @@ import logging
 import queue
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -121,6 +126,7 @@ class OpcuaConnection:
         password: str | None,
         intake: queue.SimpleQueue[Any],
         clock: Callable[[], float] = time.time,
+        since: Callable[[], Mapping[str, float]] = dict,
     ) -> None:
         self.config = config
         self.name = config.name
@@ -137,6 +143,17 @@ class OpcuaConnection:
         self.item_problems: dict[str, str] = {}
         """Items the server would not monitor in the current session, and why."""
         self.changes = 0
+        self.since = since
+        """The source time of each stream's last committed reading (what a backfill follows)."""
+        self.backfilled = 0
+        self.history_problems: dict[str, str] = {}
+        """Items whose history could not be read at the last backfill, and why."""
+        self._nodes: dict[int, Any] = {}
+        self._last_put: dict[int, float] = {}
+        """Item -> the source time of the last change put on the intake (this process)."""
+        self._held: list[Change] | None = None
+        self._filled_to: dict[int, float] = {}
+        """Item -> the latest source time the last backfill put on the intake."""
         self._thread: threading.Thread | None = None
         self._loop: asyncio.AbstractEventLoop | None = None
         self._stop: asyncio.Event | None = None
@@ -165,30 +182,38 @@ class OpcuaConnection:
     # -- the client thread
 
     def put(self, notification: Any) -> None:
-        handle = int(notification.ClientHandle)
-        index = handle - 1
+        index = int(notification.ClientHandle) - 1
         if not 0 <= index < len(self.streams):
             return
-        data = notification.Value
+        self.changes += 1
+        change = self._change(index, notification.Value)
+        self._note(change)
+        if self._held is not None:
+            self._held.append(change)  # until the backfill before it is on the intake
+        else:
+            self.intake.put(change)
+
+    def _note(self, change: Change) -> None:
+        if change.source_time is not None:
+            self._last_put[change.item] = change.source_time
+
+    def _change(self, index: int, data: Any) -> Change:
         variant = getattr(data, "Value", None)
         status = getattr(data, "StatusCode", None)
         code = int(getattr(status, "value", 0) or 0)
         name = getattr(status, "name", None) or f"0x{code:08X}"
-        self.changes += 1
-        self.intake.put(
-            Change(
-                source=self.name,
-                item=index,
-                stream=self.streams[index],
-                node=self.config.items[index].label,
-                value=_plain_value(getattr(variant, "Value", None)),
-                variant=getattr(getattr(variant, "VariantType", None), "name", "Null"),
-                status=code,
-                status_name=str(name),
-                source_time=plain_time(data.SourceTimestamp),
-                server_time=plain_time(data.ServerTimestamp),
-                received_at=self.clock(),
-            )
+        return Change(
+            source=self.name,
+            item=index,
+            stream=self.streams[index],
+            node=self.config.items[index].label,
+            value=_plain_value(getattr(variant, "Value", None)),
+            variant=getattr(getattr(variant, "VariantType", None), "name", "Null"),
+            status=code,
+            status_name=str(name),
+            source_time=plain_time(data.SourceTimestamp),
+            server_time=plain_time(data.ServerTimestamp),
+            received_at=self.clock(),
         )
 
     def _run(self) -> None:
@@ -252,7 +277,19 @@ class OpcuaConnection:
             self.connected.set()
             self.sessions += 1
             log.info("opcua %s: connected to %s", self.name, config.endpoint)
-            monitored = await self._subscribe(client, lost)
+            marks = self._marks() if config.backfill else {}
+            self._held = [] if marks else None
+            try:
+                monitored = await self._subscribe(client, lost)
+                if monitored and marks:
+                    await self._backfill(marks)
+            finally:
+                held, self._held = self._held or [], None
+                for change in held:
+                    filled = self._filled_to.get(change.item)
+                    moment = change.source_time
+                    if filled is None or moment is None or moment > filled:
+                        self.intake.put(change)  # else the history gave it already
             if monitored:
                 reached = True
                 self.subscribed.set()
@@ -321,6 +358,7 @@ class OpcuaConnection:
 
         config = self.config
         self.item_problems = {}
+        self._nodes = {}
         requests = []
         for index, item in enumerate(config.items):
             try:
@@ -346,7 +384,8 @@ class OpcuaConnection:
             # an individuals chart needs (the default trigger reports changes of value only).
             params.Filter = ua.DataChangeFilter(Trigger=ua.DataChangeTrigger.StatusValueTimestamp)
             request.RequestedParameters = params
-            requests.append((item, request))
+            requests.append((index, request))
+            self._nodes[index] = node
         if not requests:
             return 0
         subscription = await client.create_subscription(
@@ -354,8 +393,10 @@ class OpcuaConnection:
         )
         results = await subscription.create_monitored_items([r for _, r in requests])
         made = 0
-        for (item, _), result in zip(requests, results, strict=True):
+        for (index, _), result in zip(requests, results, strict=True):
+            item = config.items[index]
             if isinstance(result, ua.StatusCode):
+                del self._nodes[index]
                 self.item_problems[item.label] = f"the server refused it: {result.name}"
                 log.error(
                     "opcua %s: item %s: the server refused it: %s",
@@ -366,6 +407,67 @@ class OpcuaConnection:
             else:
                 made += 1
         return made
+
+    def _marks(self) -> dict[int, float]:
+        """Item -> the source time after which its stream has nothing: the later of its last
+        committed reading (kept across restarts) and the last change put on the intake."""
+        committed = self.since()
+        marks = {}
+        for index, stream in enumerate(self.streams):
+            times = [t for t in (committed.get(stream), self._last_put.get(index)) if t is not None]
+            if times:
+                marks[index] = max(times)
+        return marks
+
+    async def _backfill(self, marks: Mapping[int, float]) -> None:
+        """Each monitored item's values from the server's history (HistoryRead, raw) between
+        its stream's last committed reading and the first value of the new subscription, put
+        on the intake in order before that value. At most ``backfill_max`` back; a server or
+        node without history only leaves a note in ``/health``."""
+        config = self.config
+        now = self.clock()
+        self.history_problems = {}
+        self._filled_to = {}
+        found = 0
+        for index, node in self._nodes.items():
+            after = marks.get(index)
+            if after is None:
+                continue
+            start = max(after, now - config.backfill_max)
+            # The subscription's first value of this item, if it has come: the history ends
+            # there. If it has not, the history runs to now, and a held value the history
+            # also gave is dropped when the held values go on the intake.
+            until = min(
+                (c.source_time for c in self._held or () if c.item == index and c.source_time),
+                default=now,
+            )
+            if until <= start:
+                continue
+            label = config.items[index].label
+            try:
+                values = await node.read_raw_history(
+                    datetime.fromtimestamp(start, UTC),
+                    datetime.fromtimestamp(until, UTC),
+                    numvalues=0,
+                    return_bounds=False,
+                )
+            except Exception as exc:
+                self.history_problems[label] = _words(exc)
+                log.info("opcua %s: no history of %s to fill the gap: %s", self.name, label,
+                         _words(exc))  # fmt: skip
+                continue
+            for data in values:
+                moment = plain_time(getattr(data, "SourceTimestamp", None))
+                if moment is not None and after < moment < until:
+                    change = self._change(index, data)
+                    self._note(change)
+                    self.intake.put(change)
+                    self._filled_to[index] = max(moment, self._filled_to.get(index, moment))
+                    found += 1
+        if found:
+            log.info("opcua %s: %d value(s) from the server's history fill the gap", self.name,
+                     found)  # fmt: skip
+        self.backfilled += found
 
 
 def _application_uri(certificate: Any) -> str | None:

@@ -13,12 +13,13 @@
 
 References
 ----------
-IEC 62541-3 (OPC UA part 3, address space): node ids (``ns=<index>;i=|s=|g=|b=<identifier>``)
-and browse names qualified by a namespace index. IEC 62541-4 (part 4, services) 5.12.1.2
-and 5.13.1.2: the sampling interval of a monitored item and the publishing interval of a
-subscription (0 asks for the fastest the server supports). IEC 62541-7 (part 7, profiles): the
-security policies ``None`` and ``Basic256Sha256`` and the message security modes ``Sign`` and
-``SignAndEncrypt``.
+IEC 62541-3 (OPC UA part 3, address space): node ids and browse names qualified by a namespace
+index; their string form (``ns=<index>;i=|s=|g=|b=<identifier>``) is the one IEC 62541-6
+(mappings) gives. IEC 62541-4 (services): the sampling interval of a monitored item and the
+publishing interval of a subscription (0 asks for the fastest the server supports). IEC
+62541-7 (profiles): the security policies ``None`` and ``Basic256Sha256`` and the message
+security modes ``Sign`` and ``SignAndEncrypt``. Section numbers are left out: they moved
+between editions.
 """
 
 from __future__ import annotations
@@ -222,6 +223,11 @@ class OpcuaSourceConfig(SourceSettings):
     password_env: EnvName | None = None
     password_file: ConfigPath | None = None
     security: OpcuaSecurity = Field(default_factory=OpcuaSecurity)
+    backfill: bool = True
+    """After a lost connection or a restart, read what the stream missed from the server's
+    history (HistoryRead), when the server keeps it."""
+    backfill_max: PositiveDuration = 86400.0
+    """How far back a backfill reads at most."""
     request_timeout: PositiveDuration = 10.0
     """How long to wait for the server's answer to a request (connect, browse, subscribe)."""
     reconnect_min_s: float = Field(1.0, ge=0.1, le=3600)

@@ -9,17 +9,19 @@ interval, and never again (a subscription's retransmission queue only covers a P
 response lost on the way, while the session lives). So :meth:`OpcuaSource.acknowledge` tells
 the server nothing. What that means for durability: a change that reached the intake but not
 the store when the service died is lost, and so is every change made while the service was
-down or the connection was lost -- unless the server keeps history (HistoryRead), which this
-source does not read back yet. When a session begins, the server sends each variable's current
-value; that is how the first reading after an outage arrives.
+down or the connection was lost -- unless the server keeps history (HistoryRead): then each
+new session reads the gap back first (``backfill``, see :mod:`.connection`), from each
+stream's last committed reading. When a session begins, the server also sends each variable's
+current value.
 
 **Repeats.** That current value is often the one already stored (the variable did not change
 during the outage). A change with the same source time stamp, status and value as the last one
-committed for its stream is dropped without a dead letter (counted as ``repeats_skipped``)
+parsed for its stream is dropped without a dead letter (counted as ``repeats_skipped``)
 instead of being refused as a ``duplicate`` after every reconnect. The last committed change
-per stream is kept in a small JSON file beside the database, written at most every
-``SAVE_EVERY`` seconds and at a clean stop, so a service restart does not repeat it either
-(after a crash, at worst one ``duplicate`` dead letter per stream).
+per stream is kept in a small JSON file beside the database (written at most every
+``SAVE_EVERY`` seconds and at a clean stop): after a restart it is both what a repeat is
+compared with and where a backfill starts. After a crash the file may be up to ``SAVE_EVERY``
+behind, so a backfill may bring that second's values again (``duplicate`` dead letters).
 """
 
 from __future__ import annotations
@@ -52,7 +54,7 @@ __all__ = ["OpcuaSource"]
 
 log = logging.getLogger("limitwatch.opcua")
 
-SAVE_EVERY = 10.0
+SAVE_EVERY = 1.0
 """Least seconds between two writes of the last committed change per stream."""
 
 
@@ -84,6 +86,9 @@ class OpcuaSource(Source):
         self._idle = threading.Event()
         self._committed: dict[str, list[Any]] = _load(self.state_file)
         """Stream -> key of its last committed change (see :func:`_key`)."""
+        self._marks: dict[str, float] = _times(self._committed)
+        """Stream -> source time of its last committed change, replaced whole (the client
+        thread reads it for a backfill)."""
         self._seen: dict[str, list[Any]] = dict(self._committed)
         """Stream -> key of its last change parsed (committed or about to be)."""
         self._dirty = False
@@ -104,7 +109,7 @@ class OpcuaSource(Source):
         return self._idle if self.client is None else self.client.subscribed
 
     def start(self, intake: queue.SimpleQueue[Any]) -> None:
-        self.client = OpcuaConnection(self.config, self.password, intake)
+        self.client = OpcuaConnection(self.config, self.password, intake, since=lambda: self._marks)
         self.client.start()
 
     def parse(self, item: Change, received_at: float) -> Parsed | None:
@@ -131,11 +136,15 @@ class OpcuaSource(Source):
         """Nothing to tell the server (OPC UA has no acknowledgements); remember the last
         committed change of each stream, so that a new session's first values are not
         stored twice."""
+        changed = False
         for item in items:
             key = _key(item)
             if key is not None:
                 self._committed[item.stream] = key
-                self._dirty = True
+                changed = True
+        if changed:
+            self._dirty = True
+            self._marks = _times(self._committed)
         if self._dirty and time.monotonic() - self._saved_at >= SAVE_EVERY:
             self._save()
 
@@ -166,6 +175,9 @@ class OpcuaSource(Source):
         detail["changes_received"] = client.changes
         if client.down_since is not None:
             detail["down_since"] = format_time(client.down_since)
+        detail["backfilled"] = client.backfilled
+        if client.history_problems:
+            detail["history_not_read"] = dict(client.history_problems)
         if client.item_problems:
             detail["items_not_monitored"] = dict(client.item_problems)
         return SourceHealth(
@@ -181,6 +193,10 @@ class OpcuaSource(Source):
             self.client.close(timeout=self.config.request_timeout + 5.0)
         if self._dirty:
             self._save()
+
+
+def _times(committed: dict[str, list[Any]]) -> dict[str, float]:
+    return {stream: float(key[0]) for stream, key in committed.items() if isinstance(key[0], float)}
 
 
 def _load(path: Path | None) -> dict[str, list[Any]]:

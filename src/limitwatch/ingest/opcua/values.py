@@ -3,11 +3,12 @@
 The client thread (:mod:`.connection`) turns each data change notification into a
 :class:`Change` of plain Python values; :func:`read_change` decides, on the worker's thread:
 
-* **status** (IEC 62541-4, 7.39: the two highest bits of a status code are its severity,
-  ``00`` Good, ``01`` Uncertain, ``10`` Bad, ``11`` reserved and read as Bad): a Bad value is
-  refused as ``bad-status`` with the status's name in the detail; an Uncertain one is a reading
-  or an ``uncertain-status`` refusal, as the source's ``uncertain`` key says. The low bits
-  (info bits such as "overflow") do not change the severity;
+* **status** (IEC 62541-4, the StatusCode type: the two highest bits of a status code are
+  its severity, ``00`` Good, ``01`` Uncertain, ``10`` Bad, ``11`` reserved and read as Bad):
+  a Bad value is refused as ``bad-status`` with the status's name in the detail; an
+  Uncertain one is a reading or an ``uncertain-status`` refusal, as the source's
+  ``uncertain`` key says. The low bits (info bits such as "overflow") do not change the
+  severity;
 * **value**: an integer or floating-point number becomes the reading's value; a Boolean is
   refused (``not-a-number``): it is a state (a pump on or off), and an individuals chart of
   zeros and ones says nothing a state change alarm would not say better; text, byte strings,
@@ -32,10 +33,10 @@ Reading(stream='press-1/oil-temp', time=1767225600.0, value=41.5, seq=None)
 
 References
 ----------
-IEC 62541-4:2020 (OPC UA part 4, services), 7.39 StatusCode (severity bits) and 7.7 DataValue
-(SourceTimestamp, ServerTimestamp: "If the source timestamp is missing ... the server
-timestamp" is what a client has); IEC 62541-6 (part 6, mappings) 5.1 for the built-in types
-whose values arrive here.
+IEC 62541-4 (OPC UA part 4, services): the StatusCode type (its two severity bits) and the
+DataValue type (SourceTimestamp, ServerTimestamp; a server may leave the source time stamp
+out); IEC 62541-6 (part 6, mappings) for the built-in types whose values arrive here. Section
+numbers are left out: they moved between editions.
 """
 
 from __future__ import annotations
@@ -85,7 +86,7 @@ def raw_text(change: Change) -> str:
 
 
 def severity(status: int) -> Literal["good", "uncertain", "bad"]:
-    """The severity of a status code (IEC 62541-4, 7.39).
+    """The severity of a status code (IEC 62541-4, the StatusCode type).
 
     >>> severity(0), severity(0x40000000), severity(0x80340000), severity(0xC0000000)
     ('good', 'uncertain', 'bad', 'bad')
