@@ -137,6 +137,25 @@ def test_config_errors_name_the_key(change_to, path, words):
     assert words in found[path]
 
 
+def test_check_warns_of_a_password_without_security_and_of_two_items_on_one_stream(tmp_path):
+    config = config_from_dict(
+        {
+            "sources": [
+                {
+                    **SITE,
+                    "username": "limitwatch",
+                    "password_env": "LW_TEST_OPCUA_PW",
+                    "stream": "hall",
+                    "items": [{"node": "ns=2;i=1"}, {"node": "ns=2;i=2"}],
+                }
+            ]
+        }
+    )
+    said = {p.path: p.message for p in config.warnings()}
+    assert "policy None" in said["sources[0].security.policy"]
+    assert "same stream 'hall' as items[0]" in said["sources[0].items[1]"]
+
+
 def test_basic256sha256_needs_its_mode_certificates_and_a_server_to_trust():
     found = problems({**SITE, "security": {"policy": "Basic256Sha256"}})
     assert set(found) >= {
