@@ -824,7 +824,7 @@ def test_the_demo_config_matches_the_demo_scenario():
 def test_the_example_config_loads():
     config = load_config(EXAMPLE)
     assert config.warnings() == []
-    assert {s.type for s in config.sources} == {"mqtt", "file", "sparkplug", "kafka"}
+    assert {s.type for s in config.sources} == {"mqtt", "file", "sparkplug", "kafka", "opcua"}
     assert config.bridge is not None and config.bridge.kafka.topic == "plant-readings"
     assert {type(s) for s in config.sources} >= {MqttSourceConfig, FileSourceConfig}
     assert config.alert_policy().escalate_after_s == 1800.0

@@ -78,8 +78,8 @@ def test_every_registered_source_has_an_integration_test_through_the_service(kin
 
 
 def test_an_unknown_source_type_lists_the_installed_ones():
-    with pytest.raises(UnknownPluginError, match=r"unknown source type 'opcua'.*file.*mqtt"):
-        SOURCES.load("opcua")
+    with pytest.raises(UnknownPluginError, match=r"unknown source type 'historian'.*file.*mqtt"):
+        SOURCES.load("historian")
 
 
 PLUGIN = '''
