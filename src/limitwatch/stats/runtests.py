@@ -54,7 +54,7 @@ import operator
 from typing import Any, ClassVar
 
 from limitwatch.stats.constants import MR_UCL_SIGMA
-from limitwatch.stats.signal import Chart, Side, Signal, Stateful
+from limitwatch.stats.signal import Chart, Side, Signal, Stateful, refuse_reading
 
 _isfinite = math.isfinite
 
@@ -89,15 +89,6 @@ def _count(name: str, value: Any, low: int, high: int = MAX_LENGTH) -> int:
     if n > high:
         raise ValueError(f"{name} must be at most {high}, got {value!r}")
     return n
-
-
-def _refuse(rule: str, last: int | None, index: int, value: float) -> None:
-    """Raise for a value or position that would corrupt the state (kept out of the hot path)."""
-    if not _isfinite(value):
-        raise ValueError(f"{rule}: reading {index} is not a finite number ({value!r})")
-    raise ValueError(
-        f"{rule}: expected reading position {last + 1 if last is not None else 0}, got {index}"
-    )
 
 
 class _Rule(Stateful):
@@ -145,12 +136,12 @@ class BeyondLimits(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         if value > self.k or value < -self.k:
             if not _isfinite(value):
-                _refuse(self.rule, None, index, value)
+                refuse_reading(self.rule, None, index, value)
             side: Side = "upper" if value > 0.0 else "lower"
             bound = self.k if value > 0.0 else -self.k
             return Signal(self.rule, "x", side, index, (index,), value, bound)
         if value != value:
-            _refuse(self.rule, None, index, value)
+            refuse_reading(self.rule, None, index, value)
         return None
 
 
@@ -180,7 +171,7 @@ class _CountInWindow(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _refuse(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         up = ((self._up << 1) | (value > self.boundary)) & self._full
         down = ((self._down << 1) | (value < -self.boundary)) & self._full
@@ -276,7 +267,7 @@ class RunOneSide(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _refuse(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         run = self._run  # signed: +n for n readings above the center, -n below
         if value > 0.0:
@@ -331,7 +322,7 @@ class Trend(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _refuse(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         prev, run = self._prev, self._run  # signed count of readings in the current trend, 0 = none
         if prev is None or value == prev:
@@ -385,7 +376,7 @@ class Alternating(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _refuse(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         prev = self._prev
         step = 0 if prev is None else (value > prev) - (value < prev)
@@ -434,7 +425,7 @@ class HuggingCenter(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _refuse(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         n = self._len + 1 if -self.boundary < value < self.boundary else 0
         if n >= self.length:
@@ -476,7 +467,7 @@ class AvoidingCenter(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _refuse(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         n = self._len + 1 if (value > self.boundary or value < -self.boundary) else 0
         if n >= self.length:
@@ -513,7 +504,7 @@ class MrBeyondLimit(_Rule):
     def update(self, index: int, value: float) -> Signal | None:
         if value > self.limit or not value >= 0.0:
             if not _isfinite(value):
-                _refuse(self.rule, None, index, value)
+                refuse_reading(self.rule, None, index, value)
             if value < 0.0:
                 raise ValueError(f"{self.rule}: a moving range cannot be negative, got {value!r}")
             involved = (index - 1, index) if index > 0 else (index,)

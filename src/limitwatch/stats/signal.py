@@ -8,9 +8,10 @@ baseline and the same detector object serves any stream. The engine turns a dete
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, ClassVar, Literal, Protocol, Self, runtime_checkable
+from typing import Any, ClassVar, Literal, NoReturn, Protocol, Self, runtime_checkable
 
 Chart = Literal["x", "mr"]
 Side = Literal["upper", "lower", "both"]
@@ -38,6 +39,20 @@ class Signal:
     """The detector's own statistic when it has one (EWMA value, CUSUM sum, moving range)."""
     limit: float | None = None
     """The threshold that statistic crossed, in the same units."""
+
+
+def refuse_reading(rule: str, last: int | None, index: int, value: float) -> NoReturn:
+    """Raise for a reading that would corrupt a detector's state: a value that is not a finite
+    number, else a position that does not follow ``last`` (the last position seen).
+
+    One wording for every detector. Detectors call it only after their own inline test has
+    failed, so a good reading never pays for the call.
+    """
+    if not math.isfinite(value):
+        raise ValueError(f"{rule}: reading {index} is not a finite number ({value!r})")
+    raise ValueError(
+        f"{rule}: expected reading position {last + 1 if last is not None else 0}, got {index}"
+    )
 
 
 @runtime_checkable

@@ -36,7 +36,7 @@ import math
 from collections.abc import Sequence
 from typing import Any, ClassVar
 
-from limitwatch.stats.signal import Chart, Side, Signal, Stateful
+from limitwatch.stats.signal import Chart, Side, Signal, Stateful, refuse_reading
 
 _isfinite = math.isfinite
 _EWMA_WEIGHT_SHARE = 0.99
@@ -60,13 +60,6 @@ def _number(name: str, value: Any, low: float, high: float, *, open_low: bool) -
         bound = "(" if open_low else "["
         raise ValueError(f"{name} must be a number in {bound}{low}, {high}], got {value!r}")
     return x
-
-
-def _check(rule: str, last: int | None, index: int, value: float) -> None:
-    if not _isfinite(value):
-        raise ValueError(f"{rule}: reading {index} is not a finite number ({value!r})")
-    if last is not None and index != last + 1:
-        raise ValueError(f"{rule}: expected reading position {last + 1}, got {index}")
 
 
 @functools.lru_cache(maxsize=256)
@@ -183,7 +176,7 @@ class Ewma(Stateful):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _check(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         w = self.lam * value + self._keep * self._w
         n = self._n + 1
@@ -259,7 +252,7 @@ class Cusum(Stateful):
     def update(self, index: int, value: float) -> Signal | None:
         last = self._last
         if not _isfinite(value) or (last is not None and index != last + 1):
-            _check(self.rule, last, index, value)
+            refuse_reading(self.rule, last, index, value)
         self._last = index
         up = self._up + value - self.k
         down = self._down - value - self.k
