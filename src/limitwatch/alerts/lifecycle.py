@@ -50,7 +50,7 @@ from memory.)
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 
 from limitwatch.alerts.decisions import (
     BookReport,
@@ -161,14 +161,17 @@ class AlertBook:
         return {s: live[s] for s in streams if s in live}
 
     def _surge(self, now: float) -> FloodInput | None:
-        """What the store knows of floods: three small indexed reads per batch."""
+        """What the store knows of floods: three small indexed reads per batch. The next
+        number first: on a shared store that waits for any other worker's decision in flight,
+        so the flood read after it is the one this decision writes over."""
         if self.policy.flood_after is None:
             return None
         store = self.store
+        next_id = store.next_flood_id()
         return FloodInput(
             tuple(store.changes_since(now - self.policy.flood_window_s)),
             store.live_flood(),
-            store.next_flood_id(),
+            next_id,
         )
 
     def _add_recent(self, rows: Sequence[OutboxRow]) -> None:
@@ -237,13 +240,34 @@ class AlertBook:
             )
             return self._write(decision)
 
-    def tick(self, now: float) -> BookReport:
-        """Queue the reminders, escalations and announcements due at ``now``."""
+    def tick(self, now: float, mine: Callable[[str], bool] | None = None) -> BookReport:
+        """Queue the reminders, escalations and announcements due at ``now``, for the live
+        incidents of the streams ``mine`` accepts (None: all of them).
+
+        Several workers on one store (Kafka partitions) each pass the streams they own now
+        (:meth:`~limitwatch.ingest.base.Source.looks_after`), so an incident is reminded by
+        the one worker whose batches also change it, never by two at once. A lone service
+        passes nothing and ticks every incident.
+
+        What is site-wide runs on every worker's tick, once in all: a flood's end (the surge
+        has passed) is found by whichever decision, a batch's or a tick's, first reads the
+        floods after it, and the flood notice's key makes a repeat of it a no-op. Once, because
+        the tick first waits for any other worker's decision in flight (``decide_alone``: on
+        PostgreSQL the numbering lock every batch takes too; on SQLite the write lock of BEGIN
+        IMMEDIATE) and only then reads. Without that wait two PostgreSQL ticks could both end
+        the flood, and an incident both read was written back twice (its notice once, by the
+        outbox key, but its ``reminded`` event twice, and a batch's change in between undone).
+        """
         with self.store.transaction():
-            # Before reading: on a shared (PostgreSQL) store an acknowledgement now waits for
-            # this transaction, so what is written back below cannot undo one.
-            self.store.data_version()
-            live = {a.stream: a for a in self.store.live_alerts()}
+            # Before reading: other workers' decisions and, on a shared (PostgreSQL) store, an
+            # acknowledgement wait for this transaction, so what is written back below cannot
+            # undo one. (It takes the change counter first, as batches do: no deadlock.)
+            self.store.decide_alone()
+            live = {
+                a.stream: a
+                for a in self.store.live_alerts()
+                if mine is None or mine(a.stream)
+            }
             decision = decide_tick(
                 live,
                 shelves=self.store.active_shelves(now),
