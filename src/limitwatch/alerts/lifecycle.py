@@ -244,19 +244,25 @@ class AlertBook:
         """Queue the reminders, escalations and announcements due at ``now``, for the live
         incidents of the streams ``mine`` accepts (None: all of them).
 
-        Several workers on one store (Kafka partitions) each pass the streams they own now
-        (:meth:`~limitwatch.ingest.base.Source.looks_after`), so an incident is reminded by
-        the one worker whose batches also change it, never by two at once. A lone service
-        passes nothing and ticks every incident.
+        Several workers on one store (Kafka partitions) each pass the streams whose partitions
+        they own now (:meth:`~limitwatch.ingest.base.Source.looks_after`), so an incident is
+        reminded by the one worker whose batches change it too. A lone service passes nothing
+        and ticks every incident, as before. Why not every worker over every incident: on
+        PostgreSQL a worker's kept copy of its incidents (see the class) goes stale unseen when
+        another worker writes one (``data_version`` moves only for an operator's command), so
+        its next batch decides from the old incident and writes it back (tried: a reminder
+        the other worker had sent was sent again, the notice kept once by its outbox key but
+        the ``reminded`` event twice); and two ticks that read the same incident both queued
+        its reminder, with the same result.
 
-        What is site-wide runs on every worker's tick, once in all: a flood's end (the surge
-        has passed) is found by whichever decision, a batch's or a tick's, first reads the
-        floods after it, and the flood notice's key makes a repeat of it a no-op. Once, because
-        the tick first waits for any other worker's decision in flight (``decide_alone``: on
-        PostgreSQL the numbering lock every batch takes too; on SQLite the write lock of BEGIN
-        IMMEDIATE) and only then reads. Without that wait two PostgreSQL ticks could both end
-        the flood, and an incident both read was written back twice (its notice once, by the
-        outbox key, but its ``reminded`` event twice, and a batch's change in between undone).
+        The site-wide part, a flood's end, stays on every worker's ticks and batches and
+        happens once: whichever decision first reads the floods after the surge has passed
+        ends it, and the others then read it ended. That holds because the tick first waits
+        for other workers' decisions in flight (``decide_alone``: on PostgreSQL the numbering
+        lock, which batches take before they read floods; on SQLite the write lock of BEGIN
+        IMMEDIATE) and reads only after. Before, a PostgreSQL tick read with only a shared
+        lock on the change counter, which keeps no other worker's tick or batch out: two ticks
+        at once both ended the flood (``tests/test_tick_owners.py``).
         """
         with self.store.transaction():
             # Before reading: other workers' decisions and, on a shared (PostgreSQL) store, an
