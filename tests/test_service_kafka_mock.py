@@ -322,3 +322,123 @@ def test_a_kafka_source_beside_another_source_is_refused_before_anything_is_read
     finally:
         service.close()
     assert not (tmp_path / "plant.db").exists()
+
+
+def test_looks_after_only_settled_streams_of_owned_partitions_by_default_all() -> None:
+    """Reminders follow the same owner as stale checks, and wait as they do; a source that
+    shares nothing (the base class) looks after every stream."""
+    from limitwatch.ingest.base import Source
+    from limitwatch.ingest.kafka.source import Owned
+    from limitwatch.ingest.payload import SourceParser
+
+    settings = KafkaSourceConfig.model_validate(
+        {
+            "type": "kafka", "name": "readings", "bootstrap_servers": "127.0.0.1:9",
+            "topic": TOPIC, "group_id": "g", "settle": "10s",
+            "topics": [{"filter": "plant/+/+", "stream": "{2}/{3}", "payload": "number"}],
+        }
+    )
+    source = KafkaSource(settings, SourceParser(settings), "w-1", {}, None)
+    assert Source.looks_after(source, "any/stream", T0)  # the base class's answer
+    mine = "oven-1/temp"
+    assert not source.looks_after(mine, T0)  # no assignment yet: nobody's here
+    source.partitions = 4
+    now = T0 + 1000.0
+    source._owned[partition_of(mine, 4)] = Owned(generation=1, assigned_at=now, assigned_mono=0)
+    elsewhere = next(
+        s for s in (f"oven-{i}/temp" for i in range(2, 50))
+        if partition_of(s, 4) != partition_of(mine, 4)
+    )
+    assert not source.looks_after(mine, now + 5)  # just assigned
+    source._owned[partition_of(mine, 4)].last_received = now + 12
+    assert source.looks_after(mine, now + 15)
+    assert not source.looks_after(elsewhere, now + 15)
+    # A stream read from another partition than the hash says (a producer keyed otherwise)
+    # belongs to the partition it came from.
+    source._where[elsewhere] = partition_of(mine, 4)
+    assert source.looks_after(elsewhere, now + 15)
+
+
+def reminders(db: Path) -> dict[str, list[int]]:
+    """Stream -> the numbers of the reminders its incident queued, in order (from its
+    ``reminded`` events: a delivered outbox row does not stay)."""
+    out: dict[str, list[int]] = {}
+    for stream, data in query(
+        db,
+        "SELECT a.stream, e.data_json FROM alert_events e JOIN alerts a ON a.id = e.alert_id "
+        "WHERE e.kind = 'reminded' ORDER BY e.id",
+    ):
+        _, kind, number = json.loads(data)["event_id"].split(":")
+        assert kind == "reminder"
+        out.setdefault(stream, []).append(int(number))
+    return out
+
+
+def test_each_worker_reminds_the_incidents_of_its_own_partitions_and_takes_over_once(
+    tmp_path: Path, mock_cluster: tuple[Producer, str]
+) -> None:
+    """Two workers of one group on one SQLite file, each owning two partitions: an alert tick
+    on one reminds only its own partitions' incidents; once the other has left, the remaining
+    worker reminds them all, each once."""
+    from limitwatch.service.jobs import Job
+
+    producer, brokers = mock_cluster
+    streams = [f"kiln-{i}/temp" for i in range(12)]
+    assert {partition_of(s, 4) for s in streams} == {0, 1, 2, 3}
+    for s in streams:
+        produce(producer, s, T0, 20.0)
+        produce(producer, s, T0 + 60, 35.0)  # beyond the typed-in limits: an incident each
+    assert producer.flush(10) == 0
+    db = tmp_path / "plant.db"
+    clock = [time.time()]
+    extra = (
+        '\n[alerts]\nrepeat_every = "10m"\nescalate_after = "off"\nflood_after = "off"\n'
+        '\n[defaults]\nbaseline = { center = 20.0, sigma = 1.0 }\n'
+    )
+
+    def configured(member: str) -> Service:
+        path = write_config(tmp_path, brokers, member)
+        text = path.read_text().replace('stale_check_every = "1s"', 'stale_check_every = "1d"')
+        path.write_text(text.replace("[[notifiers]]", extra + "\n[[notifiers]]", 1))
+        return Service(load_config(path), clock=lambda: clock[0])
+
+    def settled(service: Service) -> bool:
+        source = kafka_source(service)
+        consumer = source.consumer
+        owned = list(source._owned.values())
+        return bool(owned) and consumer is not None and all(
+            consumer.drained_at > o.assigned_mono for o in owned
+        )
+
+    def tick(service: Service) -> None:
+        service.intake.put(Job("alert-tick"))
+        wait_until(
+            lambda: service._job_ran.get("alert-tick", (0, 0))[1] == clock[0], 30, "the tick"
+        )
+
+    with running(configured("worker-a")) as a:
+        wait_until(lambda: count(db, "alerts") == len(streams), 60, "an incident per stream")
+        with running(configured("worker-b")) as b:
+            wait_until(
+                lambda: kafka_source(a).owned and kafka_source(b).owned
+                and set(kafka_source(a).owned) | set(kafka_source(b).owned) == {0, 1, 2, 3},
+                60,
+                "the partitions shared out",
+            )
+            wait_until(lambda: settled(a) and settled(b), 30, "both caught up")
+            owned_a = set(kafka_source(a).owned)
+            assert not owned_a & set(kafka_source(b).owned)
+            clock[0] += 700  # the first reminder is due everywhere
+            tick(a)
+            mine = {s for s in streams if partition_of(s, 4) in owned_a}
+            assert mine and mine != set(streams)
+            assert reminders(db) == {s: [1] for s in mine}
+            tick(b)
+            assert reminders(db) == {s: [1] for s in streams}
+        # worker-b has left: worker-a owns every partition, and reminds every incident.
+        wait_until(lambda: set(kafka_source(a).owned) == {0, 1, 2, 3}, 60, "the takeover")
+        wait_until(lambda: settled(a), 30, "worker-a caught up")
+        clock[0] += 700
+        tick(a)
+        tick(a)
+        assert reminders(db) == {s: [1, 2] for s in streams}

@@ -50,7 +50,7 @@ from memory.)
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 
 from limitwatch.alerts.decisions import (
     BookReport,
@@ -161,14 +161,17 @@ class AlertBook:
         return {s: live[s] for s in streams if s in live}
 
     def _surge(self, now: float) -> FloodInput | None:
-        """What the store knows of floods: three small indexed reads per batch."""
+        """What the store knows of floods: three small indexed reads per batch. The next
+        number first: on a shared store that waits for any other worker's decision in flight,
+        so the flood read after it is the one this decision writes over."""
         if self.policy.flood_after is None:
             return None
         store = self.store
+        next_id = store.next_flood_id()
         return FloodInput(
             tuple(store.changes_since(now - self.policy.flood_window_s)),
             store.live_flood(),
-            store.next_flood_id(),
+            next_id,
         )
 
     def _add_recent(self, rows: Sequence[OutboxRow]) -> None:
@@ -237,13 +240,40 @@ class AlertBook:
             )
             return self._write(decision)
 
-    def tick(self, now: float) -> BookReport:
-        """Queue the reminders, escalations and announcements due at ``now``."""
+    def tick(self, now: float, mine: Callable[[str], bool] | None = None) -> BookReport:
+        """Queue the reminders, escalations and announcements due at ``now``, for the live
+        incidents of the streams ``mine`` accepts (None: all of them).
+
+        Several workers on one store (Kafka partitions) each pass the streams whose partitions
+        they own now (:meth:`~limitwatch.ingest.base.Source.looks_after`), so an incident is
+        reminded by the one worker whose batches change it too. A lone service passes nothing
+        and ticks every incident, as before. Why not every worker over every incident: on
+        PostgreSQL a worker's kept copy of its incidents (see the class) goes stale unseen when
+        another worker writes one (``data_version`` moves only for an operator's command), so
+        its next batch decides from the old incident and writes it back (tried: a reminder
+        the other worker had sent was sent again, the notice kept once by its outbox key but
+        the ``reminded`` event twice); and two ticks that read the same incident both queued
+        its reminder, with the same result.
+
+        The site-wide part, a flood's end, stays on every worker's ticks and batches and
+        happens once: whichever decision first reads the floods after the surge has passed
+        ends it, and the others then read it ended. That holds because the tick first waits
+        for other workers' decisions in flight (``decide_alone``: on PostgreSQL the numbering
+        lock, which batches take before they read floods; on SQLite the write lock of BEGIN
+        IMMEDIATE) and reads only after. Before, a PostgreSQL tick read with only a shared
+        lock on the change counter, which keeps no other worker's tick or batch out: two ticks
+        at once both ended the flood (``tests/test_tick_owners.py``).
+        """
         with self.store.transaction():
-            # Before reading: on a shared (PostgreSQL) store an acknowledgement now waits for
-            # this transaction, so what is written back below cannot undo one.
-            self.store.data_version()
-            live = {a.stream: a for a in self.store.live_alerts()}
+            # Before reading: other workers' decisions and, on a shared (PostgreSQL) store, an
+            # acknowledgement wait for this transaction, so what is written back below cannot
+            # undo one. (It takes the change counter first, as batches do: no deadlock.)
+            self.store.decide_alone()
+            live = {
+                a.stream: a
+                for a in self.store.live_alerts()
+                if mine is None or mine(a.stream)
+            }
             decision = decide_tick(
                 live,
                 shelves=self.store.active_shelves(now),

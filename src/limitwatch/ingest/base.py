@@ -25,8 +25,9 @@ streams of its partitions; set :attr:`Source.partial`) also gets a :class:`Strea
 its context, to take streams on and give them up on the worker's thread, and three hooks:
 :meth:`Source.within` does its part of each batch's transaction (the partition offsets, fenced
 by owner and generation), :meth:`Source.fenced` hears that a batch was refused because a
-partition was taken over, and :meth:`Source.stale_allowed` holds stale checks back while the
-source is not settled (just assigned, or behind).
+partition was taken over, :meth:`Source.stale_allowed` holds stale checks back while the
+source is not settled (just assigned, or behind), and :meth:`Source.looks_after` says which
+streams' incidents this worker's alert tick reminds, escalates and announces.
 
 Sources are found by type name in the ``limitwatch.sources`` entry-point group
 (:mod:`limitwatch.ingest.registry`) and built from their validated settings
@@ -264,6 +265,13 @@ class Source(ABC):
     def stale_allowed(self, stream: str, now: float) -> bool:
         """May the stale check open an incident for ``stream`` now? A source that was just
         given the stream, or is behind on it, says no until it has settled. Default: yes."""
+        return True
+
+    def looks_after(self, stream: str, now: float) -> bool:
+        """Is this worker the one to send the reminders, escalations and announcements of
+        ``stream``'s incidents at ``now``? A source that shares streams with other workers says
+        yes for the streams it owns (and has settled on), so each incident has one sender.
+        Default: yes, every stream is this worker's."""
         return True
 
     def health(self) -> SourceHealth:

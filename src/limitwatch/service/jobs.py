@@ -143,7 +143,11 @@ def run_job(service: Service, job: Job) -> None:
             if report.queued and service.outbox is not None:
                 service.outbox.wake()
     elif job.kind == "alert-tick":
-        report = service.book.tick(now)
+        # On several workers sharing the store, each ticks the incidents of its own streams.
+        sources = tuple(service.sources.values())
+        report = service.book.tick(
+            now, mine=lambda stream: all(src.looks_after(stream, now) for src in sources)
+        )
         service._count_floods(report.flood_started, report.flood_ended)
         if report.queued and service.outbox is not None:
             service.outbox.wake()

@@ -369,6 +369,14 @@ class IncidentsArea(StoreBase):
         """Every flood, oldest first."""
         return [_flood(r) for r in self._all("SELECT * FROM floods ORDER BY id")]
 
+    def decide_alone(self) -> None:
+        """Call first inside a lifecycle transaction whose reads decide what other workers on
+        the same store may decide too (a tick: a flood's end): nobody else's decision runs
+        between these reads and this commit. On PostgreSQL this is the numbering lock, which
+        every batch takes anyway before it numbers or reads floods; SQLite's write lock, taken
+        at BEGIN IMMEDIATE, does it already."""
+        self.sql.lock_numbering()
+
     def next_flood_id(self) -> int:
         self.sql.lock_numbering()
         row = self.sql.execute("SELECT coalesce(max(id), 0) + 1 FROM floods").fetchone()

@@ -134,9 +134,11 @@ class Bridge:
                 batch.append(self.intake.get_nowait())
             except queue.Empty:
                 break
-        for delivery in batch:
-            if isinstance(delivery, Delivery):
-                self._produce(producer, delivery, waiting)
+        for item in batch:
+            # The MQTT connection puts each pipe message's deliveries on the intake as one list.
+            for delivery in item if type(item) is list else (item,):
+                if isinstance(delivery, Delivery):
+                    self._produce(producer, delivery, waiting)
 
     def _produce(
         self, producer: Producer, delivery: Delivery, waiting: collections.deque[_Waiting]

@@ -163,7 +163,8 @@ class KafkaSourceConfig(SourceSettings, KafkaConnection):
     group (a stalled worker); its late batch is then refused by the store's fence."""
     settle: PositiveDuration = 30.0
     """After a partition is assigned, stale checks of its streams wait this long and until
-    the worker has caught up, so a rebalance pause opens no false ``stale`` incident."""
+    the worker has caught up, so a rebalance pause opens no false ``stale`` incident; the
+    reminders, escalations and announcements of their incidents wait the same."""
     max_payload_bytes: int = Field(65536, ge=1, le=268_435_455)
     topics: list[MqttTopic] = Field(min_length=1)
     """MQTT topic (from the bridge's header, else the message key) -> stream and payload."""

@@ -234,6 +234,23 @@ class KafkaSource(Source):
         return parsed.origin is None or parsed.origin[0] in self._owned
 
     def stale_allowed(self, stream: str, now: float) -> bool:
+        return self._settled(stream, now)
+
+    def looks_after(self, stream: str, now: float) -> bool:
+        """The owner of the stream's partition, once settled as for stale checks. Settling
+        holds a reminder back by ``settle`` seconds, or until the backlog is read, and never
+        loses one (what is due is reckoned from the incident's last notice in the store, and a
+        late tick sends one reminder, not a backlog). It buys two things: the backlog the new
+        owner is still reading may clear or raise the incident, and a reminder sent first
+        would be about what is over; and a former owner that stalled past
+        ``max_poll_interval`` (a lost partition, still in its ``_owned`` until its next batch
+        is fenced) gets that long to wake and drop it before two workers could both remind."""
+        return self._settled(stream, now)
+
+    def _settled(self, stream: str, now: float) -> bool:
+        """This worker owns the stream's partition, was given it ``settle`` ago or longer,
+        and has caught up on it (the consumer came back empty since, or read a record the
+        bridge received within ``settle``)."""
         partition = self._where.get(stream)
         if partition is None and self.partitions:
             partition = partition_of(stream, self.partitions)
