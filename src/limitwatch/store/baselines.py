@@ -108,5 +108,5 @@ class BaselinesArea(StoreBase):
 
         Rows come as plain tuples, not as a dict each: a restart asks this once for every
         stream of the site, and making 100,000 dicts took longer than the query."""
-        rows = self.sql.execute("SELECT stream, max(version) FROM baselines GROUP BY stream")
-        return {stream: int(version) for stream, version in rows}
+        sql = "SELECT stream, max(version) FROM baselines GROUP BY stream"
+        return {stream: int(version) for stream, version in self.sql.execute(sql).fetchall()}
