@@ -463,8 +463,13 @@ def test_a_stored_baseline_read_back_without_checks_equals_the_checked_one() -> 
     assert fitted[0].exclusions and fitted[0].capability and fitted[2].warnings
     for b in fitted:
         data = json.loads(json.dumps(b.to_dict()))
-        assert Baseline.from_stored(data) == Baseline.from_dict(data) == b
-        assert isinstance(Baseline.from_stored(data).excluded, tuple)
+        stored = Baseline.from_stored(data)
+        assert stored == Baseline.from_dict(data) == b
+        assert hash(stored) == hash(b)  # made without __init__: still a whole, frozen baseline
+        assert isinstance(stored.excluded, tuple) and isinstance(stored.exclusions, tuple)
+        assert isinstance(stored.warnings, tuple)
+        with pytest.raises(AttributeError):
+            stored.center = 0.0  # type: ignore[misc]
     data = fitted[1].to_dict()
     del data["mr_ucl"]
     with pytest.raises(BaselineError, match="mr_ucl"):

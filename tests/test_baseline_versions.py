@@ -7,6 +7,7 @@ was still learning made the batch that completed learning fail with a version co
 
 from __future__ import annotations
 
+import gc
 from pathlib import Path
 
 import numpy as np
@@ -120,3 +121,30 @@ def test_a_legacy_typed_monitor_is_numbered_at_restore(tmp_path: Path) -> None:
         assert [b.version for b in store.baseline_history(STREAM)] == [1]
         assert _operator_refit(store, center=55.0) == 2
         assert pipe.adopt_new_baselines(9500.0) == [STREAM]
+
+
+def test_the_restore_checks_numbering_with_the_collector_paused_and_resumes_it(
+    tmp_path: Path,
+) -> None:
+    """The check's query returns a row per stream; made while the collector runs, those rows
+    set off a full collection over every restored monitor. The collector is back on after."""
+    path = tmp_path / "lw.db"
+    typed = Baseline.from_limits(center=50.0, sigma=1.0, method="mean")
+    with Store.open(path, now=0.0) as store:
+        pipe = _pipeline(store, typed)
+        _feed(pipe, _values(4), 0)
+        pipe.checkpoint_all(9000.0)
+    seen: list[bool] = []
+    with Store.open(path, now=0.0) as store:
+        versions = store.baseline_versions
+
+        def watched() -> dict[str, int]:
+            seen.append(gc.isenabled())
+            return versions()
+
+        store.baseline_versions = watched  # type: ignore[method-assign]
+        assert gc.isenabled()
+        assert _pipeline(store, typed).restore() == 1
+        assert seen == [False]
+        assert gc.isenabled()
+        assert versions() == {STREAM: 1}

@@ -164,3 +164,24 @@ def test_a_state_saved_under_other_rules_starts_afresh():
     assert FusedRules.from_state(saved, plan).state() == saved
     other = FusedPlan(parse_rules("run-one-side(length=9)"))
     assert FusedRules.from_state(saved, other).state() == FusedRules(other).state()
+
+
+@PROPERTY
+@given(
+    window=st.integers(1, 10),
+    up=st.one_of(st.integers(-(2**11), 2**11), st.integers()),
+    down=st.one_of(st.integers(-(2**11), 2**11), st.integers()),
+)
+def test_a_restored_window_is_placed_as_mask_by_mask_placement_places_it(window, up, down):
+    """A restart places saved window masks through per-plan tables; every int a checkpoint
+    may hold (negative, wider than the window, windows too long to list) must land exactly
+    where placing its bits one by one puts them, and non-ints are still refused."""
+    from limitwatch.stats.fused import _spread
+
+    rule = "two-of-three-zone-a"
+    plan = FusedPlan([spec(rule, {"count": 1, "window": window})])
+    restored = FusedRules.from_state({"rules": plan.key, "states": [[up, down, 7]]}, plan)
+    assert restored._win == _spread(up, 0, window) | _spread(down, 1, window)
+    assert restored.state()["states"][0][2] == 7
+    with pytest.raises(ValueError, match=f"{rule}: cannot use the saved state"):
+        FusedRules.from_state({"rules": plan.key, "states": [[float(up), down, 7]]}, plan)

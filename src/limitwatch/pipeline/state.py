@@ -96,7 +96,9 @@ class PipelineState:
         The cyclic garbage collector is paused meanwhile: a restart builds about a dozen
         long-lived objects per stream, none of them in a reference cycle, and the collector
         would otherwise walk all of them again and again while they are being built (about
-        half the restore time at 100,000 streams) to free nothing.
+        half the restore time at 100,000 streams) to free nothing. That includes the check of
+        the baselines in force, whose query returns a row per stream: those rows alone set off
+        a full collection over every monitor (0.2 s of CPU at 100,000 streams).
         """
         collecting = gc.isenabled()
         gc.disable()
@@ -117,10 +119,10 @@ class PipelineState:
                     continue
                 self.monitors[monitor.stream] = monitor  # one copy of the id, the monitor's
             caught_up = self._catch_up()
+            record_unnumbered(self.store, self.monitors.values(), self._typed_baseline)
         finally:
             if collecting:
                 gc.enable()
-        record_unnumbered(self.store, self.monitors.values(), self._typed_baseline)
         if caught_up:
             log.info(
                 "applied the readings committed after the checkpoints of %d streams", caught_up

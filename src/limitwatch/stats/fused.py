@@ -95,6 +95,25 @@ def _spread(mask: int, lane: int, window: int) -> int:
     return sum(1 << (4 * age + lane) for age in range(window) if mask >> age & 1)
 
 
+_TABLE_WINDOW = 8
+"""Longest window whose masks :func:`_spread_tables` lists (256 of each); a longer one's
+masks are placed one by one."""
+
+
+def _spread_tables(lane: int, window: int) -> tuple[tuple[int, ...], tuple[int, ...]]:
+    """:func:`_spread` of every mask of ``window`` bits, for the up lane and the down lane.
+
+    Indexing one with a saved mask gives what :func:`_spread` gives: a negative mask of at
+    least ``-2**window`` indexes from the end, which holds the same low bits (two's
+    complement); any other int is out of range and left to :func:`_spread`.
+    """
+    if window > _TABLE_WINDOW:
+        return (), ()
+    masks = range(1 << window)
+    return (tuple(_spread(m, lane, window) for m in masks),
+            tuple(_spread(m, lane + 1, window) for m in masks))  # fmt: skip
+
+
 class FusedPlan:
     """The selection's parameters and derived constants, made once per settings.
 
@@ -115,6 +134,7 @@ class FusedPlan:
         "order",
         "rank",
         "run_len",
+        "spread",
         "trend_len",
         "windows",
         "zone_low",
@@ -154,6 +174,11 @@ class FusedPlan:
             det = by_rule.get(rule)
             if det is not None:
                 self.windows[rule] = (lane, det.window)  # type: ignore[attr-defined]
+        self.spread: dict[str, tuple[tuple[int, ...], tuple[int, ...]]] = {
+            rule: _spread_tables(lane, window) for rule, (lane, window) in self.windows.items()
+        }
+        """Per window rule, every saved up and down mask already placed in its lanes (by
+        mask), for restoring checkpoints without working each one out again."""
         longest = max((window for _lane, window in self.windows.values()), default=0)
         self.full = (1 << (4 * longest)) - 1
         rules = []
@@ -427,14 +452,17 @@ class FusedRules:
             raise ValueError(f"{len(plan.order)} detector states expected, got {len(states)}")
         win = 0
         last: Any = None
-        windows = plan.windows  # a restart runs this loop for every stream: lookups hoisted
+        spread = plan.spread  # a restart runs this loop for every stream: lookups hoisted
         for rule, values in zip(plan.order, states):  # noqa: B905 -- lengths checked above
             try:
-                lanes = windows.get(rule)
-                if lanes is not None:
+                tables = spread.get(rule)
+                if tables is not None:
                     up, down, last = values
-                    lane, window = lanes
-                    win |= _spread(up, lane, window) | _spread(down, lane + 1, window)
+                    try:
+                        win |= tables[0][up] | tables[1][down]
+                    except IndexError:  # a window too long to list, or a mask out of range
+                        lane, window = plan.windows[rule]
+                        win |= _spread(up, lane, window) | _spread(down, lane + 1, window)
                 elif rule == "ewma":
                     w, n, last = values
                     self._ew, self._ew_n = float(w), int(n)

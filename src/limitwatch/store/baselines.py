@@ -104,6 +104,9 @@ class BaselinesArea(StoreBase):
         return [Baseline._from_row(r) for r in rows]
 
     def baseline_versions(self) -> dict[str, int]:
-        """The newest baseline version of every stream, in one query (for noticing refits)."""
-        rows = self._all("SELECT stream, max(version) AS v FROM baselines GROUP BY stream")
-        return {r["stream"]: int(r["v"]) for r in rows}
+        """The newest baseline version of every stream, in one query (for noticing refits).
+
+        Rows come as plain tuples, not as a dict each: a restart asks this once for every
+        stream of the site, and making 100,000 dicts took longer than the query."""
+        sql = "SELECT stream, max(version) FROM baselines GROUP BY stream"
+        return {stream: int(version) for stream, version in self.sql.execute(sql).fetchall()}
