@@ -24,7 +24,8 @@ returns :class:`Figure` objects that ``limitwatch bench`` prints or writes as JS
     Delay from publish to commit while a publisher in another process sends at a fixed rate; the
     publish time travels in each message as the reading's time.
 ``cluster`` (only with ``--only cluster``)
-    Kafka consumer-group workers sharing one store, the bridge in front, and a failover: see
+    Kafka consumer-group workers sharing one store (an SQLite file, or with ``store`` an empty
+    PostgreSQL database), the bridge in front, and a failover: see
     :mod:`limitwatch.bench.cluster`.
 ``memory`` / ``restore``
     Resident memory (what an operator sees in ``ps``) gained per stream once many streams are
@@ -59,6 +60,7 @@ import tempfile
 from collections.abc import Callable
 from pathlib import Path
 
+from limitwatch.bench.cluster_store import BenchStoreRefused, bench_store
 from limitwatch.bench.common import (
     ALL_DETECTORS,
     EXTRA_PARTS,
@@ -90,6 +92,7 @@ __all__ = [
     "LATENCY_BATCH_WAITS",
     "PARTS",
     "QUICK",
+    "BenchStoreRefused",
     "Figure",
     "Sizes",
     "_engine_monitors",
@@ -112,10 +115,19 @@ def run(
     workdir: Path | None = None,
     sizes: Sizes | None = None,
     progress: Callable[[str], None] | None = None,
+    store: str | None = None,
 ) -> list[Figure]:
-    """Measure the chosen part (or all of them) and return the figures."""
+    """Measure the chosen part (or all of them) and return the figures. ``store`` (the
+    cluster part only) is ``sqlite`` or the URL of an empty PostgreSQL database; a bad one
+    raises :class:`~limitwatch.bench.cluster_store.BenchStoreRefused` before anything runs."""
     sizes = sizes or (QUICK if quick else FULL)
     parts = PARTS if only is None else (only,)
+    if store is not None and parts != ("cluster",):
+        raise BenchStoreRefused(
+            "a store applies to the cluster part only (--only cluster); the other parts "
+            "measure one service on its own SQLite file"
+        )
+    chosen = bench_store(store)
     say = progress or (lambda _text: None)
     figures: list[Figure] = []
     with contextlib.ExitStack() as stack:
@@ -136,7 +148,7 @@ def run(
             elif part == "cluster":
                 from limitwatch.bench.cluster import measure_cluster
 
-                figures += measure_cluster(sizes, workdir)
+                figures += measure_cluster(sizes, workdir, chosen)
             else:
                 raise ValueError(f"unknown part {part!r}; parts: {', '.join(PARTS)}")
     return figures

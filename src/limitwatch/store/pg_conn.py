@@ -35,6 +35,7 @@ from functools import lru_cache
 from typing import Any
 
 import psycopg
+from psycopg.conninfo import conninfo_to_dict
 from psycopg.pq import TransactionStatus
 from psycopg.rows import dict_row
 
@@ -97,8 +98,11 @@ class PgConnection(Connection):
     def connect(cls, url: str, *, read_only: bool = False) -> PgConnection:
         """Connect to ``url``; a read-only connection cannot change anything."""
         location = redacted(url)
-        options = "-c default_transaction_read_only=on" if read_only else ""
         try:
+            # Keep the URL's own options (a search_path, say): a keyword would replace them.
+            given = conninfo_to_dict(url).get("options")
+            extra = "-c default_transaction_read_only=on" if read_only else None
+            options = " ".join(str(o) for o in (given, extra) if o) or None
             conn = psycopg.connect(
                 url,
                 autocommit=True,
