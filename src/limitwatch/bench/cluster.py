@@ -40,6 +40,7 @@ import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
 
 from limitwatch.bench.cluster_store import BenchStore
 from limitwatch.bench.common import T0, Figure, Sizes, load_average
@@ -198,9 +199,25 @@ class _Progress:
         value = self._value("SELECT max(last_seen) AS t FROM streams")
         return None if value is None else float(value)
 
+    def server_pids(self) -> list[int]:
+        """The PostgreSQL server processes serving the workers' connections, when the server
+        runs on this machine (its process ids mean nothing elsewhere); [] for SQLite."""
+        if self.store.backend != "postgresql" or not _local_server(str(self.store.path)):
+            return []
+        rows = self._rows(
+            "SELECT pid FROM pg_stat_activity WHERE datname = current_database() "
+            "AND application_name = 'limitwatch'"
+        )
+        return [int(r["pid"]) for r in rows]
+
     def owners(self) -> set[str]:
         rows = self._rows("SELECT owner FROM partitions")
         return {str(r["owner"]) for r in rows} if len(rows) == PARTITIONS else set()
+
+
+def _local_server(location: str) -> bool:
+    host = urlsplit(location).hostname
+    return host in (None, "", "localhost", "127.0.0.1", "::1")
 
 
 def _read_errors() -> tuple[type[BaseException], ...]:
@@ -290,8 +307,10 @@ def _workers(
 
 def workers_run(
     folder: Path, n: int, messages: int, streams: int, store: BenchStore | None = None
-) -> tuple[float, float]:
-    """(readings/s, worker CPU µs per reading) for ``n`` workers draining ``messages``."""
+) -> tuple[float, float, float | None]:
+    """(readings/s, worker CPU µs per reading, CPU µs per reading of the PostgreSQL server
+    processes serving the workers -- None for SQLite or a server elsewhere) for ``n`` workers
+    draining ``messages``."""
     folder.mkdir(parents=True, exist_ok=True)
     with (
         (store or BenchStore()).fresh(folder) as location,
@@ -299,6 +318,8 @@ def workers_run(
         _workers(folder, bootstrap, n, location) as (workers, progress),
     ):
         cpu0 = sum(_cpu_of(w.pid) for w in workers)
+        servers = progress.server_pids()
+        server0 = {pid: _cpu_of(pid) for pid in servers}
         producer = _producer(bootstrap)
         first = time.time()
         _produce(producer, 0, messages, streams)
@@ -306,8 +327,11 @@ def workers_run(
         _wait(lambda: progress.readings() >= messages, 600, f"{messages} readings")
         last = progress.last_commit() or time.time()
         cpu = sum(_cpu_of(w.pid) for w in workers) - cpu0
+        # connections opened during the run count whole
+        server = sum(_cpu_of(p) - server0.get(p, 0.0) for p in progress.server_pids())
         del producer  # before the broker goes, or it logs the lost connection
-    return messages / max(last - first, 1e-6), 1e6 * cpu / messages
+    server_us = 1e6 * server / messages if servers else None
+    return messages / max(last - first, 1e-6), 1e6 * cpu / messages, server_us
 
 
 def bridge_run(
@@ -405,12 +429,21 @@ def measure_cluster(
         return [Figure("cluster workers", "readings/s", [], conditions, skipped=missing)]
     figures = []
     for n in (1, 2):
-        rates, cpu = [], []
+        rates, cpu, server_cpu = [], [], []
         load = load_average()
         for i in range(sizes.repeats):
-            rate, per = workers_run(workdir / f"cluster-{n}-{i}", n, messages, streams, store)
+            rate, per, server = workers_run(
+                workdir / f"cluster-{n}-{i}", n, messages, streams, store
+            )
             rates.append(rate)
             cpu.append(per)
+            if server is not None:
+                server_cpu.append(server)
+        extra: dict[str, Any] = {"worker_cpu_us_per_reading": sorted(cpu)[len(cpu) // 2]}
+        if server_cpu:
+            extra["postgresql_server_cpu_us_per_reading"] = sorted(server_cpu)[
+                len(server_cpu) // 2
+            ]
         figures.append(
             Figure(
                 f"cluster, {n} worker{'s' if n > 1 else ''}",
@@ -419,7 +452,7 @@ def measure_cluster(
                 {**conditions, "how": "records produced as the bridge writes them, as fast as "
                  "the producer goes, into settled workers; rate = N / (last commit - first "
                  "record)", "load_average": load},
-                extra={"worker_cpu_us_per_reading": sorted(cpu)[len(cpu) // 2]},
+                extra=extra,
             )
         )
     if mosquitto_path() is not None:
