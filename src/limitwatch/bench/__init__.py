@@ -128,6 +128,8 @@ def run(
             "measure one service on its own SQLite file"
         )
     chosen = bench_store(store)
+    if "cluster" in parts:
+        chosen.check_ready()  # a database holding anything is refused before anything runs
     say = progress or (lambda _text: None)
     figures: list[Figure] = []
     with contextlib.ExitStack() as stack:

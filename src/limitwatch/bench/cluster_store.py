@@ -56,6 +56,7 @@ class BenchStore:
                 """SELECT n.nspname || '.' || c.relname FROM pg_class c
                    JOIN pg_namespace n ON n.oid = c.relnamespace
                    WHERE n.nspname NOT IN ('pg_catalog', 'information_schema')
+                     AND c.relkind NOT IN ('i', 'I')
                      AND n.nspname NOT LIKE 'pg\\_toast%' AND n.nspname NOT LIKE 'pg\\_temp%'
                    UNION ALL
                    SELECT nspname FROM pg_namespace
