@@ -273,18 +273,13 @@ class Config(_Section):
                 if key.endswith(("_env", "_file")) and _SECRET_KEY.search(key.rsplit("_", 1)[0])
             )
             for base in bases:
-                env, file = entry.get(f"{base}_env"), entry.get(f"{base}_file")
-                if env is None and file is None:
-                    continue
-                refs.append(
-                    SecretRef(
-                        f"notifiers[{i}].{base}_env"
-                        if env is not None
-                        else f"notifiers[{i}].{base}_file",
-                        env,
-                        None if file is None else Path(file),
-                        f"{base.replace('_', ' ')} for notifier {entry.get('name')!r}",
-                    )
+                file = entry.get(f"{base}_file")
+                refs += SecretRef.either(
+                    f"notifiers[{i}]",
+                    base,
+                    entry.get(f"{base}_env"),
+                    None if file is None else Path(file),
+                    f"{base.replace('_', ' ')} for notifier {entry.get('name')!r}",
                 )
         return refs
 

@@ -63,3 +63,14 @@ class SecretRef:
     file: Path | None
     what: str
 
+    @classmethod
+    def either(
+        cls, where: str, base: str, env: str | None, file: Path | None, what: str
+    ) -> list[SecretRef]:
+        """The secret behind a ``<base>_env`` / ``<base>_file`` key pair at ``where``, named by
+        the key that was given (the environment variable's when both are); none when neither."""
+        if env is None and file is None:
+            return []
+        key = f"{base}_env" if env is not None else f"{base}_file"
+        return [cls(f"{where}.{key}", env, file, what)]
+

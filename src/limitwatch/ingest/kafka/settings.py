@@ -129,10 +129,7 @@ class KafkaConnection(_Section):
         return out
 
     def kafka_secret_refs(self, where: str, what: str) -> list[SecretRef]:
-        if self.password_env is None and self.password_file is None:
-            return []
-        key = "password_env" if self.password_env is not None else "password_file"
-        return [SecretRef(f"{where}.{key}", self.password_env, self.password_file, what)]
+        return SecretRef.either(where, "password", self.password_env, self.password_file, what)
 
     def kafka_files_needed(self, where: str) -> list[tuple[str, Path]]:
         return [] if self.ca_file is None else [(f"{where}.ca_file", self.ca_file)]

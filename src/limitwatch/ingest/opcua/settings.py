@@ -316,17 +316,13 @@ class OpcuaSourceConfig(SourceSettings):
     # ---- what check and the service's advice need to know
 
     def secret_refs(self, where: str) -> list[SecretRef]:
-        refs: list[SecretRef] = []
-        if self.password_env is not None or self.password_file is not None:
-            key = "password_env" if self.password_env is not None else "password_file"
-            refs.append(
-                SecretRef(
-                    f"{where}.{key}",
-                    self.password_env,
-                    self.password_file,
-                    f"OPC UA password for source {self.name!r}",
-                )
-            )
+        refs = SecretRef.either(
+            where,
+            "password",
+            self.password_env,
+            self.password_file,
+            f"OPC UA password for source {self.name!r}",
+        )
         if self.security.key_file is not None:
             refs.append(
                 SecretRef(
