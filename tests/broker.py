@@ -22,6 +22,8 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from limitwatch.children import end_process
+
 
 def mosquitto_path() -> str | None:
     return shutil.which("mosquitto") or (
@@ -142,13 +144,8 @@ class Broker:
 
     def stop(self) -> None:
         """Stop gracefully, so the broker writes its persistence file."""
-        if self.process is not None and self.process.poll() is None:
-            self.process.terminate()
-            try:
-                self.process.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                self.process.kill()
-                self.process.wait()
+        if self.process is not None:
+            end_process(self.process)
         self.process = None
 
     def restart(self) -> None:

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import pytest
 
+from limitwatch.children import end_process
 from tests.broker import free_port, wait_for_port
 
 
@@ -83,11 +84,6 @@ class KafkaBroker:
         raise TimeoutError(f"topic {name} did not show {partitions} partitions")
 
     def stop(self) -> None:
-        if self.process is not None and self.process.poll() is None:
-            self.process.terminate()
-            try:
-                self.process.wait(10)
-            except subprocess.TimeoutExpired:
-                self.process.kill()
-                self.process.wait(10)
+        if self.process is not None:
+            end_process(self.process)
         self.process = None

@@ -28,6 +28,8 @@ from pathlib import Path
 
 import pytest
 
+from limitwatch.children import end_process
+
 TEMPLATE = "limitwatch_template"
 
 
@@ -95,12 +97,7 @@ class Cluster:
         return self.url(name)
 
     def stop(self) -> None:
-        self.process.terminate()
-        try:
-            self.process.wait(20)
-        except subprocess.TimeoutExpired:
-            self.process.kill()
-            self.process.wait(5)
+        end_process(self.process, grace_s=20)
         shutil.rmtree(self.folder, ignore_errors=True)
 
 

@@ -44,6 +44,7 @@ import pytest
 from paho.mqtt.reasoncodes import ReasonCode
 
 from limitwatch.alerts.outbox import OutboxWorker
+from limitwatch.children import end_process
 from limitwatch.cli import main as cli_main
 from limitwatch.config import load_config
 from limitwatch.durations import parse_duration
@@ -284,12 +285,7 @@ def deployed_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Deploy
         wait_until(lambda: " running" in log.read_text(), timeout=10, what="mosquitto running")
         yield DeployedBroker(port, ca, log, process)
     finally:
-        process.terminate()
-        try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+        end_process(process)
 
 
 class Client:

@@ -23,6 +23,7 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import rsa
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
+from limitwatch.children import end_process
 from limitwatch.config import load_config
 from tests.broker import free_port
 from tests.service_harness import ServiceProcess, count, query, wait_until
@@ -100,13 +101,8 @@ class OpcuaServer:
         self.process.wait(timeout=30)
 
     def stop(self) -> None:
-        if self.process is not None and self.process.poll() is None:
-            self.process.terminate()
-            try:
-                self.process.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                self.process.kill()
-                self.process.wait(timeout=10)
+        if self.process is not None:
+            end_process(self.process)
 
 
 def site_config(folder: Path, endpoint: str, health_port: int, extra: str = "") -> Path:

@@ -15,6 +15,8 @@ import time
 from collections.abc import Iterator
 from pathlib import Path
 
+from limitwatch.children import end_process
+
 
 def mosquitto_path() -> str | None:
     return shutil.which("mosquitto") or (
@@ -56,9 +58,4 @@ def private_broker(folder: Path, queued: int) -> Iterator[int]:
                 time.sleep(0.05)
         yield port
     finally:
-        broker.terminate()
-        try:
-            broker.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            broker.kill()
-            broker.wait()
+        end_process(broker)
